@@ -1,0 +1,59 @@
+# treewise: `make demo` and `make test` each set up .venv and build the extension on their own.
+# `make help` lists the targets.
+
+PYTHON ?= python3
+VENV := .venv
+PY := $(VENV)/bin/python
+PIP := $(PY) -m pip
+STAMP := $(VENV)/.installed
+# Every dependency and extra named in pyproject.toml, so that the list lives in one place.
+export DEPS_FROM_PYPROJECT := import tomllib; \
+  p = tomllib.load(open("pyproject.toml", "rb"))["project"]; \
+  extras = [d for g in ("test", "bench", "dev") for d in p["optional-dependencies"][g]]; \
+  print(" ".join(p["dependencies"] + extras))
+
+.DEFAULT_GOAL := help
+.PHONY: help venv build build-dev demo test test-rust lint fmt bench clean
+
+help: ## List the targets
+	@grep -E '^[a-z-]+:.*## ' $(MAKEFILE_LIST) | awk -F':.*## ' '{printf "  make %-10s %s\n", $$1, $$2}'
+
+$(STAMP): pyproject.toml
+	test -x $(PY) || $(PYTHON) -m venv $(VENV)
+	$(PIP) install --quiet --upgrade pip
+	$(PIP) install --quiet "maturin>=1.9,<2" $$($(PY) -c "$$DEPS_FROM_PYPROJECT")
+	touch $(STAMP)
+
+venv: $(STAMP) ## Create .venv with every tool the targets need
+
+build: $(STAMP) ## Build the extension in release mode into .venv
+	$(VENV)/bin/maturin develop --release --quiet
+
+build-dev: $(STAMP) ## Build the extension in debug mode (fast to compile, slow to run)
+	$(VENV)/bin/maturin develop --quiet
+
+demo: build ## Run the demo: fit a tree to built-in example data and print it
+	$(PY) -m treewise.demo
+
+test: build ## Run the Python test suite (the README's test command; CI runs it too)
+	$(PY) -m pytest -q
+
+test-rust: ## Run the Rust unit tests
+	cargo test --workspace --quiet
+
+lint: $(STAMP) ## Lint gates: rustfmt, clippy, ruff, mypy (CI runs these)
+	cargo fmt --all --check
+	cargo clippy --workspace --all-targets --quiet -- -D warnings
+	$(VENV)/bin/ruff check python tests bench
+	$(VENV)/bin/ruff format --check python tests bench
+	$(VENV)/bin/mypy
+
+fmt: $(STAMP) ## Format Rust and Python sources
+	cargo fmt --all
+	$(VENV)/bin/ruff format python tests bench
+
+bench: build ## Benchmark against the numpy reference; writes bench/RESULTS.md
+	$(PY) bench/fit_bench.py --write bench/RESULTS.md
+
+clean: ## Remove build products and the environment
+	rm -rf target $(VENV) .pytest_cache .mypy_cache .ruff_cache

@@ -1,0 +1,51 @@
+"""The exception hierarchy: one base class, one subclass per kind of failure."""
+
+from __future__ import annotations
+
+__all__ = [
+    "CategoryCapWarning",
+    "CorruptModelError",
+    "DataError",
+    "NotFittedError",
+    "ResourceLimitError",
+    "SchemaError",
+    "TooManyCategoriesError",
+    "TreewiseError",
+    "UnseenCategoryWarning",
+]
+
+
+class TreewiseError(Exception):
+    """Base class of every error treewise raises on purpose."""
+
+
+class DataError(TreewiseError, ValueError):
+    """The input data is unusable: empty, of an unsupported type, all null, or malformed."""
+
+
+class SchemaError(DataError):
+    """The columns or types do not match what was expected (a fitted model, earlier batches)."""
+
+
+class TooManyCategoriesError(DataError):
+    """A column has more distinct values than treewise can code."""
+
+
+class CorruptModelError(TreewiseError, ValueError):
+    """A model or statistics file is damaged, hostile, or of an unknown version."""
+
+
+class ResourceLimitError(TreewiseError, MemoryError):
+    """The work would pass a memory or size limit."""
+
+
+class CategoryCapWarning(UserWarning):
+    """Some values of a column were merged into its "other" code by ``max_categories``."""
+
+
+class NotFittedError(TreewiseError, ValueError, AttributeError):
+    """A method that needs a fitted model was called before ``fit``."""
+
+
+class UnseenCategoryWarning(UserWarning):
+    """Scored data held values (or nulls) that the model never saw in fitting."""

@@ -1,0 +1,486 @@
+"""The DependencyTree estimator: fit a Chow-Liu tree to a table (scikit-learn conventions)."""
+
+from __future__ import annotations
+
+import math
+import numbers
+import os
+import warnings
+from collections.abc import Iterator, Sequence
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import pyarrow as pa
+
+from treewise import _core
+from treewise.categories import OTHER, Bin
+from treewise.decode import decode_column, type_from_name, type_name
+from treewise.errors import (
+    CategoryCapWarning,
+    DataError,
+    NotFittedError,
+    SchemaError,
+    UnseenCategoryWarning,
+)
+from treewise.files import read_model_file, write_atomically
+from treewise.sources import as_table, iter_batches, select_columns
+
+__all__ = ["DependencyTree"]
+
+#: The most codes a column may have (codes are 16-bit, with one value reserved).
+MAX_CATEGORIES = 65_535
+#: Rows per sampled batch by default.
+SAMPLE_BATCH_ROWS = 262_144
+#: The most rows one sampling call accepts (2**40, about a trillion).
+MAX_SAMPLE_ROWS = 2**40
+
+
+def _categories(kind: str, values: Any, has_other: bool, has_null: bool) -> list[Any]:
+    """One column's categories in code order: values (or bins), then OTHER, then None."""
+    if kind == "float":
+        edges, low, high = values
+        bounds = [low, *edges, high]
+        last = len(bounds) - 2
+        cats: list[Any] = [Bin(bounds[k], bounds[k + 1], closed=k == last) for k in range(last + 1)]
+    else:
+        cats = list(values)
+    if has_other:
+        cats.append(OTHER)
+    if has_null:
+        cats.append(None)
+    return cats
+
+
+def _check_int(name: str, value: object, low: int, high: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
+        raise TypeError(f"{name} must be an integer, got {value!r}")
+    if not low <= int(value) <= high:
+        raise ValueError(f"{name} must be between {low} and {high}, got {value}")
+    return int(value)
+
+
+class DependencyTree:
+    """A maximum-likelihood tree-structured distribution over categorical columns.
+
+    Fitting counts every pair of columns exactly, weighs each pair by its mutual information and
+    keeps the maximum spanning tree (Chow & Liu 1968), oriented away from ``root``. The fitted
+    model is a probability distribution: it scores rows, explains which column made a row
+    unlikely, and draws synthetic rows.
+
+    Parameters
+    ----------
+    columns : list of str, optional
+        The columns to model, in this order. Default: every column of the data.
+    max_categories : int, default 128
+        The most codes any non-float column may have, counting an "other" code and a null code.
+        The rarest values beyond it share the "other" code, and a ``CategoryCapWarning`` says
+        how many.
+    n_bins : int, default 10
+        Float columns are cut into at most this many quantile bins (plus a null code when they
+        hold nulls or NaN); ``max_categories`` does not apply to them.
+    root : str, optional
+        The column the tree is oriented from. Default: the first modelled column.
+    alpha : float, default 0.5
+        Dirichlet smoothing of the conditional tables: P(x | a) = (n_ax + alpha) /
+        (n_a + alpha * r_x). ``alpha=0`` is the maximum-likelihood estimate; the default 0.5 is
+        the Jeffreys pseudo-count (common practice). The counts are kept, so changing ``alpha``
+        with ``set_params`` needs no refit.
+
+    Attributes
+    ----------
+    feature_names_in_ : ndarray of str
+        The modelled columns, in order.
+    n_features_in_ : int
+        How many columns.
+    n_rows_ : int
+        How many rows the model was fitted on.
+    categories_ : list of list
+        Each column's categories in code order: values (or ``Bin`` intervals for floats), then
+        ``treewise.OTHER`` if there is an "other" code, then ``None`` if there is a null code.
+    parent_ : ndarray of int
+        Each column's parent's index, -1 for the root.
+    mutual_info_ : ndarray of float
+        Each column's mutual information with its parent in nats, 0 for the root.
+    pairwise_mutual_info_ : ndarray of float, shape (n_features_in_, n_features_in_)
+        The mutual information of every pair of columns (the edge weights).
+    n_parameters_ : int
+        Free parameters: sum of (r_i - 1) plus, per edge, (r_parent - 1)(r_child - 1).
+    """
+
+    _model: _core.TreeModel | None
+    _stats: _core.PairStats | None
+
+    def __init__(
+        self,
+        *,
+        columns: Sequence[str] | None = None,
+        max_categories: int = 128,
+        n_bins: int = 10,
+        root: str | None = None,
+        alpha: float = 0.5,
+    ) -> None:
+        self.columns = columns
+        self.max_categories = max_categories
+        self.n_bins = n_bins
+        self.root = root
+        self.alpha = alpha
+
+    # -- scikit-learn parameter protocol ---------------------------------------------------------
+
+    _PARAMS = ("columns", "max_categories", "n_bins", "root", "alpha")
+
+    def get_params(self, deep: bool = True) -> dict[str, Any]:
+        """Return the constructor parameters."""
+        return {name: getattr(self, name) for name in self._PARAMS}
+
+    def set_params(self, **params: Any) -> DependencyTree:
+        """Set constructor parameters; returns ``self``. A new ``alpha`` needs no refit."""
+        for name, value in params.items():
+            if name not in self._PARAMS:
+                raise ValueError(f"unknown parameter {name!r}; the parameters are {self._PARAMS}")
+            setattr(self, name, value)
+        return self
+
+    def __repr__(self) -> str:
+        defaults = DependencyTree().get_params()
+        changed = [f"{k}={v!r}" for k, v in self.get_params().items() if v != defaults[k]]
+        return f"DependencyTree({', '.join(changed)})"
+
+    # -- fitting ---------------------------------------------------------------------------------
+
+    def fit(self, data: Any, y: None = None) -> DependencyTree:
+        """Fit the tree to ``data``.
+
+        Parameters
+        ----------
+        data : table
+            A pyarrow Table, RecordBatch or RecordBatchReader, a pandas or polars DataFrame, or
+            any object with ``__arrow_c_stream__``.
+        y : None
+            Ignored; present for scikit-learn compatibility.
+
+        Returns
+        -------
+        DependencyTree
+            The fitted estimator.
+        """
+        max_categories = _check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
+        n_bins = _check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
+        alpha = _check_alpha(self.alpha)
+        table = select_columns(as_table(data), self.columns)
+        names = table.column_names
+        if self.root is None:
+            root = 0
+        elif self.root in names:
+            root = names.index(self.root)
+        else:
+            raise SchemaError(f"root={self.root!r} is not one of the modelled columns {names}")
+
+        builder = _core.CodebookBuilder(names)
+        for batch in iter_batches(table):
+            builder.observe(batch)
+        codebook, caps = builder.finish(max_categories, n_bins)
+        for column, n_values, n_rows in caps:
+            warnings.warn(
+                f"column {column!r}: {n_values} rare values in {n_rows} rows share the 'other' "
+                f"code (max_categories={max_categories}); raise max_categories to keep them apart",
+                CategoryCapWarning,
+                stacklevel=2,
+            )
+        stats = _core.PairStats(codebook)
+        for batch in iter_batches(table):
+            stats.update(codebook, batch)
+        dtypes = [type_name(field.type) for field in table.schema]
+        self._set_model(_core.TreeModel.fit(codebook, stats, dtypes, root, alpha))
+        self._stats = stats
+        return self
+
+    def _set_model(self, model: _core.TreeModel) -> None:
+        """Set every fitted attribute from a model (after fit, or after load)."""
+        codebook = model.codebook
+        d = len(codebook)
+        self._model = model
+        self._stats = None
+        self.feature_names_in_ = np.array(codebook.names, dtype=object)
+        self.n_features_in_ = d
+        self.n_rows_ = model.n_rows
+        self.categories_ = [_categories(*codebook.column(i)) for i in range(d)]
+        self.parent_ = np.array(model.parent, dtype=np.intp)
+        pairwise = np.zeros((d, d))
+        upper = np.triu_indices(d, k=1)
+        pairwise[upper] = model.pair_mi
+        self.pairwise_mutual_info_ = pairwise + pairwise.T
+        self.mutual_info_ = np.array(
+            [
+                self.pairwise_mutual_info_[c, p] if p >= 0 else 0.0
+                for c, p in enumerate(model.parent)
+            ]
+        )
+        self.n_parameters_ = model.n_parameters
+
+    # -- fitted views ----------------------------------------------------------------------------
+
+    def _fitted(self) -> _core.TreeModel:
+        model: _core.TreeModel | None = getattr(self, "_model", None)
+        if model is None:
+            raise NotFittedError("this DependencyTree is not fitted yet; call fit(data) first")
+        if model.alpha != self.alpha:
+            model.set_alpha(_check_alpha(self.alpha))
+        return model
+
+    def _index(self, column: str | int) -> int:
+        self._fitted()
+        names = list(self.feature_names_in_)
+        if isinstance(column, str):
+            if column not in names:
+                raise KeyError(f"{column!r} is not a modelled column; they are {names}")
+            return names.index(column)
+        if isinstance(column, numbers.Integral) and 0 <= int(column) < len(names):
+            return int(column)
+        raise KeyError(f"no column {column!r}: give a name or an index below {len(names)}")
+
+    def edges(self) -> pa.Table:
+        """The tree's edges, parents before children.
+
+        Returns
+        -------
+        pyarrow.Table
+            Columns ``parent``, ``child`` (names), ``mutual_info`` (nats), ``g_statistic``
+            (2·N·MI), ``dof`` ((r_parent−1)(r_child−1) over the codes that occur) and ``p_value``
+            (the G-test of independence against chi-square with ``dof``).
+        """
+        edges = self._fitted().edges()
+        names = list(self.feature_names_in_)
+        return pa.table(
+            {
+                "parent": pa.array([names[e[0]] for e in edges], pa.string()),
+                "child": pa.array([names[e[1]] for e in edges], pa.string()),
+                "mutual_info": pa.array([e[2] for e in edges], pa.float64()),
+                "g_statistic": pa.array([e[3] for e in edges], pa.float64()),
+                "dof": pa.array([e[4] for e in edges], pa.int64()),
+                "p_value": pa.array([e[5] for e in edges], pa.float64()),
+            }
+        )
+
+    def marginal_counts(self, column: str | int) -> npt.NDArray[np.uint64]:
+        """The exact count of each code of ``column``, aligned with ``categories_``."""
+        i = self._index(column)
+        counts = _u64(self._fitted().counts(i)).reshape(-1, len(self.categories_[i]))
+        total: npt.NDArray[np.uint64] = counts.sum(axis=0, dtype=np.uint64)
+        return total
+
+    def joint_counts(self, first: str | int, second: str | int) -> npt.NDArray[np.uint64]:
+        """The exact contingency table of two columns, rows by ``first``'s codes.
+
+        Every pair is available right after ``fit``; a loaded model keeps only its edges.
+        """
+        i, j = self._index(first), self._index(second)
+        if i == j:
+            return np.diag(self.marginal_counts(i))
+        shape = (len(self.categories_[i]), len(self.categories_[j]))
+        if self.parent_[j] == i:
+            return _u64(self._fitted().counts(j)).reshape(shape)
+        if self.parent_[i] == j:
+            return _u64(self._fitted().counts(i)).reshape(shape[::-1]).T.copy()
+        if self._stats is None:
+            names = self.feature_names_in_
+            raise NotFittedError(
+                f"{names[i]!r} and {names[j]!r} are not joined by an edge, and a loaded model "
+                "keeps only the tables of its edges; refit to see every pair"
+            )
+        a, b = min(i, j), max(i, j)
+        table = _u64(self._stats.table(a, b)).reshape(len(self.categories_[a]), -1)
+        return (table if i < j else table.T).copy()
+
+    # -- the model as a distribution -------------------------------------------------------------
+
+    def _scored(self, data: Any, surprisal: bool) -> Iterator[tuple[Any, Any]]:
+        """Score ``data`` batch by batch: yields (ln p per row, per-column surprisal or None)."""
+        model = self._fitted()
+        names = list(self.feature_names_in_)
+        table = select_columns(as_table(data), names)
+        unseen = np.zeros(len(names), dtype=np.int64)
+        for batch in iter_batches(table):
+            total, columns, missing = model.score(batch, surprisal)
+            unseen += missing
+            per_column = None if columns is None else [np.frombuffer(c, "<f8") for c in columns]
+            yield np.frombuffer(total, "<f8"), per_column
+        if unseen.any():
+            report = ", ".join(f"{names[c]!r}: {k}" for c, k in enumerate(unseen) if k)
+            warnings.warn(
+                f"values never seen in fitting (scored with the smoothing mass, alpha="
+                f"{self.alpha}): {report}",
+                UnseenCategoryWarning,
+                stacklevel=3,
+            )
+
+    def score_samples(self, data: Any) -> npt.NDArray[np.float64]:
+        """The log-probability of each row under the model, in nats.
+
+        Columns may come in any order and extra columns are ignored. A value never seen in
+        fitting goes to the column's "other" code when it has one; otherwise it gets the
+        smoothing mass alpha / (n_parent + alpha * r) (-inf when ``alpha=0``), and a child of
+        such a value is scored by its own marginal. An ``UnseenCategoryWarning`` gives the
+        count per column. A null is scored as the null category it was fitted as.
+        """
+        parts = [total for total, _ in self._scored(data, surprisal=False)]
+        return np.concatenate(parts) if parts else np.zeros(0)
+
+    def score(self, data: Any, y: None = None) -> float:
+        """The total log-likelihood of ``data`` in nats (the sum of ``score_samples``)."""
+        return float(self.score_samples(data).sum())
+
+    def surprisal(self, data: Any) -> pa.Table:
+        """Which columns made each row unlikely.
+
+        Returns
+        -------
+        pyarrow.Table
+            One float64 column per modelled column holding -ln P(x_column | x_parent) in nats,
+            and ``total`` (-ln p(row), the sum across the row).
+        """
+        names = [str(n) for n in self.feature_names_in_]
+        totals: list[npt.NDArray[np.float64]] = []
+        columns: list[list[npt.NDArray[np.float64]]] = [[] for _ in names]
+        for total, per_column in self._scored(data, surprisal=True):
+            totals.append(-total)
+            for c, values in enumerate(per_column or []):
+                columns[c].append(values)
+        arrays = {
+            n: pa.array(np.concatenate(v) if v else np.zeros(0))
+            for n, v in zip(names, columns, strict=True)
+        }
+        arrays["total"] = pa.array(np.concatenate(totals) if totals else np.zeros(0))
+        return pa.table(arrays)
+
+    def bic(self, data: Any) -> float:
+        """Bayesian information criterion on ``data``: -2 ln L + k ln n (lower is better)."""
+        n = self._row_count(data)
+        return -2.0 * self.score(data) + self._fitted().n_parameters * math.log(n)
+
+    def aic(self, data: Any) -> float:
+        """Akaike information criterion on ``data``: -2 ln L + 2k (lower is better)."""
+        return -2.0 * self.score(data) + 2.0 * self._fitted().n_parameters
+
+    @staticmethod
+    def _row_count(data: Any) -> int:
+        n = as_table(data).num_rows
+        if n == 0:
+            raise DataError("the data has 0 rows; the criterion needs at least one")
+        return n
+
+    def iter_sample(
+        self, n: int, random_state: RandomState = None, batch_rows: int = SAMPLE_BATCH_ROWS
+    ) -> Iterator[pa.RecordBatch]:
+        """Draw ``n`` rows as record batches of at most ``batch_rows`` rows (bounded memory).
+
+        The rows depend only on ``n`` and ``random_state``, not on ``batch_rows`` or the number
+        of threads. See :meth:`sample` for how values come back.
+        """
+        model = self._fitted()
+        n = _check_int("n", n, 0, MAX_SAMPLE_ROWS)
+        block = _core.SAMPLE_BLOCK
+        batch_rows = _check_int("batch_rows", batch_rows, 1, MAX_SAMPLE_ROWS)
+        step = max(block, batch_rows // block * block)
+        seed = _seed(random_state)
+        schema = self._output_schema()
+        for start in range(0, n, step):
+            count = min(step, n - start)
+            codes, floats = model.sample(start, count, seed)
+            matrix = np.frombuffer(codes, "<u2").reshape(self.n_features_in_, count)
+            values = [None if f is None else np.frombuffer(f, "<f8") for f in floats]
+            arrays = [
+                decode_column(matrix[c], self.categories_[c], schema.field(c).type, values[c])
+                for c in range(self.n_features_in_)
+            ]
+            batch = pa.RecordBatch.from_arrays(arrays, schema=schema)
+            for offset in range(0, count, batch_rows):
+                yield batch.slice(offset, batch_rows)
+
+    def sample(self, n: int, random_state: RandomState = None) -> pa.Table:
+        """Draw ``n`` synthetic rows by ancestral sampling.
+
+        The root is drawn first, then each child given its parent's drawn value.
+
+        Parameters
+        ----------
+        n : int
+            How many rows (0 or more).
+        random_state : None, int, numpy.random.Generator or RandomState
+            The same value gives the same rows, whatever the number of threads.
+
+        Returns
+        -------
+        pyarrow.Table
+            The fitted column names and types. A float column gets a number drawn uniformly
+            inside the sampled bin ([low, high), the last bin [low, high]). The null code comes
+            back as null, and so does the "other" code, which stands for many rare values and
+            no single one.
+        """
+        return pa.Table.from_batches(
+            list(self.iter_sample(n, random_state)), schema=self._output_schema()
+        )
+
+    def _output_schema(self) -> pa.Schema:
+        model = self._fitted()
+        return pa.schema(
+            [
+                pa.field(str(name), type_from_name(t))
+                for name, t in zip(self.feature_names_in_, model.dtypes, strict=True)
+            ]
+        )
+
+    # -- persistence -----------------------------------------------------------------------------
+
+    def save(self, path: str | os.PathLike[str]) -> None:
+        """Write the model to ``path`` in treewise's own file layout (docs/model-format.md).
+
+        The file is written to a temporary name beside ``path`` and renamed into place, so an
+        interrupted save never leaves a half-written file under the final name.
+        """
+        write_atomically(path, self._fitted().to_bytes())
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str]) -> DependencyTree:
+        """Read a model written by :meth:`save`; see :func:`treewise.load`."""
+        model = _core.TreeModel.from_bytes(read_model_file(path))
+        names = model.codebook.names
+        estimator = cls(columns=list(names), root=names[model.root], alpha=model.alpha)
+        for t in model.dtypes:
+            type_from_name(t)
+        estimator._set_model(model)
+        return estimator
+
+
+def _u64(data: bytes) -> npt.NDArray[np.uint64]:
+    return np.frombuffer(data, dtype="<u8").astype(np.uint64)
+
+
+def _check_alpha(alpha: object) -> float:
+    if isinstance(alpha, bool) or not isinstance(alpha, numbers.Real):
+        raise TypeError(f"alpha must be a number, got {alpha!r}")
+    value = float(alpha)
+    if not (math.isfinite(value) and value >= 0):
+        raise ValueError(f"alpha must be a finite number >= 0, got {alpha!r}")
+    return value
+
+
+RandomState = int | np.random.Generator | np.random.RandomState | None
+
+
+def _seed(random_state: RandomState) -> int:
+    """A 64-bit seed for the core's generator from scikit-learn-style ``random_state``."""
+    if random_state is None:
+        return int.from_bytes(os.urandom(8), "little")
+    if isinstance(random_state, np.random.Generator):
+        return int(random_state.integers(0, 2**64, dtype=np.uint64))
+    if isinstance(random_state, np.random.RandomState):
+        return int(random_state.randint(0, 2**63, dtype=np.int64))
+    if isinstance(random_state, numbers.Integral) and not isinstance(random_state, bool):
+        if 0 <= int(random_state) < 2**64:
+            return int(random_state)
+        raise ValueError(f"random_state must be between 0 and 2**64 - 1, got {random_state}")
+    raise TypeError(
+        f"random_state must be None, an int, or a numpy Generator/RandomState, got {random_state!r}"
+    )

@@ -1,0 +1,418 @@
+"""Plain numpy reference of a Chow-Liu dependency-tree fit: the executable specification.
+
+A fit runs in four steps, and the Rust core must agree with each one bit for bit:
+
+1. :func:`encode_column` turns every column into integer codes ``0 .. r-1``.
+2. :func:`pair_table` counts each pair of columns into an ``r_i x r_j`` contingency table.
+3. :func:`mutual_information` scores each table with a canonical, order-fixed float recipe.
+4. :func:`spanning_tree` keeps a maximum-weight spanning tree (Kruskal, strict tie order), and
+   :func:`orient` points it away from the root in breadth-first order.
+
+The method is the dependency tree of Chow & Liu (1968). :func:`fit` runs all four steps.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import numpy as np
+import numpy.typing as npt
+
+from treewise.categories import OTHER, Bin
+
+__all__ = [
+    "ReferenceTree",
+    "encode_column",
+    "encode_like",
+    "fit",
+    "mutual_information",
+    "orient",
+    "pair_table",
+    "sample",
+    "score_samples",
+    "spanning_tree",
+]
+
+IntArray = npt.NDArray[np.int64]
+FloatArray = npt.NDArray[np.float64]
+Category = object  # a kept bool/int/str value, a Bin, OTHER, or None (the null code)
+
+
+def encode_column(
+    values: npt.NDArray[np.generic], max_categories: int = 128, n_bins: int = 10, name: str = "?"
+) -> tuple[IntArray, list[Category]]:
+    """Encode one column as integer codes ``0 .. r-1``.
+
+    Parameters
+    ----------
+    values : numpy.ndarray
+        A float dtype is numeric (NaN is null) and cut into at most ``n_bins`` quantile bins; any
+        other dtype is categorical (bool, int or str values, ``None`` as null), keeping at most
+        ``max_categories`` codes, counting the "other" and null codes.
+    max_categories, n_bins : int
+        The caps above.
+    name : str
+        Column name, for error messages.
+
+    Returns
+    -------
+    codes : numpy.ndarray of int64
+        The code of each row.
+    categories : list
+        What each code stands for: kept values (or :class:`Bin`), then OTHER, then None.
+
+    Raises
+    ------
+    ValueError
+        If the column is not 1-D, is all null, holds an infinity, or mixes value types.
+    """
+    if values.ndim != 1:
+        raise ValueError(f"column {name!r} is not one-dimensional")
+    if np.issubdtype(values.dtype, np.floating):
+        return _encode_numeric(values.astype(np.float64), n_bins, name)
+    if np.issubdtype(values.dtype, np.integer) or values.dtype == np.bool_:
+        return _encode_integers(values, max_categories, name)
+    items = [v.item() if isinstance(v, np.generic) else v for v in values.tolist()]
+    counts = Counter(v for v in items if v is not None)
+    if not counts:
+        raise ValueError(f"column {name!r} has no non-null value")
+    kinds = {type(v) for v in items if v is not None}
+    if len(kinds) > 1 or not issubclass(kinds.pop(), (bool, int, str)):
+        raise ValueError(f"column {name!r} must hold only bool, only int or only str values")
+    has_null = None in items
+    if len(counts) + has_null <= max_categories:
+        kept = sorted(counts)
+    else:
+        m = max(0, max_categories - 1 - has_null)
+        kept = sorted(v for v, _ in sorted(counts.items(), key=lambda vc: (-vc[1], vc[0]))[:m])
+    has_other = len(kept) < len(counts)
+    index: dict[object, int] = {v: i for i, v in enumerate(kept)}
+    other_code, null_code = len(kept), len(kept) + has_other
+    codes = [null_code if v is None else index.get(v, other_code) for v in items]
+    categories: list[Category] = [*kept, *([OTHER] if has_other else []), *([None] * has_null)]
+    return np.array(codes, dtype=np.int64), categories
+
+
+def _encode_integers(
+    x: npt.NDArray[np.generic], max_categories: int, name: str
+) -> tuple[IntArray, list[Category]]:
+    """Apply the categorical rule of :func:`encode_column` to a null-free int or bool array."""
+    if len(x) == 0:
+        raise ValueError(f"column {name!r} has no non-null value")
+    uniques, inverse, counts = np.unique(x, return_inverse=True, return_counts=True)
+    keep = np.arange(len(uniques))
+    if len(uniques) > max_categories:
+        # Most frequent first, ties to the smaller value; uniques are already sorted by value.
+        keep = np.sort(np.lexsort((np.arange(len(uniques)), -counts))[: max_categories - 1])
+    code_of = np.full(len(uniques), len(keep), dtype=np.int64)  # "other" unless kept
+    code_of[keep] = np.arange(len(keep))
+    categories: list[Category] = [uniques[k].item() for k in keep]
+    if len(keep) < len(uniques):
+        categories.append(OTHER)
+    return code_of[inverse.ravel()], categories
+
+
+def _encode_numeric(x: FloatArray, n_bins: int, name: str) -> tuple[IntArray, list[Category]]:
+    null = np.isnan(x)
+    s = np.sort(x[~null])
+    n = len(s)
+    if n == 0:
+        raise ValueError(f"column {name!r} has no non-null value")
+    if np.isinf(s).any():
+        raise ValueError(f"column {name!r} holds an infinite value")
+    edges: list[float] = []
+    for k in range(1, n_bins):
+        e = float(s[(k * (n - 1)) // n_bins])
+        if e > s[0] and (not edges or e > edges[-1]):
+            edges.append(e)
+    codes = np.searchsorted(np.array(edges, dtype=np.float64), x, side="right").astype(np.int64)
+    codes[null] = len(edges) + 1
+    bounds = [float(s[0]), *edges, float(s[-1])]
+    categories: list[Category] = [
+        Bin(bounds[i], bounds[i + 1], closed=i == len(edges)) for i in range(len(edges) + 1)
+    ]
+    if null.any():
+        categories.append(None)
+    return codes, categories
+
+
+def pair_table(codes_i: IntArray, codes_j: IntArray, r_i: int, r_j: int) -> IntArray:
+    """Count rows by (code in column i, code in column j) into an ``r_i x r_j`` int64 table."""
+    flat = np.bincount(codes_i * r_j + codes_j, minlength=r_i * r_j)
+    return flat.astype(np.int64).reshape(r_i, r_j)
+
+
+def mutual_information(table: IntArray) -> tuple[float, float, int]:
+    """Mutual information (nats) of a contingency table, with its G statistic and its dof.
+
+    Each non-zero cell gives ``(c / N) * log((c * N) / (ma * mb))`` in float64 with ``math.log``;
+    the terms are sorted ascending and added left to right from 0.0; the sum is clipped at 0.
+
+    Returns
+    -------
+    mi : float
+        Mutual information in nats.
+    g : float
+        The G (log-likelihood ratio) statistic, ``(2 * N) * mi``.
+    dof : int
+        ``(ra - 1) * (rb - 1)`` over the rows and columns with a non-zero total.
+    """
+    n = float(table.sum())
+    ma = table.sum(axis=1).astype(np.float64)
+    mb = table.sum(axis=0).astype(np.float64)
+    terms = []
+    for a, b in zip(*np.nonzero(table), strict=True):
+        c = float(table[a, b])
+        terms.append((c / n) * math.log((c * n) / (float(ma[a]) * float(mb[b]))))
+    total = 0.0
+    for t in sorted(terms):
+        total += t
+    mi = max(total, 0.0)
+    dof = (int((ma > 0).sum()) - 1) * (int((mb > 0).sum()) - 1)
+    return mi, (2.0 * n) * mi, dof
+
+
+def spanning_tree(mi: FloatArray) -> list[tuple[int, int]]:
+    """Kruskal's maximum spanning tree: edges ``(i, j)``, ``i < j``, in the order they were kept.
+
+    Candidates go by MI descending (exact float comparison), then ``i``, then ``j``.
+    """
+    d = mi.shape[0]
+    pairs = sorted(
+        ((i, j) for i in range(d) for j in range(i + 1, d)), key=lambda p: (-mi[p], p[0], p[1])
+    )
+    leader = list(range(d))
+
+    def find(u: int) -> int:
+        while leader[u] != u:
+            leader[u] = leader[leader[u]]
+            u = leader[u]
+        return u
+
+    chosen: list[tuple[int, int]] = []
+    for i, j in pairs:
+        if len(chosen) == d - 1:
+            break
+        ri, rj = find(i), find(j)
+        if ri != rj:
+            leader[max(ri, rj)] = min(ri, rj)
+            chosen.append((i, j))
+    return chosen
+
+
+def orient(d: int, edges: list[tuple[int, int]], root: int) -> tuple[IntArray, list[int]]:
+    """Point the tree away from ``root`` by breadth-first walk (neighbours in ascending index).
+
+    Returns the parent of each node (-1 for a root) and the visiting order. Components the root
+    does not reach are walked from their lowest index.
+    """
+    neighbours: list[list[int]] = [[] for _ in range(d)]
+    for i, j in edges:
+        neighbours[i].append(j)
+        neighbours[j].append(i)
+    parent = np.full(d, -1, dtype=np.int64)
+    order: list[int] = []
+    seen = [False] * d
+    for start in [root, *range(d)]:
+        if seen[start]:
+            continue
+        seen[start] = True
+        queue = [start]
+        while queue:
+            u = queue.pop(0)
+            order.append(u)
+            for v in sorted(neighbours[u]):
+                if not seen[v]:
+                    seen[v] = True
+                    parent[v] = u
+                    queue.append(v)
+    return parent, order
+
+
+@dataclass(frozen=True, eq=False)
+class ReferenceTree:
+    """Everything a reference fit produces (column ``k`` is ``names[k]``)."""
+
+    names: list[str]
+    categories: list[list[Category]]
+    cardinalities: list[int]
+    codes: list[IntArray]
+    n_rows: int
+    marginals: list[IntArray]
+    tables: dict[tuple[int, int], IntArray]
+    mi: FloatArray
+    parent: IntArray
+    order: list[int]
+    edges: list[tuple[int, int]]
+    mutual_info: FloatArray
+    g_statistic: FloatArray
+    dof: IntArray
+
+    def total_mutual_info(self) -> float:
+        """Sum of each column's MI with its parent, the quantity the tree maximises."""
+        return float(sum(float(x) for x in self.mutual_info))
+
+
+def fit(
+    columns: Mapping[str, npt.NDArray[np.generic]],
+    *,
+    max_categories: int = 128,
+    n_bins: int = 10,
+    root: str | None = None,
+) -> ReferenceTree:
+    """Fit a Chow-Liu dependency tree to columns of equal length.
+
+    Parameters
+    ----------
+    columns : Mapping of str to numpy.ndarray
+        The data, one array per column (see :func:`encode_column`).
+    max_categories, n_bins : int
+        Passed to :func:`encode_column`.
+    root : str, optional
+        Name of the root column; the first column by default.
+
+    Returns
+    -------
+    ReferenceTree
+
+    Raises
+    ------
+    ValueError
+        On no rows, no columns, unequal lengths, an all-null column or an unknown root.
+    """
+    names = list(columns)
+    if not names:
+        raise ValueError("no columns")
+    n_rows = len(columns[names[0]])
+    for name in names:
+        if len(columns[name]) != n_rows:
+            raise ValueError(f"column {name!r} has {len(columns[name])} rows, expected {n_rows}")
+    if n_rows == 0:
+        raise ValueError(f"column {names[0]!r} has no rows")
+    if root is not None and root not in names:
+        raise ValueError(f"root {root!r} is not a column")
+    encoded = [encode_column(np.asarray(columns[k]), max_categories, n_bins, k) for k in names]
+    codes = [c for c, _ in encoded]
+    cards = [len(cats) for _, cats in encoded]
+    d = len(names)
+    mi, g = np.zeros((d, d)), np.zeros((d, d))
+    dof = np.zeros((d, d), dtype=np.int64)
+    tables: dict[tuple[int, int], IntArray] = {}
+    for i in range(d):
+        for j in range(i + 1, d):
+            tables[i, j] = pair_table(codes[i], codes[j], cards[i], cards[j])
+            mi[i, j], g[i, j], dof[i, j] = mutual_information(tables[i, j])
+            mi[j, i], g[j, i], dof[j, i] = mi[i, j], g[i, j], dof[i, j]
+    parent, order = orient(d, spanning_tree(mi), 0 if root is None else names.index(root))
+    return ReferenceTree(
+        names=names,
+        categories=[cats for _, cats in encoded],
+        cardinalities=cards,
+        codes=codes,
+        n_rows=n_rows,
+        marginals=[
+            np.bincount(c, minlength=r).astype(np.int64) for c, r in zip(codes, cards, strict=True)
+        ],
+        tables=tables,
+        mi=mi,
+        parent=parent,
+        order=order,
+        edges=[(int(parent[v]), v) for v in order if parent[v] >= 0],
+        mutual_info=np.array([mi[v, parent[v]] if parent[v] >= 0 else 0.0 for v in range(d)]),
+        g_statistic=g,
+        dof=dof,
+    )
+
+
+# -- the fitted tree as a distribution ---------------------------------------------------------
+
+
+def encode_like(tree: ReferenceTree, column: int, values: npt.NDArray[np.generic]) -> IntArray:
+    """Codes of new values under a fitted column's categories; -1 marks a value without a code.
+
+    A value outside the kept ones takes the "other" code when the column has one; a null takes
+    the null code when there is one; a float takes the bin whose interval holds it.
+    """
+    cats = tree.categories[column]
+    null_code = len(cats) - 1 if cats[-1] is None else -1
+    if isinstance(cats[0], Bin):
+        x = values.astype(np.float64)
+        edges = np.array([b.low for b in cats[1:] if isinstance(b, Bin)], dtype=np.float64)
+        codes = np.searchsorted(edges, x, side="right").astype(np.int64)
+        codes[np.isnan(x)] = null_code
+        return codes
+    kept = [c for c in cats if c is not OTHER and c is not None]
+    index: dict[object, int] = {v: i for i, v in enumerate(kept)}
+    other = len(kept) if any(c is OTHER for c in cats) else -1
+    items = [v.item() if isinstance(v, np.generic) else v for v in values.tolist()]
+    return np.array([null_code if v is None else index.get(v, other) for v in items], np.int64)
+
+
+def _parent_child_counts(tree: ReferenceTree, c: int) -> IntArray:
+    """Column c's counts: rows are the parent's codes (one row for a root)."""
+    p = int(tree.parent[c])
+    if p < 0:
+        return tree.marginals[c][None, :]
+    return tree.tables[p, c] if p < c else tree.tables[c, p].T
+
+
+def _smoothed(counts: IntArray, alpha: float) -> tuple[FloatArray, FloatArray]:
+    """Smoothed log-probabilities of a table of counts, row by row.
+
+    Returns ln((n + alpha) / (n_row + alpha r)) per cell and ln(alpha / (n_row + alpha r)) per
+    row; a row with nothing to go on (no counts, no smoothing) is uniform.
+    """
+    r = counts.shape[1]
+    denom = counts.sum(axis=1).astype(np.float64) + alpha * r
+    safe = np.where(denom > 0, denom, 1.0)
+    with np.errstate(divide="ignore"):
+        logp = np.log((counts + alpha) / safe[:, None])
+        unseen = np.log(np.full(len(denom), alpha) / safe)
+    logp[denom <= 0] = math.log(1.0 / r)
+    unseen[denom <= 0] = math.log(1.0 / r)
+    return logp, unseen
+
+
+def score_samples(
+    tree: ReferenceTree, columns: Mapping[str, npt.NDArray[np.generic]], alpha: float
+) -> FloatArray:
+    """Ln p(row) in nats: the sum over columns, in column order, of ln P(x_c | x_parent).
+
+    P(x | a) = (n_ax + alpha) / (n_a + alpha r). A value without a code gets
+    alpha / (n_a + alpha r); when the parent's value has no code, the column's marginal is used.
+    """
+    codes = [encode_like(tree, c, np.asarray(columns[name])) for c, name in enumerate(tree.names)]
+    total = np.zeros(len(codes[0]))
+    for c in range(len(tree.names)):
+        counts = _parent_child_counts(tree, c)
+        logp, unseen = _smoothed(counts, alpha)
+        marg, marg_unseen = _smoothed(counts.sum(axis=0, keepdims=True), alpha)
+        p = int(tree.parent[c])
+        a = codes[p] if p >= 0 else np.zeros_like(codes[c])
+        x = codes[c]
+        with_parent = np.where(
+            x >= 0, logp[np.maximum(a, 0), np.maximum(x, 0)], unseen[np.maximum(a, 0)]
+        )
+        without = np.where(x >= 0, marg[0, np.maximum(x, 0)], marg_unseen[0])
+        total = total + np.where(a >= 0, with_parent, without)
+    return total
+
+
+def sample(tree: ReferenceTree, n: int, alpha: float, rng: np.random.Generator) -> list[IntArray]:
+    """Draw ``n`` rows of codes by ancestral sampling.
+
+    Each column is drawn in breadth-first order, given its parent's sampled code.
+    """
+    codes: list[IntArray] = [np.zeros(n, dtype=np.int64) for _ in tree.names]
+    for c in tree.order:
+        probs = np.exp(_smoothed(_parent_child_counts(tree, c), alpha)[0])
+        p = int(tree.parent[c])
+        parent_codes = codes[p] if p >= 0 else np.zeros(n, dtype=np.int64)
+        for a in np.unique(parent_codes):
+            rows = parent_codes == a
+            weights = probs[a] / probs[a].sum()
+            codes[c][rows] = rng.choice(len(weights), size=int(rows.sum()), p=weights)
+    return codes

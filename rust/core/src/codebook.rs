@@ -1,0 +1,711 @@
+//! The codebook: each column's values as dense codes 0..r-1 (kept values in natural order, then
+//! "other", then null), learned in one pass over the data.
+
+use arrow_array::{Array, RecordBatch};
+use rayon::prelude::*;
+use rustc_hash::FxHashMap;
+
+use crate::error::{Error, Result};
+use crate::values::{
+    classify, dictionary_keys, each_bool, each_f64, each_i64, each_str, each_u64, Kind,
+};
+
+/// The code an encoder writes for a value the codebook has no code for (lenient mode only).
+pub const UNSEEN: u16 = u16::MAX;
+/// The most codes one column may have: codes are u16, and `u16::MAX` is reserved for [`UNSEEN`].
+pub const MAX_CATEGORIES: usize = u16::MAX as usize;
+
+/// A column's kept values, in code order.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Values {
+    Bool(Vec<bool>),
+    Int(Vec<i64>),
+    UInt(Vec<u64>),
+    Str(Vec<Box<str>>),
+    /// Quantile bins: bin 0 is `[low, edges[0])`, bin k is `[edges[k-1], edges[k])`, and the last
+    /// is `[edges[last], high]`. `low` and `high` are the smallest and largest finite values seen.
+    Bins {
+        edges: Vec<f64>,
+        low: f64,
+        high: f64,
+    },
+}
+
+impl Values {
+    /// How many value codes (not counting "other" and null).
+    pub fn len(&self) -> usize {
+        match self {
+            Values::Bool(v) => v.len(),
+            Values::Int(v) => v.len(),
+            Values::UInt(v) => v.len(),
+            Values::Str(v) => v.len(),
+            Values::Bins { edges, .. } => edges.len() + 1,
+        }
+    }
+
+    /// True when there are no value codes at all.
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// The value family.
+    pub fn kind(&self) -> Kind {
+        match self {
+            Values::Bool(_) => Kind::Bool,
+            Values::Int(_) => Kind::Int,
+            Values::UInt(_) => Kind::UInt,
+            Values::Str(_) => Kind::Str,
+            Values::Bins { .. } => Kind::Float,
+        }
+    }
+}
+
+#[derive(Clone, Debug, Default)]
+enum Lookup {
+    #[default]
+    None,
+    Bool([u16; 2]),
+    Int(FxHashMap<i64, u16>),
+    UInt(FxHashMap<u64, u16>),
+    Str(FxHashMap<Box<str>, u16>),
+}
+
+/// One column's encoding.
+#[derive(Clone, Debug)]
+pub struct ColumnCode {
+    name: String,
+    values: Values,
+    has_other: bool,
+    has_null: bool,
+    lookup: Lookup,
+}
+
+impl PartialEq for ColumnCode {
+    fn eq(&self, other: &Self) -> bool {
+        self.name == other.name
+            && self.values == other.values
+            && self.has_other == other.has_other
+            && self.has_null == other.has_null
+    }
+}
+
+fn as_code(k: usize) -> u16 {
+    // Callers keep k below MAX_CATEGORIES; saturate rather than wrap if one ever does not.
+    u16::try_from(k).unwrap_or(UNSEEN)
+}
+
+impl ColumnCode {
+    /// Builds a column's encoding from its kept values, which must be sorted and distinct.
+    pub fn new(name: String, values: Values, has_other: bool, has_null: bool) -> Result<Self> {
+        let card = values.len() + usize::from(has_other) + usize::from(has_null);
+        if card > MAX_CATEGORIES {
+            return Err(Error::TooManyCategories(format!(
+                "column '{name}' would need {card} codes, more than the limit of {MAX_CATEGORIES}"
+            )));
+        }
+        if card == 0 {
+            return Err(Error::Invalid(format!("column '{name}' has no codes")));
+        }
+        let sorted = match &values {
+            Values::Bool(v) => v.windows(2).all(|w| !w[0] & w[1]),
+            Values::Int(v) => v.windows(2).all(|w| w[0] < w[1]),
+            Values::UInt(v) => v.windows(2).all(|w| w[0] < w[1]),
+            Values::Str(v) => v.windows(2).all(|w| w[0] < w[1]),
+            Values::Bins { edges, low, high } => {
+                edges.iter().all(|e| e.is_finite())
+                    && edges.windows(2).all(|w| w[0] < w[1])
+                    && low.is_finite()
+                    && high.is_finite()
+                    && low <= high
+                    && edges.first().is_none_or(|e| low < e)
+                    && edges.last().is_none_or(|e| e <= high)
+            }
+        };
+        if !sorted {
+            return Err(Error::Invalid(format!(
+                "column '{name}': the values of a codebook must be sorted, distinct and finite"
+            )));
+        }
+        let lookup = match &values {
+            Values::Bool(v) => {
+                let mut codes = [UNSEEN; 2];
+                for (k, b) in v.iter().enumerate() {
+                    codes[usize::from(*b)] = as_code(k);
+                }
+                Lookup::Bool(codes)
+            }
+            Values::Int(v) => Lookup::Int(
+                v.iter()
+                    .enumerate()
+                    .map(|(k, x)| (*x, as_code(k)))
+                    .collect(),
+            ),
+            Values::UInt(v) => Lookup::UInt(
+                v.iter()
+                    .enumerate()
+                    .map(|(k, x)| (*x, as_code(k)))
+                    .collect(),
+            ),
+            Values::Str(v) => Lookup::Str(
+                v.iter()
+                    .enumerate()
+                    .map(|(k, x)| (x.clone(), as_code(k)))
+                    .collect(),
+            ),
+            Values::Bins { .. } => Lookup::None,
+        };
+        Ok(ColumnCode {
+            name,
+            values,
+            has_other,
+            has_null,
+            lookup,
+        })
+    }
+
+    /// The column name.
+    pub fn name(&self) -> &str {
+        &self.name
+    }
+    /// The kept values in code order.
+    pub fn values(&self) -> &Values {
+        &self.values
+    }
+    /// Whether there is an "other" code (values beyond the cap).
+    pub fn has_other(&self) -> bool {
+        self.has_other
+    }
+    /// Whether there is a null code.
+    pub fn has_null(&self) -> bool {
+        self.has_null
+    }
+    /// The number of codes r: values, then "other", then null.
+    pub fn cardinality(&self) -> usize {
+        self.values.len() + usize::from(self.has_other) + usize::from(self.has_null)
+    }
+    /// The "other" code, if any.
+    pub fn other_code(&self) -> Option<u16> {
+        self.has_other.then(|| as_code(self.values.len()))
+    }
+    /// The null code, if any.
+    pub fn null_code(&self) -> Option<u16> {
+        self.has_null
+            .then(|| as_code(self.values.len() + usize::from(self.has_other)))
+    }
+
+    fn value_code(&self, k: Option<u16>) -> u16 {
+        k.or(self.other_code()).unwrap_or(UNSEEN)
+    }
+
+    fn bin_code(&self, x: f64) -> u16 {
+        match &self.values {
+            // The number of edges <= x: bins are closed on the left.
+            Values::Bins { edges, .. } => as_code(edges.partition_point(|e| *e <= x)),
+            _ => UNSEEN,
+        }
+    }
+
+    /// Appends the codes of `array` to `out`. With `strict`, a value or null without a code is an
+    /// error that names the column and the row; otherwise it is written as [`UNSEEN`].
+    pub fn encode(&self, array: &dyn Array, strict: bool, out: &mut Vec<u16>) -> Result<()> {
+        let start = out.len();
+        let null = self.null_code().unwrap_or(UNSEEN);
+        if let Some((keys, dict_values)) = dictionary_keys(&self.name, array)? {
+            let mut dict_codes = Vec::with_capacity(dict_values.len());
+            self.encode_plain(dict_values, &mut dict_codes)?;
+            out.extend(keys.iter().map(|k| k.map_or(null, |k| dict_codes[k])));
+        } else if classify(&self.name, array.data_type())?.is_none() {
+            out.extend(std::iter::repeat_n(null, array.len()));
+        } else {
+            self.encode_plain(array, out)?;
+        }
+        if strict {
+            if let Some(row) = out[start..].iter().position(|c| *c == UNSEEN) {
+                return Err(self.unseen_error(array, row));
+            }
+        }
+        Ok(())
+    }
+
+    fn unseen_error(&self, array: &dyn Array, row: usize) -> Error {
+        let name = &self.name;
+        if array.logical_nulls().is_some_and(|n| n.is_null(row)) {
+            Error::Data(format!(
+                "column '{name}' has a null at row {row} of this batch, but it had no nulls when its \
+                 codebook was learned; fill the nulls, or learn the codebook from data that has them"
+            ))
+        } else {
+            Error::Data(format!(
+                "column '{name}' has a value at row {row} of this batch that its codebook has never \
+                 seen, and the column has no 'other' code; learn the codebook from data that includes \
+                 it, or lower max_categories so that an 'other' code exists"
+            ))
+        }
+    }
+
+    fn encode_plain(&self, array: &dyn Array, out: &mut Vec<u16>) -> Result<()> {
+        let kind = classify(&self.name, array.data_type())?;
+        if kind.is_some_and(|k| k != self.values.kind()) {
+            return Err(Error::Schema(format!(
+                "column '{}' holds {} values but its codebook was learned from {} values; cast it back, \
+                 or learn a new codebook",
+                self.name,
+                array.data_type(),
+                self.values.kind().name()
+            )));
+        }
+        let null = self.null_code().unwrap_or(UNSEEN);
+        out.reserve(array.len());
+        match &self.lookup {
+            Lookup::Bool(codes) => each_bool(array, |v| {
+                out.push(v.map_or(null, |b| {
+                    self.value_code(Some(codes[usize::from(b)]).filter(|c| *c != UNSEEN))
+                }))
+            }),
+            Lookup::Int(map) => each_i64(array, |v| {
+                out.push(v.map_or(null, |x| self.value_code(map.get(&x).copied())))
+            }),
+            Lookup::UInt(map) => each_u64(array, |v| {
+                out.push(v.map_or(null, |x| self.value_code(map.get(&x).copied())))
+            }),
+            Lookup::Str(map) => each_str(array, |v| {
+                out.push(v.map_or(null, |x| self.value_code(map.get(x).copied())))
+            }),
+            Lookup::None => each_f64(array, |v| {
+                out.push(match v {
+                    Some(x) if !x.is_nan() => self.bin_code(x),
+                    _ => null,
+                })
+            }),
+        }
+    }
+}
+
+/// A column's tally of values, gathered in the codebook pass.
+#[derive(Clone, Debug, Default)]
+enum Tally {
+    #[default]
+    Unknown,
+    Bool([u64; 2]),
+    Int(FxHashMap<i64, u64>),
+    UInt(FxHashMap<u64, u64>),
+    Str(FxHashMap<Box<str>, u64>),
+    /// Every finite value seen, for exact quantiles.
+    Float(Vec<f64>),
+}
+
+impl Tally {
+    fn for_kind(kind: Kind) -> Tally {
+        match kind {
+            Kind::Bool => Tally::Bool([0; 2]),
+            Kind::Int => Tally::Int(FxHashMap::default()),
+            Kind::UInt => Tally::UInt(FxHashMap::default()),
+            Kind::Str => Tally::Str(FxHashMap::default()),
+            Kind::Float => Tally::Float(Vec::new()),
+        }
+    }
+
+    fn kind(&self) -> Option<Kind> {
+        Some(match self {
+            Tally::Unknown => return None,
+            Tally::Bool(_) => Kind::Bool,
+            Tally::Int(_) => Kind::Int,
+            Tally::UInt(_) => Kind::UInt,
+            Tally::Str(_) => Kind::Str,
+            Tally::Float(_) => Kind::Float,
+        })
+    }
+}
+
+/// What the cap on categories did to one column, for the caller's warning.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct CapReport {
+    pub column: String,
+    /// Distinct values that went into "other".
+    pub values_capped: usize,
+    /// Rows that hold one of them.
+    pub rows_capped: u64,
+}
+
+/// One column's state in the codebook pass.
+#[derive(Clone, Debug)]
+struct ColumnTally {
+    name: String,
+    tally: Tally,
+    nulls: u64,
+}
+
+impl ColumnTally {
+    fn observe(&mut self, array: &dyn Array) -> Result<()> {
+        let Some(kind) = classify(&self.name, array.data_type())? else {
+            self.nulls += array.len() as u64;
+            return Ok(());
+        };
+        match self.tally.kind() {
+            None => self.tally = Tally::for_kind(kind),
+            Some(seen) if seen != kind => {
+                return Err(Error::Schema(format!(
+                    "column '{}' changed type between batches: {} values earlier, {} now; \
+                     cast it to one type in every batch and file",
+                    self.name,
+                    seen.name(),
+                    array.data_type()
+                )))
+            }
+            Some(_) => {}
+        }
+        let infinite = match dictionary_keys(&self.name, array)? {
+            Some((keys, dict_values)) => {
+                let mut weights = vec![0u64; dict_values.len()];
+                for k in &keys {
+                    match k {
+                        Some(k) => weights[*k] += 1,
+                        None => self.nulls += 1,
+                    }
+                }
+                // An infinity found in the dictionary is reported at the first row that uses it.
+                self.add(dict_values, &|i| weights[i])?
+                    .map(|(at, x)| (keys.iter().position(|k| *k == Some(at)).unwrap_or(at), x))
+            }
+            None => self.add(array, &|_| 1)?,
+        };
+        match infinite {
+            Some((row, x)) => Err(Error::Data(format!(
+                "column '{}' holds {x} at row {row} of this batch; quantile bins need finite \
+                 values. Replace infinities (with null, or a large finite value) first",
+                self.name
+            ))),
+            None => Ok(()),
+        }
+    }
+
+    /// Adds each row of `array` with the weight `weight(row)`; rows of weight 0 are not values seen.
+    /// Returns the position and value of the first infinity in a float column, which is refused.
+    fn add(
+        &mut self,
+        array: &dyn Array,
+        weight: &dyn Fn(usize) -> u64,
+    ) -> Result<Option<(usize, f64)>> {
+        let mut infinite = None;
+        let mut row = 0usize;
+        let mut nulls = 0u64;
+        let mut next = || {
+            let w = weight(row);
+            row += 1;
+            w
+        };
+        match &mut self.tally {
+            Tally::Unknown => {}
+            Tally::Bool(counts) => each_bool(array, |v| {
+                let w = next();
+                match v {
+                    Some(b) => counts[usize::from(b)] += w,
+                    None => nulls += w,
+                }
+            })?,
+            Tally::Int(map) => each_i64(array, |v| {
+                let w = next();
+                match v {
+                    Some(_) if w == 0 => {}
+                    Some(x) => *map.entry(x).or_default() += w,
+                    None => nulls += w,
+                }
+            })?,
+            Tally::UInt(map) => each_u64(array, |v| {
+                let w = next();
+                match v {
+                    Some(_) if w == 0 => {}
+                    Some(x) => *map.entry(x).or_default() += w,
+                    None => nulls += w,
+                }
+            })?,
+            Tally::Str(map) => each_str(array, |v| {
+                let w = next();
+                match v {
+                    Some(_) if w == 0 => {}
+                    Some(x) => match map.get_mut(x) {
+                        Some(c) => *c += w,
+                        None => {
+                            map.insert(x.into(), w);
+                        }
+                    },
+                    None => nulls += w,
+                }
+            })?,
+            Tally::Float(seen) => {
+                let mut at = 0usize;
+                each_f64(array, |v| {
+                    let w = next();
+                    at += 1;
+                    match v {
+                        Some(x) if x.is_infinite() && w > 0 => {
+                            infinite.get_or_insert((at - 1, x));
+                        }
+                        Some(x) if !x.is_nan() => {
+                            seen.extend(std::iter::repeat_n(x, usize::try_from(w).unwrap_or(0)))
+                        }
+                        _ => nulls += w,
+                    }
+                })?;
+            }
+        }
+        self.nulls += nulls;
+        Ok(infinite)
+    }
+
+    fn finish(
+        self,
+        max_categories: usize,
+        n_bins: usize,
+    ) -> Result<(ColumnCode, Option<CapReport>)> {
+        let name = self.name;
+        let has_null = self.nulls > 0;
+        let all_null = || {
+            Error::Data(format!(
+                "column '{name}' holds only nulls ({} rows); it carries no information. \
+                 Leave it out with columns=, or fill it",
+                self.nulls
+            ))
+        };
+        let (values, cap) = match self.tally {
+            Tally::Unknown => return Err(all_null()),
+            Tally::Bool(c) => {
+                let seen: Vec<(bool, u64)> = [(false, c[0]), (true, c[1])]
+                    .into_iter()
+                    .filter(|(_, n)| *n > 0)
+                    .collect();
+                let (kept, cap) = keep_most_frequent(&name, seen, max_categories, has_null);
+                (Values::Bool(kept), cap)
+            }
+            Tally::Int(m) => {
+                let (kept, cap) =
+                    keep_most_frequent(&name, m.into_iter().collect(), max_categories, has_null);
+                (Values::Int(kept), cap)
+            }
+            Tally::UInt(m) => {
+                let (kept, cap) =
+                    keep_most_frequent(&name, m.into_iter().collect(), max_categories, has_null);
+                (Values::UInt(kept), cap)
+            }
+            Tally::Str(m) => {
+                let (kept, cap) =
+                    keep_most_frequent(&name, m.into_iter().collect(), max_categories, has_null);
+                (Values::Str(kept), cap)
+            }
+            Tally::Float(seen) if seen.is_empty() => return Err(all_null()),
+            Tally::Float(mut seen) => {
+                seen.sort_unstable_by(f64::total_cmp);
+                (quantile_bins(&seen, n_bins), None)
+            }
+        };
+        if values.is_empty() && cap.is_none() {
+            return Err(all_null());
+        }
+        let has_other = cap.is_some();
+        Ok((ColumnCode::new(name, values, has_other, has_null)?, cap))
+    }
+}
+
+/// Keeps the most frequent values (ties: the smaller value) so that the codes, counting "other" and
+/// null, fit in `max_categories`; returns the kept values sorted, and what went to "other".
+fn keep_most_frequent<T: Ord>(
+    name: &str,
+    mut seen: Vec<(T, u64)>,
+    max_categories: usize,
+    has_null: bool,
+) -> (Vec<T>, Option<CapReport>) {
+    let fits = seen.len() + usize::from(has_null) <= max_categories;
+    let mut cap = None;
+    if !fits {
+        let keep = max_categories.saturating_sub(1 + usize::from(has_null));
+        seen.sort_unstable_by(|a, b| b.1.cmp(&a.1).then_with(|| a.0.cmp(&b.0)));
+        let dropped = seen.split_off(keep.min(seen.len()));
+        cap = Some(CapReport {
+            column: name.to_string(),
+            values_capped: dropped.len(),
+            rows_capped: dropped.iter().map(|(_, n)| n).sum(),
+        });
+    }
+    let mut kept: Vec<T> = seen.into_iter().map(|(v, _)| v).collect();
+    kept.sort_unstable();
+    (kept, cap)
+}
+
+/// Bin edges at the order statistics `sorted[k*(n-1)/n_bins]` for k = 1..n_bins (integer
+/// division), without repeats and without the minimum, so every bin holds at least one value.
+fn quantile_bins(sorted: &[f64], n_bins: usize) -> Values {
+    let n = sorted.len();
+    let (Some(&low), Some(&high)) = (sorted.first(), sorted.last()) else {
+        return Values::Bins {
+            edges: Vec::new(),
+            low: 0.0,
+            high: 0.0,
+        };
+    };
+    let mut edges: Vec<f64> = Vec::with_capacity(n_bins);
+    for k in 1..n_bins {
+        let e = sorted[k * (n - 1) / n_bins];
+        if e > low && edges.last().is_none_or(|last| *last < e) {
+            edges.push(e);
+        }
+    }
+    Values::Bins { edges, low, high }
+}
+
+/// The codebook of a whole table.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Codebook {
+    columns: Vec<ColumnCode>,
+}
+
+impl Codebook {
+    /// Builds a codebook from column encodings; names must be distinct.
+    pub fn new(columns: Vec<ColumnCode>) -> Result<Self> {
+        let mut names: Vec<&str> = columns.iter().map(|c| c.name()).collect();
+        names.sort_unstable();
+        if let Some(w) = names.windows(2).find(|w| w[0] == w[1]) {
+            return Err(Error::Schema(format!(
+                "column name '{}' appears twice",
+                w[0]
+            )));
+        }
+        Ok(Codebook { columns })
+    }
+    /// The column encodings, in column order.
+    pub fn columns(&self) -> &[ColumnCode] {
+        &self.columns
+    }
+    /// Each column's number of codes.
+    pub fn cardinalities(&self) -> Vec<usize> {
+        self.columns.iter().map(ColumnCode::cardinality).collect()
+    }
+
+    /// Checks that `batch` has exactly the codebook's columns, in order.
+    pub fn check_batch(&self, batch: &RecordBatch) -> Result<()> {
+        check_names(self.columns.iter().map(|c| c.name()), batch)
+    }
+
+    /// Encodes every column of `batch` (in parallel over columns).
+    pub fn encode(&self, batch: &RecordBatch, strict: bool) -> Result<Vec<Vec<u16>>> {
+        self.check_batch(batch)?;
+        self.columns
+            .par_iter()
+            .zip(batch.columns().par_iter())
+            .map(|(code, array)| {
+                let mut out = Vec::with_capacity(array.len());
+                code.encode(array.as_ref(), strict, &mut out)?;
+                Ok(out)
+            })
+            .collect()
+    }
+}
+
+fn check_names<'a>(expected: impl Iterator<Item = &'a str>, batch: &RecordBatch) -> Result<()> {
+    let expected: Vec<&str> = expected.collect();
+    let schema = batch.schema();
+    let got: Vec<&str> = schema.fields().iter().map(|f| f.name().as_str()).collect();
+    if expected != got {
+        return Err(Error::Schema(format!(
+            "expected the columns {expected:?} in this order, but the batch has {got:?}"
+        )));
+    }
+    Ok(())
+}
+
+/// Gathers the codebook in one pass over any number of batches.
+#[derive(Clone, Debug)]
+pub struct CodebookBuilder {
+    columns: Vec<ColumnTally>,
+    rows: u64,
+}
+
+impl CodebookBuilder {
+    /// A builder for the named columns.
+    pub fn new(names: Vec<String>) -> Self {
+        let columns = names
+            .into_iter()
+            .map(|name| ColumnTally {
+                name,
+                tally: Tally::Unknown,
+                nulls: 0,
+            })
+            .collect();
+        CodebookBuilder { columns, rows: 0 }
+    }
+
+    /// Rows observed so far.
+    pub fn rows(&self) -> u64 {
+        self.rows
+    }
+
+    /// Tallies one batch (in parallel over columns).
+    pub fn observe(&mut self, batch: &RecordBatch) -> Result<()> {
+        check_names(self.columns.iter().map(|c| c.name.as_str()), batch)?;
+        self.columns
+            .par_iter_mut()
+            .zip(batch.columns().par_iter())
+            .try_for_each(|(col, array)| col.observe(array.as_ref()))?;
+        self.rows += batch.num_rows() as u64;
+        Ok(())
+    }
+
+    /// Fixes the codes. `max_categories` caps each column's codes (counting "other" and null);
+    /// floats get at most `n_bins` quantile bins. Returns the codebook and what the cap did.
+    pub fn finish(
+        self,
+        max_categories: usize,
+        n_bins: usize,
+    ) -> Result<(Codebook, Vec<CapReport>)> {
+        if !(2..=MAX_CATEGORIES).contains(&max_categories) {
+            return Err(Error::Invalid(format!(
+                "max_categories must be between 2 and {MAX_CATEGORIES}, got {max_categories}"
+            )));
+        }
+        if !(1..MAX_CATEGORIES).contains(&n_bins) {
+            return Err(Error::Invalid(format!(
+                "n_bins must be between 1 and {}, got {n_bins}",
+                MAX_CATEGORIES - 1
+            )));
+        }
+        if self.rows == 0 {
+            return Err(Error::Data(
+                "the data has 0 rows; a dependency tree needs at least one row".to_string(),
+            ));
+        }
+        let finished: Vec<(ColumnCode, Option<CapReport>)> = self
+            .columns
+            .into_par_iter()
+            .map(|c| c.finish(max_categories, n_bins))
+            .collect::<Result<_>>()?;
+        let (columns, caps): (Vec<_>, Vec<_>) = finished.into_iter().unzip();
+        Ok((
+            Codebook::new(columns)?,
+            caps.into_iter().flatten().collect(),
+        ))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn quantile_edges_skip_repeats_and_the_minimum() {
+        let sorted = [1.0, 1.0, 1.0, 2.0, 3.0, 3.0, 4.0, 9.0];
+        let Values::Bins { edges, low, high } = quantile_bins(&sorted, 4) else {
+            panic!("not bins")
+        };
+        // k*(n-1)/4 for k=1,2,3 with n=8: indexes 1, 3, 5 -> 1.0 (the minimum, dropped), 2.0, 3.0.
+        assert_eq!(edges, vec![2.0, 3.0]);
+        assert_eq!((low, high), (1.0, 9.0));
+    }
+
+    #[test]
+    fn cap_keeps_the_most_frequent_and_breaks_ties_by_value() {
+        let seen = vec![(5i64, 3), (1, 3), (2, 10), (9, 1)];
+        let (kept, cap) = keep_most_frequent("c", seen, 3, false);
+        assert_eq!(kept, vec![1, 2]);
+        let cap = cap.unwrap_or_else(|| panic!("no cap"));
+        assert_eq!((cap.values_capped, cap.rows_capped), (2, 4));
+    }
+}

@@ -1,0 +1,328 @@
+//! The model file: our own little-endian binary layout with a version and a CRC-32, read with a
+//! bounds check before every allocation (docs/model-format.md describes it byte by byte).
+
+use crate::codebook::{Codebook, ColumnCode, Values};
+use crate::error::{Error, Result};
+use crate::model::TreeModel;
+use crate::values::Kind;
+
+/// The first eight bytes of every treewise file.
+pub const MAGIC: &[u8; 8] = b"TREEWISE";
+/// The layout version this build writes and reads.
+pub const FORMAT_VERSION: u32 = 1;
+/// The file holds a fitted model.
+pub const KIND_MODEL: u32 = 1;
+const HEADER_LEN: usize = 8 + 4 + 4 + 8 + 4;
+const NO_PARENT: u32 = u32::MAX;
+
+/// Appends little-endian fields to a byte buffer.
+#[derive(Default)]
+pub struct Writer {
+    buf: Vec<u8>,
+}
+
+impl Writer {
+    pub fn u8(&mut self, v: u8) {
+        self.buf.push(v);
+    }
+    pub fn u32(&mut self, v: u32) {
+        self.buf.extend_from_slice(&v.to_le_bytes());
+    }
+    pub fn u64(&mut self, v: u64) {
+        self.buf.extend_from_slice(&v.to_le_bytes());
+    }
+    pub fn i64(&mut self, v: i64) {
+        self.buf.extend_from_slice(&v.to_le_bytes());
+    }
+    pub fn f64(&mut self, v: f64) {
+        self.buf.extend_from_slice(&v.to_le_bytes());
+    }
+    pub fn len(&mut self, n: usize) {
+        self.u64(n as u64);
+    }
+    pub fn str(&mut self, s: &str) {
+        self.len(s.len());
+        self.buf.extend_from_slice(s.as_bytes());
+    }
+    pub fn u64s(&mut self, v: &[u64]) {
+        self.len(v.len());
+        v.iter().for_each(|x| self.u64(*x));
+    }
+    pub fn f64s(&mut self, v: &[f64]) {
+        self.len(v.len());
+        v.iter().for_each(|x| self.f64(*x));
+    }
+
+    /// The finished file: header (magic, version, kind, payload length, CRC-32) and payload.
+    pub fn finish(self, kind: u32) -> Vec<u8> {
+        let mut out = Vec::with_capacity(HEADER_LEN + self.buf.len());
+        out.extend_from_slice(MAGIC);
+        out.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
+        out.extend_from_slice(&kind.to_le_bytes());
+        out.extend_from_slice(&(self.buf.len() as u64).to_le_bytes());
+        out.extend_from_slice(&crc32fast::hash(&self.buf).to_le_bytes());
+        out.extend_from_slice(&self.buf);
+        out
+    }
+}
+
+/// Reads little-endian fields, refusing any length that the remaining bytes cannot hold.
+pub struct Reader<'a> {
+    buf: &'a [u8],
+    pos: usize,
+}
+
+fn bad(what: impl std::fmt::Display) -> Error {
+    Error::CorruptModel(format!(
+        "{what}; the file is damaged or was not written by treewise"
+    ))
+}
+
+impl<'a> Reader<'a> {
+    /// Checks the header of `file` and returns a reader over its payload.
+    pub fn open(file: &'a [u8], kind: u32) -> Result<Self> {
+        if file.len() < HEADER_LEN || &file[..8] != MAGIC {
+            return Err(bad("this is not a treewise file (no TREEWISE header)"));
+        }
+        let word =
+            |at: usize| u32::from_le_bytes([file[at], file[at + 1], file[at + 2], file[at + 3]]);
+        let version = word(8);
+        if version != FORMAT_VERSION {
+            return Err(Error::CorruptModel(format!(
+                "the file has layout version {version}, but this treewise reads version \
+                 {FORMAT_VERSION}; use the treewise release that wrote it"
+            )));
+        }
+        let found = word(12);
+        if found != kind {
+            return Err(bad(format!("the file holds kind {found}, not kind {kind}")));
+        }
+        let mut len_bytes = [0u8; 8];
+        len_bytes.copy_from_slice(&file[16..24]);
+        let declared = u64::from_le_bytes(len_bytes);
+        let payload = &file[HEADER_LEN..];
+        if declared != payload.len() as u64 {
+            return Err(bad(format!(
+                "the header declares {declared} bytes of payload but {} follow (truncated?)",
+                payload.len()
+            )));
+        }
+        if crc32fast::hash(payload) != word(24) {
+            return Err(bad("the checksum does not match the contents"));
+        }
+        Ok(Reader {
+            buf: payload,
+            pos: 0,
+        })
+    }
+
+    fn take(&mut self, n: usize) -> Result<&'a [u8]> {
+        if n > self.buf.len() - self.pos {
+            return Err(bad(format!(
+                "a field at byte {} runs past the end",
+                self.pos
+            )));
+        }
+        let out = &self.buf[self.pos..self.pos + n];
+        self.pos += n;
+        Ok(out)
+    }
+    fn array<const N: usize>(&mut self) -> Result<[u8; N]> {
+        let mut a = [0u8; N];
+        a.copy_from_slice(self.take(N)?);
+        Ok(a)
+    }
+    pub fn u8(&mut self) -> Result<u8> {
+        Ok(self.take(1)?[0])
+    }
+    pub fn u32(&mut self) -> Result<u32> {
+        Ok(u32::from_le_bytes(self.array()?))
+    }
+    pub fn u64(&mut self) -> Result<u64> {
+        Ok(u64::from_le_bytes(self.array()?))
+    }
+    pub fn i64(&mut self) -> Result<i64> {
+        Ok(i64::from_le_bytes(self.array()?))
+    }
+    pub fn f64(&mut self) -> Result<f64> {
+        Ok(f64::from_le_bytes(self.array()?))
+    }
+    /// A count of items of `size` bytes each, checked against what is left before any allocation.
+    pub fn len(&mut self, size: usize) -> Result<usize> {
+        let n = self.u64()?;
+        let left = (self.buf.len() - self.pos) as u64;
+        if n.checked_mul(size.max(1) as u64)
+            .is_none_or(|bytes| bytes > left)
+        {
+            return Err(bad(format!(
+                "a length of {n} at byte {} is larger than the file",
+                self.pos - 8
+            )));
+        }
+        usize::try_from(n).map_err(|_| bad("a length does not fit in memory"))
+    }
+    pub fn str(&mut self) -> Result<String> {
+        let n = self.len(1)?;
+        let bytes = self.take(n)?;
+        String::from_utf8(bytes.to_vec()).map_err(|_| bad("a name is not valid UTF-8"))
+    }
+    pub fn u64s(&mut self) -> Result<Vec<u64>> {
+        let n = self.len(8)?;
+        (0..n).map(|_| self.u64()).collect()
+    }
+    pub fn f64s(&mut self) -> Result<Vec<f64>> {
+        let n = self.len(8)?;
+        (0..n).map(|_| self.f64()).collect()
+    }
+    /// Fails unless every byte was read.
+    pub fn end(&self) -> Result<()> {
+        if self.pos != self.buf.len() {
+            return Err(bad(format!(
+                "{} unread bytes at the end",
+                self.buf.len() - self.pos
+            )));
+        }
+        Ok(())
+    }
+}
+
+fn kind_code(kind: Kind) -> u8 {
+    match kind {
+        Kind::Bool => 0,
+        Kind::Int => 1,
+        Kind::UInt => 2,
+        Kind::Str => 3,
+        Kind::Float => 4,
+    }
+}
+
+/// Writes a codebook's columns.
+pub fn write_codebook(w: &mut Writer, codebook: &Codebook) {
+    w.len(codebook.columns().len());
+    for col in codebook.columns() {
+        w.str(col.name());
+        w.u8(kind_code(col.values().kind()));
+        w.u8(u8::from(col.has_other()));
+        w.u8(u8::from(col.has_null()));
+        match col.values() {
+            Values::Bool(v) => {
+                w.len(v.len());
+                v.iter().for_each(|b| w.u8(u8::from(*b)));
+            }
+            Values::Int(v) => {
+                w.len(v.len());
+                v.iter().for_each(|x| w.i64(*x));
+            }
+            Values::UInt(v) => w.u64s(v),
+            Values::Str(v) => {
+                w.len(v.len());
+                v.iter().for_each(|s| w.str(s));
+            }
+            Values::Bins { edges, low, high } => {
+                w.f64s(edges);
+                w.f64(*low);
+                w.f64(*high);
+            }
+        }
+    }
+}
+
+fn flag(r: &mut Reader<'_>) -> Result<bool> {
+    match r.u8()? {
+        0 => Ok(false),
+        1 => Ok(true),
+        other => Err(bad(format!("a flag byte is {other}, not 0 or 1"))),
+    }
+}
+
+/// Reads a codebook, validating each column (sorted, distinct, finite values; sizes).
+pub fn read_codebook(r: &mut Reader<'_>) -> Result<Codebook> {
+    // The smallest column takes 8 + 3 + 8 bytes; that bounds the count before allocating.
+    let n = r.len(19)?;
+    let mut columns = Vec::with_capacity(n);
+    for _ in 0..n {
+        let name = r.str()?;
+        let kind = r.u8()?;
+        let has_other = flag(r)?;
+        let has_null = flag(r)?;
+        let values = match kind {
+            0 => {
+                let k = r.len(1)?;
+                Values::Bool((0..k).map(|_| flag(r)).collect::<Result<_>>()?)
+            }
+            1 => {
+                let k = r.len(8)?;
+                Values::Int((0..k).map(|_| r.i64()).collect::<Result<_>>()?)
+            }
+            2 => Values::UInt(r.u64s()?),
+            3 => {
+                let k = r.len(8)?;
+                Values::Str(
+                    (0..k)
+                        .map(|_| r.str().map(String::into_boxed_str))
+                        .collect::<Result<_>>()?,
+                )
+            }
+            4 => {
+                let edges = r.f64s()?;
+                Values::Bins {
+                    edges,
+                    low: r.f64()?,
+                    high: r.f64()?,
+                }
+            }
+            other => return Err(bad(format!("column '{name}' has unknown kind {other}"))),
+        };
+        let col = ColumnCode::new(name, values, has_other, has_null).map_err(|e| match e {
+            Error::CorruptModel(m) => Error::CorruptModel(m),
+            other => bad(other),
+        })?;
+        columns.push(col);
+    }
+    Codebook::new(columns).map_err(bad)
+}
+
+/// The bytes of a model file.
+pub fn model_to_bytes(model: &TreeModel) -> Vec<u8> {
+    let mut w = Writer::default();
+    write_codebook(&mut w, model.codebook());
+    w.len(model.dtypes().len());
+    model.dtypes().iter().for_each(|t| w.str(t));
+    w.u64(model.n_rows());
+    w.f64(model.alpha());
+    w.u32(u32::try_from(model.root()).unwrap_or(NO_PARENT));
+    for p in model.parent() {
+        w.u32(p.map_or(NO_PARENT, |p| u32::try_from(p).unwrap_or(NO_PARENT)));
+    }
+    model.counts().iter().for_each(|c| w.u64s(c));
+    w.f64s(model.pair_mi());
+    w.finish(KIND_MODEL)
+}
+
+/// Reads and validates a model file.
+pub fn model_from_bytes(file: &[u8]) -> Result<TreeModel> {
+    let mut r = Reader::open(file, KIND_MODEL)?;
+    let codebook = read_codebook(&mut r)?;
+    let d = codebook.columns().len();
+    let n_types = r.len(8)?;
+    if n_types != d {
+        return Err(bad(format!("{n_types} column types for {d} columns")));
+    }
+    let dtypes = (0..d).map(|_| r.str()).collect::<Result<Vec<_>>>()?;
+    let n_rows = r.u64()?;
+    let alpha = r.f64()?;
+    let root = r.u32()? as usize;
+    let parent = (0..d)
+        .map(|_| r.u32().map(|p| (p != NO_PARENT).then_some(p as usize)))
+        .collect::<Result<Vec<_>>>()?;
+    let counts = (0..d).map(|_| r.u64s()).collect::<Result<Vec<_>>>()?;
+    let pair_mi = r.f64s()?;
+    r.end()?;
+    TreeModel::new(
+        codebook, dtypes, n_rows, root, parent, counts, pair_mi, alpha,
+    )
+    .map_err(|e| match e {
+        Error::CorruptModel(m) => Error::CorruptModel(m),
+        other => bad(other),
+    })
+}

@@ -1,0 +1,565 @@
+//! The fitted tree as a distribution: smoothed conditional tables kept as exact counts, row
+//! scores, per-column surprisal and ancestral sampling.
+
+use arrow_array::RecordBatch;
+use rayon::prelude::*;
+
+use crate::codebook::{Codebook, Values, UNSEEN};
+use crate::error::{Error, Result};
+use crate::rng::Rng;
+use crate::stats::{pair_index, PairStats};
+use crate::weights::{chi2_sf, PairWeight};
+
+/// Rows per sampling block: each block draws from its own random stream, so the rows do not
+/// depend on how many threads run or how the caller chunks the request.
+pub const SAMPLE_BLOCK: usize = 4096;
+/// Rows per scoring chunk handed to one thread.
+const SCORE_CHUNK: usize = 8192;
+
+/// One column's conditional table P(x | parent code), or its marginal when it is a root.
+#[derive(Clone, Debug)]
+struct Cpt {
+    card: usize,
+    /// ln P(x | a), row-major by parent code a (one row for a root).
+    logp: Vec<f64>,
+    /// ln of the probability given to a value without a code, per parent code.
+    unseen: Vec<f64>,
+    /// Cumulative probabilities per row, for sampling (+inf from the last possible code on).
+    cdf: Vec<f64>,
+    /// ln P(x), used when the parent's value has no code.
+    marginal: Vec<f64>,
+    marginal_unseen: f64,
+}
+
+/// ln((n + alpha) / denom) for each count of one row, and ln(alpha / denom) for a value without
+/// a code. A row with no counts and no smoothing is uniform (the alpha -> 0 limit).
+fn smoothed_row(counts: &[u64], alpha: f64) -> (Vec<f64>, f64) {
+    let card = counts.len();
+    let total: u64 = counts.iter().sum();
+    let denom = total as f64 + alpha * card as f64;
+    if denom <= 0.0 {
+        let uniform = (1.0 / card as f64).ln();
+        return (vec![uniform; card], uniform);
+    }
+    let logp = counts
+        .iter()
+        .map(|&n| ((n as f64 + alpha) / denom).ln())
+        .collect();
+    (logp, (alpha / denom).ln())
+}
+
+impl Cpt {
+    fn new(counts: &[u64], rows: usize, card: usize, alpha: f64) -> Cpt {
+        let mut logp = Vec::with_capacity(rows * card);
+        let mut unseen = Vec::with_capacity(rows);
+        let mut cdf = Vec::with_capacity(rows * card);
+        let mut column_sums = vec![0u64; card];
+        for row in counts.chunks_exact(card) {
+            let (lp, un) = smoothed_row(row, alpha);
+            let mut acc = 0.0;
+            let start = cdf.len();
+            for &l in &lp {
+                acc += l.exp();
+                cdf.push(acc);
+            }
+            // Rounding must never pick a code of probability zero, nor run off the end.
+            if let Some(last) = lp.iter().rposition(|l| *l > f64::NEG_INFINITY) {
+                cdf[start + last..]
+                    .iter_mut()
+                    .for_each(|c| *c = f64::INFINITY);
+            }
+            logp.extend(lp);
+            unseen.push(un);
+            column_sums.iter_mut().zip(row).for_each(|(s, n)| *s += n);
+        }
+        let (marginal, marginal_unseen) = smoothed_row(&column_sums, alpha);
+        Cpt {
+            card,
+            logp,
+            unseen,
+            cdf,
+            marginal,
+            marginal_unseen,
+        }
+    }
+
+    /// ln P(x | a), where either code may be UNSEEN.
+    #[inline]
+    fn log_prob(&self, a: Option<u16>, x: u16) -> f64 {
+        match a {
+            Some(a) if a != UNSEEN => {
+                let a = usize::from(a);
+                if x == UNSEEN {
+                    self.unseen[a]
+                } else {
+                    self.logp[a * self.card + usize::from(x)]
+                }
+            }
+            _ => {
+                if x == UNSEEN {
+                    self.marginal_unseen
+                } else {
+                    self.marginal[usize::from(x)]
+                }
+            }
+        }
+    }
+
+    #[inline]
+    fn draw(&self, a: usize, u: f64) -> u16 {
+        let row = &self.cdf[a * self.card..(a + 1) * self.card];
+        let k = row.partition_point(|c| *c <= u).min(self.card - 1);
+        u16::try_from(k).unwrap_or(0)
+    }
+}
+
+/// Scores of one batch.
+#[derive(Clone, Debug, Default)]
+pub struct Scored {
+    /// ln p(row) per row.
+    pub total: Vec<f64>,
+    /// −ln P(x_c | x_parent) per column, then per row (only when asked for).
+    pub surprisal: Option<Vec<Vec<f64>>>,
+    /// Per column: how many values (or nulls) had no code of their own.
+    pub unseen: Vec<u64>,
+}
+
+/// Sampled rows, as codes, plus the numbers drawn inside the bins of float columns.
+#[derive(Clone, Debug, Default)]
+pub struct Sampled {
+    /// Codes per column.
+    pub codes: Vec<Vec<u16>>,
+    /// Per column: for a float column, the value drawn in its bin (NaN for a null code).
+    pub floats: Vec<Option<Vec<f64>>>,
+}
+
+/// A fitted dependency tree (or forest) over one codebook.
+#[derive(Clone, Debug)]
+pub struct TreeModel {
+    codebook: Codebook,
+    dtypes: Vec<String>,
+    n_rows: u64,
+    root: usize,
+    parent: Vec<Option<usize>>,
+    order: Vec<usize>,
+    counts: Vec<Vec<u64>>,
+    pair_mi: Vec<f64>,
+    alpha: f64,
+    cpts: Vec<Cpt>,
+}
+
+fn corrupt(what: String) -> Error {
+    Error::CorruptModel(format!("the model is inconsistent: {what}"))
+}
+
+/// The breadth-first order of a forest given by parent links, from `root` first and then from the
+/// other roots in index order; children are visited in index order. None if it is not a forest.
+fn forest_order(parent: &[Option<usize>], root: usize) -> Option<Vec<usize>> {
+    let d = parent.len();
+    let mut children = vec![Vec::new(); d];
+    for (c, p) in parent.iter().enumerate() {
+        if let Some(p) = *p {
+            children.get_mut(p)?.push(c);
+        }
+    }
+    let mut order = Vec::with_capacity(d);
+    let roots = std::iter::once(root).chain((0..d).filter(|&c| c != root));
+    for r in roots {
+        if parent.get(r)?.is_some() {
+            continue;
+        }
+        let mut head = order.len();
+        order.push(r);
+        while head < order.len() {
+            let v = order[head];
+            head += 1;
+            order.extend(children[v].iter().copied());
+            if order.len() > d {
+                return None;
+            }
+        }
+    }
+    (order.len() == d).then_some(order)
+}
+
+impl TreeModel {
+    /// Builds a model from its parts, checking every length, link and count, so that a model
+    /// read from an untrusted file can never index out of bounds.
+    #[allow(clippy::too_many_arguments)]
+    pub fn new(
+        codebook: Codebook,
+        dtypes: Vec<String>,
+        n_rows: u64,
+        root: usize,
+        parent: Vec<Option<usize>>,
+        counts: Vec<Vec<u64>>,
+        pair_mi: Vec<f64>,
+        alpha: f64,
+    ) -> Result<Self> {
+        let d = codebook.columns().len();
+        let cards = codebook.cardinalities();
+        if d == 0 || n_rows == 0 {
+            return Err(corrupt(format!("{d} columns and {n_rows} rows")));
+        }
+        if dtypes.len() != d || parent.len() != d || counts.len() != d {
+            return Err(corrupt(format!(
+                "{d} columns but {} types, {} parents and {} count tables",
+                dtypes.len(),
+                parent.len(),
+                counts.len()
+            )));
+        }
+        if pair_mi.len() != d * (d - 1) / 2 || pair_mi.iter().any(|m| !m.is_finite() || *m < 0.0) {
+            return Err(corrupt(
+                "the pairwise mutual information is malformed".into(),
+            ));
+        }
+        if root >= d || parent[root].is_some() {
+            return Err(corrupt(format!("column {root} cannot be the root")));
+        }
+        if parent
+            .iter()
+            .enumerate()
+            .any(|(c, p)| p.is_some_and(|p| p >= d || p == c))
+        {
+            return Err(corrupt("a parent link points outside the columns".into()));
+        }
+        let order = forest_order(&parent, root)
+            .ok_or_else(|| corrupt("the parent links form a cycle".into()))?;
+        let mut column_sums: Vec<Vec<u64>> = Vec::with_capacity(d);
+        for c in 0..d {
+            let rows = parent[c].map_or(1, |p| cards[p]);
+            if Some(counts[c].len()) != rows.checked_mul(cards[c]) {
+                return Err(corrupt(format!(
+                    "column {c}'s table has {} cells",
+                    counts[c].len()
+                )));
+            }
+            let total = counts[c]
+                .iter()
+                .try_fold(0u64, |acc, n| acc.checked_add(*n));
+            if total != Some(n_rows) {
+                return Err(corrupt(format!(
+                    "column {c}'s counts do not add up to {n_rows} rows"
+                )));
+            }
+            let mut sums = vec![0u64; cards[c]];
+            for row in counts[c].chunks_exact(cards[c]) {
+                sums.iter_mut().zip(row).for_each(|(s, n)| *s += n);
+            }
+            column_sums.push(sums);
+        }
+        for c in 0..d {
+            if let Some(p) = parent[c] {
+                let row_sums: Vec<u64> = counts[c]
+                    .chunks_exact(cards[c])
+                    .map(|r| r.iter().sum())
+                    .collect();
+                if row_sums != column_sums[p] {
+                    return Err(corrupt(format!(
+                        "column {c}'s table disagrees with its parent's counts"
+                    )));
+                }
+            }
+        }
+        if dtypes
+            .iter()
+            .any(|t| t.is_empty() || t.len() > 200 || !t.is_ascii())
+        {
+            return Err(corrupt("a column type name is malformed".into()));
+        }
+        let mut model = TreeModel {
+            codebook,
+            dtypes,
+            n_rows,
+            root,
+            parent,
+            order,
+            counts,
+            pair_mi,
+            alpha: 0.0,
+            cpts: Vec::new(),
+        };
+        model.set_alpha(alpha)?;
+        Ok(model)
+    }
+
+    /// The model of a fitted structure: each column's counts with its parent, taken from `stats`.
+    pub fn from_stats(
+        codebook: Codebook,
+        dtypes: Vec<String>,
+        stats: &PairStats,
+        root: usize,
+        parent: Vec<Option<usize>>,
+        pair_mi: Vec<f64>,
+        alpha: f64,
+    ) -> Result<Self> {
+        if stats.cardinalities() != codebook.cardinalities().as_slice() {
+            return Err(Error::Schema(
+                "the pair statistics were not counted with this codebook".into(),
+            ));
+        }
+        let cards = stats.cardinalities();
+        let counts = parent
+            .iter()
+            .enumerate()
+            .map(|(c, p)| match *p {
+                None => stats.marginal(c).to_vec(),
+                Some(p) if p < c => stats.table(p, c).to_vec(),
+                Some(p) => {
+                    // Stored as (c, p); transpose so that rows are the parent's codes.
+                    let t = stats.table(c, p);
+                    let (rc, rp) = (cards[c], cards[p]);
+                    (0..rp * rc).map(|k| t[(k % rc) * rp + k / rc]).collect()
+                }
+            })
+            .collect();
+        TreeModel::new(
+            codebook,
+            dtypes,
+            stats.n_rows(),
+            root,
+            parent,
+            counts,
+            pair_mi,
+            alpha,
+        )
+    }
+
+    /// Changes the Dirichlet smoothing; the counts stay, so no refit is needed.
+    pub fn set_alpha(&mut self, alpha: f64) -> Result<()> {
+        if !(alpha.is_finite() && alpha >= 0.0) {
+            return Err(Error::Invalid(format!(
+                "alpha must be a finite number >= 0, got {alpha}"
+            )));
+        }
+        let cards = self.codebook.cardinalities();
+        self.cpts = (0..cards.len())
+            .map(|c| {
+                let rows = self.parent[c].map_or(1, |p| cards[p]);
+                Cpt::new(&self.counts[c], rows, cards[c], alpha)
+            })
+            .collect();
+        self.alpha = alpha;
+        Ok(())
+    }
+
+    /// The codebook.
+    pub fn codebook(&self) -> &Codebook {
+        &self.codebook
+    }
+    /// Each column's output type name (opaque to the core).
+    pub fn dtypes(&self) -> &[String] {
+        &self.dtypes
+    }
+    /// Rows the counts come from.
+    pub fn n_rows(&self) -> u64 {
+        self.n_rows
+    }
+    /// The column the structure is oriented from.
+    pub fn root(&self) -> usize {
+        self.root
+    }
+    /// Each column's parent.
+    pub fn parent(&self) -> &[Option<usize>] {
+        &self.parent
+    }
+    /// Breadth-first order: parents before children.
+    pub fn order(&self) -> &[usize] {
+        &self.order
+    }
+    /// Per column: its counts (a root's marginal, or the parent x child table).
+    pub fn counts(&self) -> &[Vec<u64>] {
+        &self.counts
+    }
+    /// Mutual information of every pair, in pair-index order.
+    pub fn pair_mi(&self) -> &[f64] {
+        &self.pair_mi
+    }
+    /// The smoothing pseudo-count.
+    pub fn alpha(&self) -> f64 {
+        self.alpha
+    }
+
+    /// Free parameters: Σ_i (r_i − 1) + Σ_edges (r_parent − 1)(r_child − 1).
+    pub fn n_parameters(&self) -> u64 {
+        let cards = self.codebook.cardinalities();
+        let singles: u64 = cards.iter().map(|&r| r as u64 - 1).sum();
+        let edges: u64 = self
+            .parent
+            .iter()
+            .enumerate()
+            .filter_map(|(c, p)| p.map(|p| (cards[p] as u64 - 1) * (cards[c] as u64 - 1)))
+            .sum();
+        singles + edges
+    }
+
+    /// The weight of the edge into `child` (None for a root), recomputed from the kept counts;
+    /// equal to the fit's pair weight because the counts are the same.
+    pub fn edge_weight(&self, child: usize) -> Option<PairWeight> {
+        let p = self.parent.get(child).copied().flatten()?;
+        let d = self.parent.len();
+        let mi = self.pair_mi[pair_index(d, p.min(child), p.max(child))];
+        let card = self.codebook.cardinalities()[child];
+        let table = &self.counts[child];
+        let occurring_child = (0..card)
+            .filter(|&x| table.iter().skip(x).step_by(card).any(|n| *n > 0))
+            .count() as u64;
+        let occurring_parent = table
+            .chunks_exact(card)
+            .filter(|row| row.iter().any(|n| *n > 0))
+            .count() as u64;
+        let dof = occurring_parent.saturating_sub(1) * occurring_child.saturating_sub(1);
+        let g = 2.0 * self.n_rows as f64 * mi;
+        Some(PairWeight {
+            mutual_info: mi,
+            g_statistic: g,
+            dof,
+            p_value: chi2_sf(g, dof),
+        })
+    }
+
+    /// ln P of column c's code at each row given its parent's code (UNSEEN allowed in both).
+    fn column_log_prob(
+        &self,
+        codes: &[Vec<u16>],
+        c: usize,
+        rows: std::ops::Range<usize>,
+        out: &mut [f64],
+        add: bool,
+    ) {
+        let cpt = &self.cpts[c];
+        let xs = &codes[c][rows.clone()];
+        match self.parent[c] {
+            Some(p) => {
+                let ps = &codes[p][rows];
+                for ((o, &x), &a) in out.iter_mut().zip(xs).zip(ps) {
+                    let l = cpt.log_prob(Some(a), x);
+                    *o = if add { *o + l } else { l };
+                }
+            }
+            None => {
+                for (o, &x) in out.iter_mut().zip(xs) {
+                    let l = cpt.log_prob(Some(0), x);
+                    *o = if add { *o + l } else { l };
+                }
+            }
+        }
+    }
+
+    /// Scores one batch with the model's columns (in order). With `surprisal`, also returns
+    /// −ln P(x_c | x_parent) for every column.
+    pub fn score(&self, batch: &RecordBatch, surprisal: bool) -> Result<Scored> {
+        let codes = self.codebook.encode(batch, false)?;
+        let n = batch.num_rows();
+        let d = codes.len();
+        let unseen = codes
+            .par_iter()
+            .map(|col| col.iter().filter(|c| **c == UNSEEN).count() as u64)
+            .collect();
+        let mut total = vec![0.0; n];
+        total
+            .par_chunks_mut(SCORE_CHUNK)
+            .enumerate()
+            .for_each(|(k, out)| {
+                let start = k * SCORE_CHUNK;
+                for c in 0..d {
+                    self.column_log_prob(&codes, c, start..start + out.len(), out, true);
+                }
+            });
+        let surprisal = surprisal.then(|| {
+            (0..d)
+                .into_par_iter()
+                .map(|c| {
+                    let mut col = vec![0.0; n];
+                    self.column_log_prob(&codes, c, 0..n, &mut col, false);
+                    col.iter_mut().for_each(|v| *v = -*v);
+                    col
+                })
+                .collect()
+        });
+        Ok(Scored {
+            total,
+            surprisal,
+            unseen,
+        })
+    }
+
+    /// Draws `count` rows by ancestral sampling, starting at row `start` of the stream of `seed`.
+    /// `start` must be a multiple of [`SAMPLE_BLOCK`]: the rows of a seed are then the same
+    /// however the request is split.
+    pub fn sample(&self, start: u64, count: usize, seed: u64) -> Result<Sampled> {
+        if !start.is_multiple_of(SAMPLE_BLOCK as u64) {
+            return Err(Error::Invalid(format!(
+                "sampling must start at a multiple of {SAMPLE_BLOCK} rows"
+            )));
+        }
+        let d = self.codebook.columns().len();
+        let first_block = start / SAMPLE_BLOCK as u64;
+        let n_blocks = count.div_ceil(SAMPLE_BLOCK);
+        let bounds: Vec<Option<Vec<f64>>> = self
+            .codebook
+            .columns()
+            .iter()
+            .map(|col| match col.values() {
+                Values::Bins { edges, low, high } => {
+                    let mut b = Vec::with_capacity(edges.len() + 2);
+                    b.push(*low);
+                    b.extend_from_slice(edges);
+                    b.push(*high);
+                    Some(b)
+                }
+                _ => None,
+            })
+            .collect();
+        let blocks: Vec<Sampled> = (0..n_blocks)
+            .into_par_iter()
+            .map(|b| {
+                let rows = SAMPLE_BLOCK.min(count - b * SAMPLE_BLOCK);
+                let mut rng = Rng::new(seed, first_block + b as u64);
+                let mut codes = vec![vec![0u16; rows]; d];
+                let mut floats: Vec<Option<Vec<f64>>> = bounds
+                    .iter()
+                    .map(|b| b.as_ref().map(|_| vec![f64::NAN; rows]))
+                    .collect();
+                for r in 0..rows {
+                    for &c in &self.order {
+                        let a = self.parent[c].map_or(0, |p| usize::from(codes[p][r]));
+                        let x = self.cpts[c].draw(a, rng.next_f64());
+                        codes[c][r] = x;
+                        if let (Some(bound), Some(out)) = (&bounds[c], &mut floats[c]) {
+                            let u = rng.next_f64();
+                            let k = usize::from(x);
+                            if k + 1 < bound.len() {
+                                let (lo, hi) = (bound[k], bound[k + 1]);
+                                let v = lo + u * (hi - lo);
+                                // Bins are [lo, hi) except the last; rounding must not leave them.
+                                let last = k + 2 == bound.len();
+                                out[r] = if v < hi || last { v.min(hi) } else { lo };
+                            }
+                        }
+                    }
+                }
+                Sampled { codes, floats }
+            })
+            .collect();
+        let mut out = Sampled {
+            codes: vec![Vec::with_capacity(count); d],
+            floats: bounds
+                .iter()
+                .map(|b| b.as_ref().map(|_| Vec::with_capacity(count)))
+                .collect(),
+        };
+        for block in blocks {
+            for (all, part) in out.codes.iter_mut().zip(block.codes) {
+                all.extend(part);
+            }
+            for (all, part) in out.floats.iter_mut().zip(block.floats) {
+                if let (Some(all), Some(part)) = (all, part) {
+                    all.extend(part);
+                }
+            }
+        }
+        Ok(out)
+    }
+}

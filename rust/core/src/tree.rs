@@ -1,0 +1,111 @@
+//! Structure: Kruskal's maximum spanning tree under one strict edge order, then orientation away
+//! from the root by a breadth-first walk with sorted neighbours.
+
+use std::cmp::Ordering;
+use std::collections::VecDeque;
+
+use crate::stats::pairs;
+
+/// The strict edge order: weight descending (`total_cmp`), then the lower column, then the higher.
+pub fn edge_order(a: (f64, usize, usize), b: (f64, usize, usize)) -> Ordering {
+    b.0.total_cmp(&a.0).then(a.1.cmp(&b.1)).then(a.2.cmp(&b.2))
+}
+
+fn find(parent: &mut [usize], mut x: usize) -> usize {
+    while parent[x] != x {
+        parent[x] = parent[parent[x]];
+        x = parent[x];
+    }
+    x
+}
+
+/// Kruskal's algorithm over `d` columns with pair weights in pair-index order. `keep` decides, for
+/// each candidate edge in order, whether it may join the structure (pruning); with a `keep` that
+/// always says yes the result is a spanning tree. Edges come back in the order they were chosen.
+pub fn kruskal(d: usize, weights: &[f64], keep: impl Fn(usize) -> bool) -> Vec<(usize, usize)> {
+    let all = pairs(d);
+    let mut order: Vec<usize> = (0..all.len()).collect();
+    order.sort_unstable_by(|&p, &q| {
+        edge_order(
+            (weights[p], all[p].0, all[p].1),
+            (weights[q], all[q].0, all[q].1),
+        )
+    });
+    let mut uf: Vec<usize> = (0..d).collect();
+    let mut chosen = Vec::with_capacity(d.saturating_sub(1));
+    for p in order {
+        if chosen.len() + 1 >= d {
+            break;
+        }
+        let (i, j) = all[p];
+        let (ri, rj) = (find(&mut uf, i), find(&mut uf, j));
+        if ri != rj && keep(p) {
+            uf[ri.max(rj)] = ri.min(rj);
+            chosen.push((i, j));
+        }
+    }
+    chosen
+}
+
+/// An oriented forest: each column's parent (`None` for a root) and a breadth-first order in which
+/// every parent comes before its children.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Oriented {
+    pub parent: Vec<Option<usize>>,
+    pub order: Vec<usize>,
+}
+
+/// Orients undirected edges away from `root`; any other component is walked from its lowest column.
+pub fn orient(d: usize, edges: &[(usize, usize)], root: usize) -> Oriented {
+    let mut neighbours: Vec<Vec<usize>> = vec![Vec::new(); d];
+    for &(i, j) in edges {
+        neighbours[i].push(j);
+        neighbours[j].push(i);
+    }
+    neighbours.iter_mut().for_each(|n| n.sort_unstable());
+    let mut parent = vec![None; d];
+    let mut seen = vec![false; d];
+    let mut order = Vec::with_capacity(d);
+    let starts = std::iter::once(root).chain((0..d).filter(|&c| c != root));
+    for start in starts {
+        if start >= d || seen[start] {
+            continue;
+        }
+        seen[start] = true;
+        let mut queue = VecDeque::from([start]);
+        while let Some(v) = queue.pop_front() {
+            order.push(v);
+            for &w in &neighbours[v] {
+                if !seen[w] {
+                    seen[w] = true;
+                    parent[w] = Some(v);
+                    queue.push_back(w);
+                }
+            }
+        }
+    }
+    Oriented { parent, order }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn ties_break_by_lower_then_higher_column() {
+        // Four columns, every weight equal: the tree is the star at column 0, chosen in order.
+        let w = vec![1.0; 6];
+        assert_eq!(kruskal(4, &w, |_| true), vec![(0, 1), (0, 2), (0, 3)]);
+    }
+
+    #[test]
+    fn heaviest_edges_win() {
+        // Pairs: (0,1)=0.1 (0,2)=0.9 (0,3)=0.2 (1,2)=0.8 (1,3)=0.05 (2,3)=0.3
+        let w = vec![0.1, 0.9, 0.2, 0.8, 0.05, 0.3];
+        let t = kruskal(4, &w, |_| true);
+        assert_eq!(t, vec![(0, 2), (1, 2), (2, 3)]);
+        let o = orient(4, &t, 3);
+        assert_eq!(o.parent, vec![Some(2), Some(2), Some(3), None]);
+        assert_eq!(o.order, vec![3, 2, 0, 1]);
+    }
+}

@@ -1,0 +1,239 @@
+//! treewise._core: thin pyo3 bindings over treewise-core (type conversion, GIL release, errors).
+
+mod arrow_import;
+mod errors;
+mod model;
+mod threads;
+
+use pyo3::prelude::*;
+use pyo3::types::{PyBytes, PyList, PyTuple};
+use treewise_core::codebook::{CodebookBuilder, Values};
+use treewise_core::{Codebook, PairStats};
+
+use crate::arrow_import::import_batch;
+use crate::errors::{detached, to_py};
+
+/// What the cap did to one column: (column, values capped, rows capped).
+type CapTuple = (String, usize, u64);
+
+/// The codebook pass: tallies every batch, then fixes the codes.
+#[pyclass(name = "CodebookBuilder", module = "treewise._core")]
+struct PyCodebookBuilder {
+    inner: Option<CodebookBuilder>,
+}
+
+#[pymethods]
+impl PyCodebookBuilder {
+    #[new]
+    fn new(names: Vec<String>) -> Self {
+        PyCodebookBuilder {
+            inner: Some(CodebookBuilder::new(names)),
+        }
+    }
+
+    /// Tallies one Arrow record batch (any object with `__arrow_c_array__`).
+    fn observe(&mut self, py: Python<'_>, batch: &Bound<'_, PyAny>) -> PyResult<()> {
+        let batch = import_batch(batch)?;
+        let builder = self.builder()?;
+        detached(py, || builder.observe(&batch))
+    }
+
+    /// Rows observed so far.
+    #[getter]
+    fn rows(&self) -> PyResult<u64> {
+        Ok(self.inner.as_ref().map_or(0, CodebookBuilder::rows))
+    }
+
+    /// Fixes the codes; returns the codebook and a list of (column, values capped, rows capped).
+    fn finish(
+        &mut self,
+        py: Python<'_>,
+        max_categories: usize,
+        n_bins: usize,
+    ) -> PyResult<(PyCodebook, Vec<CapTuple>)> {
+        let builder = self.inner.take().ok_or_else(finished_error)?;
+        let (codebook, caps) = detached(py, move || builder.finish(max_categories, n_bins))?;
+        let caps = caps
+            .into_iter()
+            .map(|c| (c.column, c.values_capped, c.rows_capped))
+            .collect();
+        Ok((PyCodebook { inner: codebook }, caps))
+    }
+}
+
+impl PyCodebookBuilder {
+    fn builder(&mut self) -> PyResult<&mut CodebookBuilder> {
+        self.inner.as_mut().ok_or_else(finished_error)
+    }
+}
+
+fn finished_error() -> PyErr {
+    to_py(treewise_core::Error::Invalid(
+        "this codebook builder has already finished".into(),
+    ))
+}
+
+/// A fixed codebook: the codes of every column.
+#[pyclass(name = "Codebook", module = "treewise._core", frozen)]
+pub(crate) struct PyCodebook {
+    pub(crate) inner: Codebook,
+}
+
+#[pymethods]
+impl PyCodebook {
+    /// The column names, in order.
+    #[getter]
+    fn names(&self) -> Vec<String> {
+        self.inner
+            .columns()
+            .iter()
+            .map(|c| c.name().to_string())
+            .collect()
+    }
+
+    /// Each column's number of codes.
+    #[getter]
+    fn cardinalities(&self) -> Vec<usize> {
+        self.inner.cardinalities()
+    }
+
+    /// Column `i` as (kind, values, has_other, has_null). For floats, values is
+    /// (edges, low, high).
+    fn column(&self, py: Python<'_>, i: usize) -> PyResult<(String, Py<PyAny>, bool, bool)> {
+        let col = self
+            .inner
+            .columns()
+            .get(i)
+            .ok_or_else(|| to_py(treewise_core::Error::Invalid(format!("no column {i}"))))?;
+        let values: Py<PyAny> = match col.values() {
+            Values::Bool(v) => PyList::new(py, v)?.into_any().unbind(),
+            Values::Int(v) => PyList::new(py, v)?.into_any().unbind(),
+            Values::UInt(v) => PyList::new(py, v)?.into_any().unbind(),
+            Values::Str(v) => PyList::new(py, v.iter().map(|s| s.as_ref()))?
+                .into_any()
+                .unbind(),
+            Values::Bins { edges, low, high } => PyTuple::new(
+                py,
+                [
+                    PyList::new(py, edges)?.into_any(),
+                    low.into_pyobject(py)?.into_any(),
+                    high.into_pyobject(py)?.into_any(),
+                ],
+            )?
+            .into_any()
+            .unbind(),
+        };
+        Ok((
+            col.values().kind().name().to_string(),
+            values,
+            col.has_other(),
+            col.has_null(),
+        ))
+    }
+
+    fn __len__(&self) -> usize {
+        self.inner.columns().len()
+    }
+}
+
+/// Exact pair counts over one codebook's codes.
+#[pyclass(name = "PairStats", module = "treewise._core")]
+pub(crate) struct PyPairStats {
+    pub(crate) inner: PairStats,
+}
+
+#[pymethods]
+impl PyPairStats {
+    #[new]
+    fn new(codebook: &PyCodebook) -> PyResult<Self> {
+        let inner = PairStats::new(codebook.inner.cardinalities()).map_err(to_py)?;
+        Ok(PyPairStats { inner })
+    }
+
+    /// Encodes one Arrow record batch with `codebook` and adds its counts.
+    fn update(
+        &mut self,
+        py: Python<'_>,
+        codebook: &PyCodebook,
+        batch: &Bound<'_, PyAny>,
+    ) -> PyResult<()> {
+        let batch = import_batch(batch)?;
+        let stats = &mut self.inner;
+        let codebook = &codebook.inner;
+        detached(py, || {
+            let codes = codebook.encode(&batch, true)?;
+            stats.add_codes(&codes)
+        })
+    }
+
+    /// Adds another PairStats' counts to these.
+    fn merge(&mut self, py: Python<'_>, other: &PyPairStats) -> PyResult<()> {
+        let stats = &mut self.inner;
+        let other = &other.inner;
+        detached(py, || stats.merge(other))
+    }
+
+    /// Rows counted.
+    #[getter]
+    fn n_rows(&self) -> u64 {
+        self.inner.n_rows()
+    }
+
+    /// Each column's number of codes.
+    #[getter]
+    fn cardinalities(&self) -> Vec<usize> {
+        self.inner.cardinalities().to_vec()
+    }
+
+    /// Column `i`'s counts, as little-endian u64 bytes.
+    fn marginal<'py>(&self, py: Python<'py>, i: usize) -> PyResult<Bound<'py, PyBytes>> {
+        let d = self.inner.n_columns();
+        if i >= d {
+            return Err(to_py(treewise_core::Error::Invalid(format!(
+                "no column {i} of {d}"
+            ))));
+        }
+        Ok(u64_bytes(py, self.inner.marginal(i)))
+    }
+
+    /// The table of columns i < j (row-major r_i x r_j), as little-endian u64 bytes.
+    fn table<'py>(&self, py: Python<'py>, i: usize, j: usize) -> PyResult<Bound<'py, PyBytes>> {
+        let d = self.inner.n_columns();
+        if i >= j || j >= d {
+            return Err(to_py(treewise_core::Error::Invalid(format!(
+                "a table needs columns i < j < {d}, got ({i}, {j})"
+            ))));
+        }
+        Ok(u64_bytes(py, self.inner.table(i, j)))
+    }
+}
+
+fn u64_bytes<'py>(py: Python<'py>, values: &[u64]) -> Bound<'py, PyBytes> {
+    let bytes: Vec<u8> = values.iter().flat_map(|v| v.to_le_bytes()).collect();
+    PyBytes::new(py, &bytes)
+}
+
+/// The survival function of the chi-square distribution (exposed for the tests).
+#[pyfunction]
+fn chi2_sf(x: f64, dof: u64) -> f64 {
+    treewise_core::weights::chi2_sf(x, dof)
+}
+
+/// How many threads treewise's pool runs (set by TREEWISE_THREADS before the first call).
+#[pyfunction]
+fn thread_count() -> PyResult<usize> {
+    threads::pool().map(|p| p.current_num_threads())
+}
+
+#[pymodule]
+fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
+    m.add_class::<PyCodebookBuilder>()?;
+    m.add_class::<PyCodebook>()?;
+    m.add_class::<PyPairStats>()?;
+    m.add_class::<model::PyTreeModel>()?;
+    m.add("SAMPLE_BLOCK", treewise_core::model::SAMPLE_BLOCK)?;
+    m.add_function(wrap_pyfunction!(chi2_sf, m)?)?;
+    m.add_function(wrap_pyfunction!(thread_count, m)?)?;
+    m.add("DEBUG_BUILD", cfg!(debug_assertions))?;
+    Ok(())
+}

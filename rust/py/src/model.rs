@@ -1,0 +1,190 @@
+//! Bindings of the fitted model: fit, smoothing, scoring, sampling and the model file.
+
+use pyo3::prelude::*;
+use pyo3::types::PyBytes;
+use treewise_core::model::TreeModel;
+use treewise_core::{io, Error};
+
+use crate::arrow_import::import_batch;
+use crate::errors::{detached, to_py};
+use crate::{PyCodebook, PyPairStats};
+
+fn f64_bytes<'py>(py: Python<'py>, values: &[f64]) -> Bound<'py, PyBytes> {
+    let bytes: Vec<u8> = values.iter().flat_map(|v| v.to_le_bytes()).collect();
+    PyBytes::new(py, &bytes)
+}
+
+/// One edge: (parent, child, mutual_info, g_statistic, dof, p_value).
+type EdgeTuple = (usize, usize, f64, f64, u64, f64);
+
+/// A fitted dependency tree.
+#[pyclass(name = "TreeModel", module = "treewise._core")]
+pub struct PyTreeModel {
+    inner: TreeModel,
+}
+
+#[pymethods]
+impl PyTreeModel {
+    /// Fits the Chow–Liu tree of `stats` (counted with `codebook`), oriented from `root`.
+    #[staticmethod]
+    fn fit(
+        py: Python<'_>,
+        codebook: &PyCodebook,
+        stats: &PyPairStats,
+        dtypes: Vec<String>,
+        root: usize,
+        alpha: f64,
+    ) -> PyResult<Self> {
+        let codebook = codebook.inner.clone();
+        let stats = &stats.inner;
+        let inner = detached(py, move || {
+            treewise_core::fit_model(codebook, dtypes, stats, root, alpha)
+        })?;
+        Ok(PyTreeModel { inner })
+    }
+
+    /// Reads a model file's bytes, validating everything before use.
+    #[staticmethod]
+    fn from_bytes(py: Python<'_>, data: &[u8]) -> PyResult<Self> {
+        let inner = detached(py, || io::model_from_bytes(data))?;
+        Ok(PyTreeModel { inner })
+    }
+
+    /// The model file's bytes.
+    fn to_bytes<'py>(&self, py: Python<'py>) -> PyResult<Bound<'py, PyBytes>> {
+        let model = &self.inner;
+        let bytes = detached(py, || Ok(io::model_to_bytes(model)))?;
+        Ok(PyBytes::new(py, &bytes))
+    }
+
+    #[getter]
+    fn alpha(&self) -> f64 {
+        self.inner.alpha()
+    }
+
+    /// Changes the smoothing without refitting.
+    fn set_alpha(&mut self, alpha: f64) -> PyResult<()> {
+        self.inner.set_alpha(alpha).map_err(to_py)
+    }
+
+    #[getter]
+    fn codebook(&self) -> PyCodebook {
+        PyCodebook {
+            inner: self.inner.codebook().clone(),
+        }
+    }
+
+    #[getter]
+    fn dtypes(&self) -> Vec<String> {
+        self.inner.dtypes().to_vec()
+    }
+
+    #[getter]
+    fn n_rows(&self) -> u64 {
+        self.inner.n_rows()
+    }
+
+    #[getter]
+    fn root(&self) -> usize {
+        self.inner.root()
+    }
+
+    /// Each column's parent, -1 for a root.
+    #[getter]
+    fn parent(&self) -> Vec<i64> {
+        self.inner
+            .parent()
+            .iter()
+            .map(|p| p.map_or(-1, |p| p as i64))
+            .collect()
+    }
+
+    /// Breadth-first order, parents first.
+    #[getter]
+    fn order(&self) -> Vec<usize> {
+        self.inner.order().to_vec()
+    }
+
+    /// Mutual information of every pair, in pair order.
+    #[getter]
+    fn pair_mi(&self) -> Vec<f64> {
+        self.inner.pair_mi().to_vec()
+    }
+
+    #[getter]
+    fn n_parameters(&self) -> u64 {
+        self.inner.n_parameters()
+    }
+
+    /// Column `c`'s kept counts as little-endian u64 bytes (root: marginal; child: parent x child).
+    fn counts<'py>(&self, py: Python<'py>, c: usize) -> PyResult<Bound<'py, PyBytes>> {
+        let counts = self
+            .inner
+            .counts()
+            .get(c)
+            .ok_or_else(|| to_py(Error::Invalid(format!("no column {c}"))))?;
+        let bytes: Vec<u8> = counts.iter().flat_map(|v| v.to_le_bytes()).collect();
+        Ok(PyBytes::new(py, &bytes))
+    }
+
+    /// The edges in breadth-first order.
+    fn edges(&self) -> Vec<EdgeTuple> {
+        let parent = self.inner.parent();
+        self.inner
+            .order()
+            .iter()
+            .filter_map(|&c| {
+                let p = parent[c]?;
+                let w = self.inner.edge_weight(c)?;
+                Some((p, c, w.mutual_info, w.g_statistic, w.dof, w.p_value))
+            })
+            .collect()
+    }
+
+    /// Scores a batch with the model's columns: (ln p per row as f64 bytes, per-column
+    /// surprisal bytes or None, per-column count of values without a code).
+    #[allow(clippy::type_complexity)]
+    fn score<'py>(
+        &self,
+        py: Python<'py>,
+        batch: &Bound<'py, PyAny>,
+        surprisal: bool,
+    ) -> PyResult<(
+        Bound<'py, PyBytes>,
+        Option<Vec<Bound<'py, PyBytes>>>,
+        Vec<u64>,
+    )> {
+        let batch = import_batch(batch)?;
+        let model = &self.inner;
+        let scored = detached(py, || model.score(&batch, surprisal))?;
+        let columns = scored
+            .surprisal
+            .map(|cols| cols.iter().map(|c| f64_bytes(py, c)).collect());
+        Ok((f64_bytes(py, &scored.total), columns, scored.unseen))
+    }
+
+    /// Samples `count` rows from row `start` of the stream of `seed`: (u16 codes, column after
+    /// column, as bytes; per column the f64 bytes of values drawn in float bins, or None).
+    #[allow(clippy::type_complexity)]
+    fn sample<'py>(
+        &self,
+        py: Python<'py>,
+        start: u64,
+        count: usize,
+        seed: u64,
+    ) -> PyResult<(Bound<'py, PyBytes>, Vec<Option<Bound<'py, PyBytes>>>)> {
+        let model = &self.inner;
+        let sampled = detached(py, || model.sample(start, count, seed))?;
+        let codes: Vec<u8> = sampled
+            .codes
+            .iter()
+            .flat_map(|c| c.iter().flat_map(|v| v.to_le_bytes()))
+            .collect();
+        let floats = sampled
+            .floats
+            .iter()
+            .map(|f| f.as_ref().map(|f| f64_bytes(py, f)))
+            .collect();
+        Ok((PyBytes::new(py, &codes), floats))
+    }
+}
