@@ -324,6 +324,22 @@ def main(argv: Sequence[str] | None = None) -> None:
         once_if_over=REFERENCE_ONCE_SECONDS,
     )
     print(f"reference fit: best {ref.best:.2f} s over {len(ref.runs)} run(s)")
+    model, ref_tree_fit = tw.result, ref.result
+    score = time_calls(lambda: model.score_samples(data.table), args.repeats)
+    ref_score = time_calls(
+        lambda: reference.score_samples(ref_tree_fit, data.columns, model.alpha),
+        args.repeats,
+        once_if_over=REFERENCE_ONCE_SECONDS,
+    )
+    scores_agree = bool(np.allclose(score.result, ref_score.result, rtol=1e-12, atol=0.0))
+    print(f"score_samples: treewise {score.best:.3f} s, reference {ref_score.best:.2f} s")
+    draw = time_calls(lambda: model.sample(args.rows, random_state=0), args.repeats)
+    ref_draw = time_calls(
+        lambda: reference.sample(ref_tree_fit, args.rows, model.alpha, np.random.default_rng(0)),
+        args.repeats,
+        once_if_over=REFERENCE_ONCE_SECONDS,
+    )
+    print(f"sample: treewise {draw.best:.3f} s, reference {ref_draw.best:.2f} s")
     load_after = load_text()
     rebuilt = machine_info()["extension"] != info["extension"]
     if rebuilt:
@@ -343,6 +359,10 @@ def main(argv: Sequence[str] | None = None) -> None:
         ("numpy reference `reference.fit(columns)`", ref, "single-threaded numpy"),
         ("numpy pass: `np.add.reduce` of each column", mem_sum, "the memory floor"),
         ("numpy pass: `np.bincount` of each column", mem_bc, "one count per column"),
+        ("treewise `score_samples(table)`", score, f"{args.rows:,} rows, alpha 0.5"),
+        ("numpy reference `reference.score_samples`", ref_score, "single-threaded numpy"),
+        (f"treewise `sample({args.rows:,})`", draw, "to a pyarrow Table"),
+        ("numpy reference `reference.sample`", ref_draw, "codes only, numpy Generator"),
     ]
     for label, c in children.items():
         rows.append(
@@ -357,6 +377,8 @@ def main(argv: Sequence[str] | None = None) -> None:
         ("reference / treewise (best)", ref.best / tw.best),
         ("treewise / numpy sum pass (best)", tw.best / mem_sum.best),
         ("treewise / numpy bincount pass (best)", tw.best / mem_bc.best),
+        ("score_samples: reference / treewise (best)", ref_score.best / score.best),
+        ("sample: reference / treewise (best)", ref_draw.best / draw.best),
     ]
     if children:
         one, dflt = min(children["1"]["runs"]), min(children["default"]["runs"])
@@ -387,6 +409,8 @@ def main(argv: Sequence[str] | None = None) -> None:
         f"- tree edges matching the generating parent: {generating} of {args.cols - 1}",
         f"- subprocess fits saw the same data and gave the same tree: "
         f"{'yes' if child_data and child_trees else 'NO'}" + ("" if children else " (not run)"),
+        "- score_samples equal to the reference's to 1e-12 (relative): "
+        + ("yes" if scores_agree else "NO"),
         "- extension unchanged on disk during the run: " + ("NO, rerun" if rebuilt else "yes"),
     ]
     print()

@@ -16,6 +16,12 @@ def test_readme_has_examples() -> None:
 
 
 @pytest.mark.parametrize("index", range(len(BLOCKS)))
-def test_readme_example_runs(index: int, capsys: pytest.CaptureFixture[str]) -> None:
+def test_readme_example_runs(
+    index: int,
+    capsys: pytest.CaptureFixture[str],
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    monkeypatch.chdir(tmp_path)  # examples may write files
     exec(compile(BLOCKS[index], f"README.md example {index + 1}", "exec"), {})
     assert capsys.readouterr().out.strip(), "each example prints something to show"

@@ -144,8 +144,30 @@ class DependencyTree:
 
     def __repr__(self) -> str:
         defaults = DependencyTree().get_params()
-        changed = [f"{k}={v!r}" for k, v in self.get_params().items() if v != defaults[k]]
+        changed = [
+            f"{k}={v!r}" for k, v in self.get_params().items() if not _is_default(v, defaults[k])
+        ]
         return f"DependencyTree({', '.join(changed)})"
+
+    def __getstate__(self) -> dict[str, Any]:
+        """Pickle support: the Rust objects travel as their own validated file bytes."""
+        state = self.__dict__.copy()
+        model = state.pop("_model", None)
+        stats = state.pop("_stats", None)
+        if model is not None:
+            state["_model_bytes"] = model.to_bytes()
+            if stats is not None:
+                state["_stats_bytes"] = stats.to_bytes(model.codebook)
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        model_bytes = state.pop("_model_bytes", None)
+        stats_bytes = state.pop("_stats_bytes", None)
+        self.__dict__.update(state)
+        if model_bytes is not None:
+            self._model = _core.TreeModel.from_bytes(model_bytes)
+            if stats_bytes is not None:
+                self._stats = _core.PairStats.from_bytes(stats_bytes)[1]
 
     # -- fitting ---------------------------------------------------------------------------------
 
@@ -340,6 +362,7 @@ class DependencyTree:
             One float64 column per modelled column holding -ln P(x_column | x_parent) in nats,
             and ``total`` (-ln p(row), the sum across the row).
         """
+        self._fitted()
         names = [str(n) for n in self.feature_names_in_]
         totals: list[npt.NDArray[np.float64]] = []
         columns: list[list[npt.NDArray[np.float64]]] = [[] for _ in names]
@@ -451,6 +474,14 @@ class DependencyTree:
             type_from_name(t)
         estimator._set_model(model)
         return estimator
+
+
+def _is_default(value: object, default: object) -> bool:
+    """Whether a parameter still has its default (array-likes never compare as equal)."""
+    try:
+        return bool(value == default)
+    except (TypeError, ValueError):
+        return False
 
 
 def _u64(data: bytes) -> npt.NDArray[np.uint64]:

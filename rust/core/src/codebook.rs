@@ -214,8 +214,6 @@ impl ColumnCode {
             let mut dict_codes = Vec::with_capacity(dict_values.len());
             self.encode_plain(dict_values, &mut dict_codes)?;
             out.extend(keys.iter().map(|k| k.map_or(null, |k| dict_codes[k])));
-        } else if classify(&self.name, array.data_type())?.is_none() {
-            out.extend(std::iter::repeat_n(null, array.len()));
         } else {
             self.encode_plain(array, out)?;
         }
@@ -255,6 +253,11 @@ impl ColumnCode {
             )));
         }
         let null = self.null_code().unwrap_or(UNSEEN);
+        if kind.is_none() {
+            // The `null` type: every row is null, whatever the column's family.
+            out.extend(std::iter::repeat_n(null, array.len()));
+            return Ok(());
+        }
         out.reserve(array.len());
         match &self.lookup {
             Lookup::Bool(codes) => each_bool(array, |v| {

@@ -4,6 +4,7 @@
 use crate::codebook::{Codebook, ColumnCode, Values};
 use crate::error::{Error, Result};
 use crate::model::TreeModel;
+use crate::stats::PairStats;
 use crate::values::Kind;
 
 /// The first eight bytes of every treewise file.
@@ -12,6 +13,8 @@ pub const MAGIC: &[u8; 8] = b"TREEWISE";
 pub const FORMAT_VERSION: u32 = 1;
 /// The file holds a fitted model.
 pub const KIND_MODEL: u32 = 1;
+/// The file holds pair statistics with the codebook they were counted with.
+pub const KIND_STATS: u32 = 2;
 const HEADER_LEN: usize = 8 + 4 + 4 + 8 + 4;
 const NO_PARENT: u32 = u32::MAX;
 
@@ -325,4 +328,130 @@ pub fn model_from_bytes(file: &[u8]) -> Result<TreeModel> {
         Error::CorruptModel(m) => Error::CorruptModel(m),
         other => bad(other),
     })
+}
+
+/// The bytes of a pair-statistics file: the codebook, then the exact counts.
+pub fn stats_to_bytes(codebook: &Codebook, stats: &PairStats) -> Vec<u8> {
+    let mut w = Writer::default();
+    write_codebook(&mut w, codebook);
+    w.u64(stats.n_rows());
+    stats.marginals().iter().for_each(|m| w.u64s(m));
+    w.u64s(stats.cells());
+    w.finish(KIND_STATS)
+}
+
+/// Reads and validates a pair-statistics file (every count is checked against the others).
+pub fn stats_from_bytes(file: &[u8]) -> Result<(Codebook, PairStats)> {
+    let mut r = Reader::open(file, KIND_STATS)?;
+    let codebook = read_codebook(&mut r)?;
+    let n_rows = r.u64()?;
+    let marginals = (0..codebook.columns().len())
+        .map(|_| r.u64s())
+        .collect::<Result<Vec<_>>>()?;
+    let cells = r.u64s()?;
+    r.end()?;
+    let stats =
+        PairStats::from_parts(n_rows, codebook.cardinalities(), marginals, cells).map_err(|e| {
+            match e {
+                Error::CorruptModel(m) => Error::CorruptModel(m),
+                other => bad(other),
+            }
+        })?;
+    Ok((codebook, stats))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::codebook::ColumnCode;
+
+    fn small_model() -> Result<TreeModel> {
+        let a = ColumnCode::new(
+            "a".into(),
+            Values::Str(vec!["x".into(), "y".into()]),
+            false,
+            true,
+        )?;
+        let b = ColumnCode::new(
+            "b".into(),
+            Values::Bins {
+                edges: vec![1.5],
+                low: 0.0,
+                high: 3.0,
+            },
+            false,
+            false,
+        )?;
+        let codebook = Codebook::new(vec![a, b])?;
+        let mut stats = PairStats::new(codebook.cardinalities())?;
+        stats.add_codes(&[vec![0, 1, 2, 1, 0], vec![0, 1, 1, 1, 0]])?;
+        crate::fit_model(
+            codebook,
+            vec!["string".into(), "float64".into()],
+            &stats,
+            0,
+            0.5,
+        )
+    }
+
+    #[test]
+    fn save_load_save_is_byte_identical() -> Result<()> {
+        let model = small_model()?;
+        let bytes = model_to_bytes(&model);
+        let again = model_to_bytes(&model_from_bytes(&bytes)?);
+        assert_eq!(bytes, again);
+        Ok(())
+    }
+
+    #[test]
+    fn stats_round_trip_and_refuse_damage() -> Result<()> {
+        let model = small_model()?;
+        let mut stats = PairStats::new(model.codebook().cardinalities())?;
+        stats.add_codes(&[vec![0, 1, 2, 1, 0], vec![0, 1, 1, 1, 0]])?;
+        let bytes = stats_to_bytes(model.codebook(), &stats);
+        let (codebook, back) = stats_from_bytes(&bytes)?;
+        assert_eq!((&codebook, &back), (model.codebook(), &stats));
+        assert!(stats_from_bytes(&bytes[..bytes.len() - 1]).is_err());
+        assert!(
+            model_from_bytes(&bytes).is_err(),
+            "a stats file is not a model file"
+        );
+        Ok(())
+    }
+
+    #[test]
+    fn every_truncation_and_bit_flip_is_refused() -> Result<()> {
+        let bytes = model_to_bytes(&small_model()?);
+        for cut in 0..bytes.len() {
+            assert!(
+                matches!(model_from_bytes(&bytes[..cut]), Err(Error::CorruptModel(_))),
+                "cut {cut}"
+            );
+        }
+        for at in 0..bytes.len() {
+            for bit in [0u8, 3, 7] {
+                let mut flipped = bytes.clone();
+                flipped[at] ^= 1 << bit;
+                assert!(
+                    model_from_bytes(&flipped).is_err(),
+                    "flip at byte {at} bit {bit}"
+                );
+            }
+        }
+        Ok(())
+    }
+
+    #[test]
+    fn a_huge_declared_length_is_refused_before_allocating() -> Result<()> {
+        let bytes = model_to_bytes(&small_model()?);
+        let mut payload = bytes[HEADER_LEN..].to_vec();
+        // The first field is the column count: claim 2^60 columns and re-sign the payload.
+        payload[..8].copy_from_slice(&(1u64 << 60).to_le_bytes());
+        let forged = Writer { buf: payload }.finish(KIND_MODEL);
+        match model_from_bytes(&forged) {
+            Err(Error::CorruptModel(m)) => assert!(m.contains("larger than the file"), "{m}"),
+            other => panic!("expected a corrupt-model error, got {other:?}"),
+        }
+        Ok(())
+    }
 }

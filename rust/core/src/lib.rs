@@ -1,6 +1,7 @@
 //! treewise-core: codebooks, exact pair counts, mutual information and Kruskal, with no Python.
 
 pub mod codebook;
+pub mod dtype;
 pub mod error;
 pub mod io;
 pub mod model;

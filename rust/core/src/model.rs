@@ -5,6 +5,7 @@ use arrow_array::RecordBatch;
 use rayon::prelude::*;
 
 use crate::codebook::{Codebook, Values, UNSEEN};
+use crate::dtype;
 use crate::error::{Error, Result};
 use crate::rng::Rng;
 use crate::stats::{pair_index, PairStats};
@@ -108,8 +109,40 @@ impl Cpt {
     #[inline]
     fn draw(&self, a: usize, u: f64) -> u16 {
         let row = &self.cdf[a * self.card..(a + 1) * self.card];
-        let k = row.partition_point(|c| *c <= u).min(self.card - 1);
-        u16::try_from(k).unwrap_or(0)
+        // The code is the number of cumulative probabilities <= u. For short rows a branch-free
+        // count beats a binary search, whose branches the CPU cannot predict.
+        let k = if self.card <= 32 {
+            row.iter().map(|c| usize::from(*c <= u)).sum::<usize>()
+        } else {
+            row.partition_point(|c| *c <= u)
+        };
+        u16::try_from(k.min(self.card - 1)).unwrap_or(0)
+    }
+}
+
+/// A number in bin `k` of a float column with bin bounds `bound` (low, edges…, high), drawn
+/// uniformly: [lo, hi) for every bin but the last, which is [lo, hi]. NaN for a null code.
+/// With `narrow`, the value is rounded to the nearest 32-bit float that is still in the bin.
+fn value_in_bin(bound: &[f64], k: usize, u: f64, narrow: bool) -> f64 {
+    if k + 1 >= bound.len() {
+        return f64::NAN;
+    }
+    let (lo, hi) = (bound[k], bound[k + 1]);
+    let last = k + 2 == bound.len();
+    let mut v = (lo + u * (hi - lo)).clamp(lo, hi);
+    if narrow {
+        // The bounds are data values of a float32 column, so they are exact in f32.
+        let mut f = v as f32;
+        if !last && f64::from(f) >= hi {
+            f = (hi as f32).next_down();
+        }
+        v = f64::from(f).max(lo);
+    }
+    // Rounding must not carry a draw out of its bin.
+    if v < hi || last {
+        v
+    } else {
+        lo
     }
 }
 
@@ -262,11 +295,13 @@ impl TreeModel {
                 }
             }
         }
-        if dtypes
-            .iter()
-            .any(|t| t.is_empty() || t.len() > 200 || !t.is_ascii())
-        {
-            return Err(corrupt("a column type name is malformed".into()));
+        for (col, t) in codebook.columns().iter().zip(&dtypes) {
+            if !dtype::fits(t, col) {
+                return Err(corrupt(format!(
+                    "column '{}' is stored as type {t:?}, which cannot hold its values",
+                    col.name()
+                )));
+            }
         }
         let mut model = TreeModel {
             codebook,
@@ -512,54 +547,140 @@ impl TreeModel {
                 _ => None,
             })
             .collect();
-        let blocks: Vec<Sampled> = (0..n_blocks)
-            .into_par_iter()
-            .map(|b| {
-                let rows = SAMPLE_BLOCK.min(count - b * SAMPLE_BLOCK);
-                let mut rng = Rng::new(seed, first_block + b as u64);
-                let mut codes = vec![vec![0u16; rows]; d];
-                let mut floats: Vec<Option<Vec<f64>>> = bounds
-                    .iter()
-                    .map(|b| b.as_ref().map(|_| vec![f64::NAN; rows]))
-                    .collect();
-                for r in 0..rows {
-                    for &c in &self.order {
-                        let a = self.parent[c].map_or(0, |p| usize::from(codes[p][r]));
-                        let x = self.cpts[c].draw(a, rng.next_f64());
-                        codes[c][r] = x;
-                        if let (Some(bound), Some(out)) = (&bounds[c], &mut floats[c]) {
-                            let u = rng.next_f64();
-                            let k = usize::from(x);
-                            if k + 1 < bound.len() {
-                                let (lo, hi) = (bound[k], bound[k + 1]);
-                                let v = lo + u * (hi - lo);
-                                // Bins are [lo, hi) except the last; rounding must not leave them.
-                                let last = k + 2 == bound.len();
-                                out[r] = if v < hi || last { v.min(hi) } else { lo };
-                            }
-                        }
-                    }
-                }
-                Sampled { codes, floats }
-            })
-            .collect();
         let mut out = Sampled {
-            codes: vec![Vec::with_capacity(count); d],
+            codes: vec![vec![0u16; count]; d],
             floats: bounds
                 .iter()
-                .map(|b| b.as_ref().map(|_| Vec::with_capacity(count)))
+                .map(|b| b.as_ref().map(|_| vec![f64::NAN; count]))
                 .collect(),
         };
-        for block in blocks {
-            for (all, part) in out.codes.iter_mut().zip(block.codes) {
-                all.extend(part);
-            }
-            for (all, part) in out.floats.iter_mut().zip(block.floats) {
-                if let (Some(all), Some(part)) = (all, part) {
-                    all.extend(part);
-                }
+        // Each block writes straight into its own slice of every output column.
+        let mut code_blocks: Vec<Vec<&mut [u16]>> =
+            (0..n_blocks).map(|_| Vec::with_capacity(d)).collect();
+        for column in &mut out.codes {
+            for (b, chunk) in column.chunks_mut(SAMPLE_BLOCK).enumerate() {
+                code_blocks[b].push(chunk);
             }
         }
+        let mut float_blocks: Vec<Vec<Option<&mut [f64]>>> =
+            (0..n_blocks).map(|_| Vec::with_capacity(d)).collect();
+        for column in &mut out.floats {
+            match column {
+                Some(values) => {
+                    for (b, chunk) in values.chunks_mut(SAMPLE_BLOCK).enumerate() {
+                        float_blocks[b].push(Some(chunk));
+                    }
+                }
+                None => float_blocks.iter_mut().for_each(|f| f.push(None)),
+            }
+        }
+        code_blocks
+            .into_par_iter()
+            .zip(float_blocks.into_par_iter())
+            .enumerate()
+            .for_each(|(b, (mut codes, mut floats))| {
+                let mut rng = Rng::new(seed, first_block + b as u64);
+                // Column by column in breadth-first order, so each parent is drawn before its
+                // children; the draws per block are fixed, so a block's rows depend only on
+                // (seed, block).
+                for &c in &self.order {
+                    let cpt = &self.cpts[c];
+                    let column = std::mem::take(&mut codes[c]);
+                    match self.parent[c] {
+                        Some(p) => {
+                            for (x, &a) in column.iter_mut().zip(codes[p].iter()) {
+                                *x = cpt.draw(usize::from(a), rng.next_f64());
+                            }
+                        }
+                        None => column
+                            .iter_mut()
+                            .for_each(|x| *x = cpt.draw(0, rng.next_f64())),
+                    }
+                    if let (Some(bound), Some(values)) = (&bounds[c], &mut floats[c]) {
+                        let narrow = dtype::is_float32(&self.dtypes[c]);
+                        for (v, &x) in values.iter_mut().zip(column.iter()) {
+                            *v = value_in_bin(bound, usize::from(x), rng.next_f64(), narrow);
+                        }
+                    }
+                    codes[c] = column;
+                }
+            });
         Ok(out)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::codebook::ColumnCode;
+
+    fn model(alpha: f64) -> Result<TreeModel> {
+        let a = ColumnCode::new("a".into(), Values::Int(vec![1, 2, 3]), false, false)?;
+        let b = ColumnCode::new("b".into(), Values::Bool(vec![false, true]), false, false)?;
+        let codebook = Codebook::new(vec![a, b])?;
+        let mut stats = PairStats::new(codebook.cardinalities())?;
+        stats.add_codes(&[vec![0, 0, 1, 2, 2, 2], vec![0, 0, 1, 1, 1, 0]])?;
+        crate::fit_model(
+            codebook,
+            vec!["int64".into(), "bool".into()],
+            &stats,
+            1,
+            alpha,
+        )
+    }
+
+    #[test]
+    fn probabilities_of_every_row_sum_to_one() -> Result<()> {
+        for alpha in [0.0, 0.5, 4.0] {
+            let m = model(alpha)?;
+            let total: f64 = (0..3u16)
+                .flat_map(|a| (0..2u16).map(move |b| (a, b)))
+                .map(|(a, b)| {
+                    let codes = vec![vec![a], vec![b]];
+                    let mut out = [0.0];
+                    m.column_log_prob(&codes, 0, 0..1, &mut out, true);
+                    m.column_log_prob(&codes, 1, 0..1, &mut out, true);
+                    out[0].exp()
+                })
+                .sum();
+            assert!((total - 1.0).abs() < 1e-12, "alpha {alpha}: {total}");
+        }
+        Ok(())
+    }
+
+    #[test]
+    fn samples_do_not_depend_on_how_they_are_requested() -> Result<()> {
+        let m = model(0.5)?;
+        let whole = m.sample(0, 3 * SAMPLE_BLOCK + 17, 42)?;
+        let first = m.sample(0, SAMPLE_BLOCK, 42)?;
+        let rest = m.sample(SAMPLE_BLOCK as u64, 2 * SAMPLE_BLOCK + 17, 42)?;
+        for c in 0..2 {
+            let joined: Vec<u16> = first.codes[c]
+                .iter()
+                .chain(&rest.codes[c])
+                .copied()
+                .collect();
+            assert_eq!(joined, whole.codes[c]);
+        }
+        assert!(m.sample(1, 10, 42).is_err());
+        Ok(())
+    }
+
+    #[test]
+    fn a_cycle_in_the_parent_links_is_refused() -> Result<()> {
+        let m = model(0.5)?;
+        let parent = vec![Some(1), Some(0)];
+        let r = TreeModel::new(
+            m.codebook().clone(),
+            m.dtypes().to_vec(),
+            m.n_rows(),
+            0,
+            parent,
+            m.counts().to_vec(),
+            m.pair_mi().to_vec(),
+            0.5,
+        );
+        assert!(matches!(r, Err(Error::CorruptModel(_))));
+        Ok(())
     }
 }

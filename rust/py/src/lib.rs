@@ -1,6 +1,7 @@
 //! treewise._core: thin pyo3 bindings over treewise-core (type conversion, GIL release, errors).
 
 mod arrow_import;
+mod buffers;
 mod errors;
 mod model;
 mod threads;
@@ -11,6 +12,7 @@ use treewise_core::codebook::{CodebookBuilder, Values};
 use treewise_core::{Codebook, PairStats};
 
 use crate::arrow_import::import_batch;
+use crate::buffers::le_bytes;
 use crate::errors::{detached, to_py};
 
 /// What the cap did to one column: (column, values capped, rows capped).
@@ -166,6 +168,28 @@ impl PyPairStats {
         })
     }
 
+    /// These counts with the codebook they were counted with, as a pair-statistics file.
+    fn to_bytes<'py>(
+        &self,
+        py: Python<'py>,
+        codebook: &PyCodebook,
+    ) -> PyResult<Bound<'py, PyBytes>> {
+        if codebook.inner.cardinalities() != self.inner.cardinalities() {
+            return Err(to_py(treewise_core::Error::Schema(
+                "these statistics were not counted with this codebook".into(),
+            )));
+        }
+        let bytes = treewise_core::io::stats_to_bytes(&codebook.inner, &self.inner);
+        Ok(PyBytes::new(py, &bytes))
+    }
+
+    /// Reads a pair-statistics file: (codebook, statistics), validated before use.
+    #[staticmethod]
+    fn from_bytes(py: Python<'_>, data: &[u8]) -> PyResult<(PyCodebook, PyPairStats)> {
+        let (codebook, stats) = detached(py, || treewise_core::io::stats_from_bytes(data))?;
+        Ok((PyCodebook { inner: codebook }, PyPairStats { inner: stats }))
+    }
+
     /// Adds another PairStats' counts to these.
     fn merge(&mut self, py: Python<'_>, other: &PyPairStats) -> PyResult<()> {
         let stats = &mut self.inner;
@@ -193,7 +217,7 @@ impl PyPairStats {
                 "no column {i} of {d}"
             ))));
         }
-        Ok(u64_bytes(py, self.inner.marginal(i)))
+        le_bytes(py, &[self.inner.marginal(i)])
     }
 
     /// The table of columns i < j (row-major r_i x r_j), as little-endian u64 bytes.
@@ -204,13 +228,8 @@ impl PyPairStats {
                 "a table needs columns i < j < {d}, got ({i}, {j})"
             ))));
         }
-        Ok(u64_bytes(py, self.inner.table(i, j)))
+        le_bytes(py, &[self.inner.table(i, j)])
     }
-}
-
-fn u64_bytes<'py>(py: Python<'py>, values: &[u64]) -> Bound<'py, PyBytes> {
-    let bytes: Vec<u8> = values.iter().flat_map(|v| v.to_le_bytes()).collect();
-    PyBytes::new(py, &bytes)
 }
 
 /// The survival function of the chi-square distribution (exposed for the tests).

@@ -6,13 +6,9 @@ use treewise_core::model::TreeModel;
 use treewise_core::{io, Error};
 
 use crate::arrow_import::import_batch;
+use crate::buffers::le_bytes;
 use crate::errors::{detached, to_py};
 use crate::{PyCodebook, PyPairStats};
-
-fn f64_bytes<'py>(py: Python<'py>, values: &[f64]) -> Bound<'py, PyBytes> {
-    let bytes: Vec<u8> = values.iter().flat_map(|v| v.to_le_bytes()).collect();
-    PyBytes::new(py, &bytes)
-}
 
 /// One edge: (parent, child, mutual_info, g_statistic, dof, p_value).
 type EdgeTuple = (usize, usize, f64, f64, u64, f64);
@@ -123,8 +119,7 @@ impl PyTreeModel {
             .counts()
             .get(c)
             .ok_or_else(|| to_py(Error::Invalid(format!("no column {c}"))))?;
-        let bytes: Vec<u8> = counts.iter().flat_map(|v| v.to_le_bytes()).collect();
-        Ok(PyBytes::new(py, &bytes))
+        le_bytes(py, &[counts])
     }
 
     /// The edges in breadth-first order.
@@ -157,10 +152,15 @@ impl PyTreeModel {
         let batch = import_batch(batch)?;
         let model = &self.inner;
         let scored = detached(py, || model.score(&batch, surprisal))?;
-        let columns = scored
-            .surprisal
-            .map(|cols| cols.iter().map(|c| f64_bytes(py, c)).collect());
-        Ok((f64_bytes(py, &scored.total), columns, scored.unseen))
+        let columns = match scored.surprisal {
+            Some(cols) => Some(
+                cols.iter()
+                    .map(|c| le_bytes(py, &[c]))
+                    .collect::<PyResult<_>>()?,
+            ),
+            None => None,
+        };
+        Ok((le_bytes(py, &[&scored.total])?, columns, scored.unseen))
     }
 
     /// Samples `count` rows from row `start` of the stream of `seed`: (u16 codes, column after
@@ -175,16 +175,12 @@ impl PyTreeModel {
     ) -> PyResult<(Bound<'py, PyBytes>, Vec<Option<Bound<'py, PyBytes>>>)> {
         let model = &self.inner;
         let sampled = detached(py, || model.sample(start, count, seed))?;
-        let codes: Vec<u8> = sampled
-            .codes
-            .iter()
-            .flat_map(|c| c.iter().flat_map(|v| v.to_le_bytes()))
-            .collect();
+        let parts: Vec<&[u16]> = sampled.codes.iter().map(Vec::as_slice).collect();
         let floats = sampled
             .floats
             .iter()
-            .map(|f| f.as_ref().map(|f| f64_bytes(py, f)))
-            .collect();
-        Ok((PyBytes::new(py, &codes), floats))
+            .map(|f| f.as_ref().map(|f| le_bytes(py, &[f])).transpose())
+            .collect::<PyResult<_>>()?;
+        Ok((le_bytes(py, &parts)?, floats))
     }
 }

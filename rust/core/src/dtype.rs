@@ -1,0 +1,63 @@
+//! Output type names of model columns (the Arrow type `sample` returns) and the check that a
+//! column's kept values fit the type it names.
+
+use crate::codebook::{ColumnCode, Values};
+
+fn int_range(name: &str) -> Option<(i128, i128)> {
+    Some(match name {
+        "int8" => (i8::MIN.into(), i8::MAX.into()),
+        "int16" => (i16::MIN.into(), i16::MAX.into()),
+        "int32" => (i32::MIN.into(), i32::MAX.into()),
+        "int64" => (i64::MIN.into(), i64::MAX.into()),
+        "uint8" => (0, u8::MAX.into()),
+        "uint16" => (0, u16::MAX.into()),
+        "uint32" => (0, u32::MAX.into()),
+        "uint64" => (0, u64::MAX.into()),
+        _ => return None,
+    })
+}
+
+fn value_type_fits(name: &str, values: &Values) -> bool {
+    let within = |lo: i128, hi: i128, mut it: Box<dyn Iterator<Item = i128> + '_>| {
+        it.all(|v| lo <= v && v <= hi)
+    };
+    match values {
+        Values::Bool(_) => name == "bool",
+        Values::Str(_) => matches!(name, "string" | "large_string" | "string_view"),
+        Values::Bins { .. } => matches!(name, "float32" | "float64"),
+        Values::Int(v) => {
+            name.starts_with("int")
+                && int_range(name).is_some_and(|(lo, hi)| {
+                    within(lo, hi, Box::new(v.iter().map(|x| i128::from(*x))))
+                })
+        }
+        Values::UInt(v) => {
+            name.starts_with("uint")
+                && int_range(name).is_some_and(|(lo, hi)| {
+                    within(lo, hi, Box::new(v.iter().map(|x| i128::from(*x))))
+                })
+        }
+    }
+}
+
+/// Whether `name` is a type name treewise writes and can hold every kept value of `column`:
+/// a plain type, or `dictionary<INDEX,VALUE>` with a signed or unsigned integer index.
+pub fn fits(name: &str, column: &ColumnCode) -> bool {
+    if let Some(inner) = name
+        .strip_prefix("dictionary<")
+        .and_then(|r| r.strip_suffix('>'))
+    {
+        return match inner.split_once(',') {
+            Some((index, value)) => {
+                int_range(index).is_some() && value_type_fits(value, column.values())
+            }
+            None => false,
+        };
+    }
+    value_type_fits(name, column.values())
+}
+
+/// Whether values of this type are narrowed to 32-bit floats on output.
+pub fn is_float32(name: &str) -> bool {
+    name == "float32" || name.ends_with(",float32>")
+}
