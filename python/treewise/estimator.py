@@ -166,6 +166,7 @@ class DependencyTree:
         self.__dict__.update(state)
         if model_bytes is not None:
             self._model = _core.TreeModel.from_bytes(model_bytes)
+            self._stats = None
             if stats_bytes is not None:
                 self._stats = _core.PairStats.from_bytes(stats_bytes)[1]
 
