@@ -312,7 +312,6 @@ def test_parameter_bounds_are_accepted() -> None:
         ([[1, 2], [3, 4]], "list"),
         (3, "int"),
         ({"a": [1, 2]}, "dict"),
-        ("table.csv", "str"),
         (None, "NoneType"),
         (np.array([[1, 2], [3, 4]]), "ndarray"),
     ],
@@ -321,6 +320,11 @@ def test_parameter_bounds_are_accepted() -> None:
 def test_not_a_table_is_a_type_error_naming_the_type(data: object, type_name: str) -> None:
     with pytest.raises(TypeError, match=f"cannot read a {type_name}\\b"):
         DependencyTree().fit(data)
+
+
+def test_a_string_is_a_path_and_a_missing_one_is_named() -> None:
+    with pytest.raises(FileNotFoundError, match="no-such-table.csv"):
+        DependencyTree().fit("no-such-table.csv")
 
 
 @pytest.mark.parametrize(

@@ -130,6 +130,7 @@ def test_fit_returns_self_and_fitted_attributes_end_in_underscore() -> None:
         "feature_names_in_",
         "n_features_in_",
         "n_rows_",
+        "codebook_",
         "categories_",
         "parent_",
         "mutual_info_",
@@ -240,6 +241,10 @@ class ArrayInput(DependencyTree):
 
     def score_samples(self, data: Any) -> Any:
         return super().score_samples(self._as_table(data))
+
+    def partial_fit(self, data: Any, y: None = None) -> ArrayInput:
+        super().partial_fit(self._as_table(data), y)
+        return self
 
 
 #: Checks of fit's behaviour that run through ArrayInput.

@@ -7,6 +7,7 @@ import warnings
 from importlib.metadata import PackageNotFoundError, version
 
 from treewise import _core
+from treewise._core import Codebook
 from treewise.categories import OTHER, Bin
 from treewise.errors import (
     CategoryCapWarning,
@@ -20,6 +21,7 @@ from treewise.errors import (
     UnseenCategoryWarning,
 )
 from treewise.estimator import DependencyTree
+from treewise.pairstats import PairStats
 
 try:
     __version__ = version("treewise")
@@ -49,10 +51,12 @@ __all__ = [
     "OTHER",
     "Bin",
     "CategoryCapWarning",
+    "Codebook",
     "CorruptModelError",
     "DataError",
     "DependencyTree",
     "NotFittedError",
+    "PairStats",
     "ResourceLimitError",
     "SchemaError",
     "TooManyCategoriesError",

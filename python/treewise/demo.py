@@ -1,160 +1,223 @@
-"""Fit a dependency tree to an invented shop's sessions and compare it with the hidden truth.
+"""The demo: an invented shop's sessions, fitted, checked, scored and sampled from Parquet files.
 
-Run it as ``python -m treewise.demo [--rows N] [--seed S]``. The data comes from
-:func:`treewise.datasets.shop_sessions`, which draws every session from a tree we wrote down, so
-the demo can say how many of the true edges the fit found.
+Run it as ``treewise demo [--rows N] [--dir PATH] [--seed S]`` or ``python -m treewise.demo``
+(the same command). The data comes from :func:`treewise.datasets.shop_sessions`, which draws
+every session from a tree we wrote down, so the demo can say how many of the true edges the fit
+found and how many planted anomalies the scores catch.
 """
 
 from __future__ import annotations
 
-import argparse
+import math
+import sys
 import time
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
+from pathlib import Path
 
 import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+from rich.console import Console
+from rich.table import Table
 
 import treewise
+from treewise.cli import (
+    SAMPLE_CAUTION,
+    SCORE_CAUTION,
+    explain_rows,
+    surprising_table,
+    tree_view,
+)
 from treewise.datasets import hidden_edges, model_columns, shop_sessions
 
-__all__ = ["main"]
+__all__ = ["main", "run"]
 
-NEXT_STEPS = """\
-What to try next
-  Fit your own table (pyarrow, pandas or polars):
-
-    import treewise
-    model = treewise.DependencyTree().fit(df)            # or columns=[...] to pick columns
-    print(model.edges().to_pandas())                     # the tree, one edge per row
-
-  Leave out keys and labels (ids, timestamps, answer columns) with columns=, and give numeric
-  columns as float to have them cut into n_bins quantile bins."""
-
-
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected at least 1, got {value}")
-    return value
+#: How many Parquet files the sessions are split into.
+N_FILES = 8
+#: How many synthetic sessions to draw.
+SYNTHETIC_ROWS = 200_000
+#: The share of sessions counted as "the most surprising".
+TOP_SHARE = 0.01
+#: How many caught anomalies to show with their reasons.
+EXAMPLES = 5
+#: The keys carried along into the scores file.
+KEYS = ("session_id", "planted_anomaly")
 
 
-def _seed(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"expected 0 or more, got {value}")
-    return value
+@contextmanager
+def _step(console: Console, number: int, title: str) -> Iterator[None]:
+    """Print a step's title, run it, then print how long it took."""
+    console.print()
+    console.rule(f"[bold]{number}. {title}", align="left")
+    start = time.perf_counter()
+    yield
+    console.print(f"[dim]({time.perf_counter() - start:.2f} s)[/dim]")
 
 
-def _parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
-        prog="python -m treewise.demo",
-        description=(
-            "Generate sessions of an invented online shop from a hidden dependency tree, fit a "
-            "treewise.DependencyTree to them and report how much of the hidden tree it recovers."
-        ),
-    )
-    parser.add_argument(
-        "--rows", type=_positive_int, default=200_000, help="sessions to generate (200000)"
-    )
-    parser.add_argument("--seed", type=_seed, default=0, help="random seed (0)")
-    return parser
+def _write_sessions(table: pa.Table, folder: Path) -> list[Path]:
+    """Split the sessions into up to N_FILES Parquet files; remove what an earlier run left."""
+    folder.mkdir(parents=True, exist_ok=True)
+    ours = sorted(folder.glob("part-*.parquet"))
+    foreign = sorted(p.name for p in folder.iterdir() if p not in ours)
+    if foreign:
+        raise FileExistsError(
+            f"{folder} holds files the demo did not write ({', '.join(foreign[:3])}); the demo "
+            "fits every file there, so give it an empty or new --dir"
+        )
+    for old in ours:
+        old.unlink()
+    n_files = min(N_FILES, table.num_rows)
+    bounds = np.linspace(0, table.num_rows, n_files + 1).astype(int)
+    paths = []
+    for k in range(n_files):
+        path = folder / f"part-{k:02d}.parquet"
+        pq.write_table(table.slice(bounds[k], bounds[k + 1] - bounds[k]), path)
+        paths.append(path)
+    return paths
 
 
-def _tree_lines(model: treewise.DependencyTree) -> list[str]:
-    """Render the tree as indented lines from the root: name, cardinality, MI with the parent."""
-    names = [str(name) for name in model.feature_names_in_]
-    children: dict[int, list[int]] = {i: [] for i in range(len(names))}
-    roots: list[int] = []
-    for child, parent in enumerate(model.parent_):
-        if parent < 0:
-            roots.append(child)
-        else:
-            children[int(parent)].append(child)
-    lines: list[str] = []
-    # Depth-first, strongest child first, so the main chains read top to bottom.
-    stack = [(root, 0) for root in reversed(roots)]
-    while stack:
-        node, depth = stack.pop()
-        card = len(model.categories_[node])
-        if depth == 0:
-            info = "root"
-        else:
-            info = f"MI {model.mutual_info_[node]:.3f}"
-        lines.append(f"  {'  ' * depth}{names[node]}  ({card} categories, {info})")
-        ordered = sorted(children[node], key=lambda c: -model.mutual_info_[c])
-        stack.extend((c, depth + 1) for c in reversed(ordered))
-    return lines
-
-
-def _recovered(model: treewise.DependencyTree) -> tuple[int, int, list[tuple[str, str]]]:
-    """How many hidden edges the fit found (undirected), of how many, and the ones it missed."""
+def _recovered(model: treewise.DependencyTree) -> tuple[int, list[tuple[str, str]]]:
+    """How many hidden edges the fit found (ignoring direction), and the ones it missed."""
     names = [str(name) for name in model.feature_names_in_]
     fitted = {frozenset((names[int(p)], names[c])) for c, p in enumerate(model.parent_) if p >= 0}
-    hidden = hidden_edges()
-    missed = [edge for edge in hidden if frozenset(edge) not in fitted]
-    return len(hidden) - len(missed), len(hidden), missed
+    missed = [edge for edge in hidden_edges() if frozenset(edge) not in fitted]
+    return len(hidden_edges()) - len(missed), missed
 
 
-def main(argv: list[str] | None = None) -> int:
-    """Run the demo.
+def _synthetic_table(
+    model: treewise.DependencyTree, again: treewise.DependencyTree
+) -> tuple[Table, float]:
+    """Each edge's mutual information in the fitted model and refitted on synthetic rows."""
+    names = [str(name) for name in model.feature_names_in_]
+    position = {str(name): i for i, name in enumerate(again.feature_names_in_)}
+    table = Table(title="Mutual information of each tree edge (nats)")
+    table.add_column("edge")
+    table.add_column("fitted", justify="right")
+    table.add_column("synthetic", justify="right")
+    table.add_column("difference", justify="right")
+    largest = 0.0
+    edges = [(int(p), c) for c, p in enumerate(model.parent_) if p >= 0]
+    edges.sort(key=lambda e: -model.mutual_info_[e[1]])
+    for p, c in edges:
+        fitted = float(model.pairwise_mutual_info_[p, c])
+        drawn = float(again.pairwise_mutual_info_[position[names[p]], position[names[c]]])
+        largest = max(largest, abs(drawn - fitted))
+        table.add_row(
+            f"{names[p]} - {names[c]}", f"{fitted:.4f}", f"{drawn:.4f}", f"{drawn - fitted:+.4f}"
+        )
+    return table, largest
+
+
+def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> None:
+    """Run the demo and print what it finds.
 
     Parameters
     ----------
-    argv : list of str, optional
-        Command-line arguments without the program name; default ``sys.argv[1:]``.
-
-    Returns
-    -------
-    int
-        The exit status, 0 on success.
+    rows : int
+        How many sessions to generate.
+    directory : Path
+        Where to write the sessions (``sessions/``), the model, the scores and the synthetic
+        rows; created when missing.
+    seed : int
+        Seed of the data and of the synthetic rows.
+    progress : bool, optional
+        Progress bars: None shows them only when stderr is a terminal.
     """
-    args = _parser().parse_args(argv)
+    console = Console(highlight=False, soft_wrap=True)
+    begin = time.perf_counter()
+    folder = directory / "sessions"
+    model_path = directory / "shop.treewise"
+    scores_path = directory / "scores.parquet"
+    synthetic_path = directory / "synthetic.parquet"
 
-    start = time.perf_counter()
-    table = shop_sessions(n=args.rows, seed=args.seed)
-    generated = time.perf_counter() - start
-    columns = model_columns(table)
-    print(
-        f"Generated {table.num_rows:,} sessions of an invented outdoor-gear shop "
-        f"({table.num_columns} columns, {len(columns)} modelled) in {generated:.2f} s"
+    with _step(console, 1, f"Generate {rows:,} sessions of an invented shop"):
+        table = shop_sessions(n=rows, seed=seed)
+        paths = _write_sessions(table, folder)
+        columns = model_columns(table)
+        n_planted = int(pc.sum(table["planted_anomaly"].cast(pa.int64())).as_py() or 0)
+        console.print(
+            f"Wrote {len(paths)} Parquet files to {folder}/: {table.num_columns} columns, "
+            f"{len(columns)} to model ({', '.join(KEYS)} left out), {n_planted:,} planted "
+            "anomalies."
+        )
+        del table
+
+    with _step(console, 2, "Fit a dependency tree to the files, streaming"):
+        model = treewise.DependencyTree(columns=columns).fit(folder, progress=progress)
+        model.save(model_path)
+        console.print(
+            f"Fitted {model.n_rows_:,} rows x {model.n_features_in_} columns; saved {model_path}."
+        )
+
+    with _step(console, 3, "The tree"):
+        title = f"{model_path} (mutual information with the parent, in nats)"
+        console.print(tree_view(model, title))
+
+    with _step(console, 4, "Compare with the hidden tree the data was drawn from"):
+        found, missed = _recovered(model)
+        console.print(
+            f"Recovered {found} of {len(hidden_edges())} hidden edges (ignoring direction)."
+        )
+        for parent, child in missed:
+            console.print(f"  missed: {parent} - {child}")
+
+    with _step(console, 5, "Score every session; do the planted anomalies stand out?"):
+        n_top = max(1, math.ceil(model.n_rows_ * TOP_SHARE))
+        worst = model.score_to_parquet(folder, scores_path, keys=KEYS, top=n_top, progress=progress)
+        caught = worst.filter(worst["planted_anomaly"])
+        console.print(
+            f"Wrote {scores_path}. Of {n_planted:,} planted anomalies, {caught.num_rows:,} rank "
+            f"among the {worst.num_rows:,} most surprising sessions (the top 1%)."
+        )
+        if caught.num_rows:
+            names = [str(name) for name in model.feature_names_in_]
+            examples = caught.slice(0, EXAMPLES)
+            title = f"The {examples.num_rows} most surprising planted anomalies"
+            console.print(surprising_table(examples, names, ["session_id"], title))
+            normal = worst.filter(pc.invert(worst["planted_anomaly"]))
+            if normal.num_rows:
+                reasons = explain_rows(normal.slice(0, 1), names)[0]
+                console.print(
+                    f"The most surprising ordinary session, row {normal['row'][0].as_py():,}, "
+                    f"stands out by {', '.join(name for name, _ in reasons)}."
+                )
+        console.print(SCORE_CAUTION)
+
+    with _step(console, 6, f"Draw {SYNTHETIC_ROWS:,} synthetic sessions and check them"):
+        model.sample_to_parquet(
+            SYNTHETIC_ROWS, synthetic_path, random_state=seed, progress=progress
+        )
+        again = treewise.DependencyTree(columns=list(model.feature_names_in_)).fit(
+            synthetic_path, progress=progress
+        )
+        comparison, largest = _synthetic_table(model, again)
+        console.print(comparison)
+        console.print(
+            f"Wrote {synthetic_path}. Largest absolute difference over the "
+            f"{comparison.row_count} edges: {largest:.4f} nats."
+        )
+        console.print(SAMPLE_CAUTION)
+
+    console.print()
+    console.rule("[bold]Done", align="left")
+    console.print(f"In {time.perf_counter() - begin:.1f} s the demo wrote:")
+    for path in (folder, model_path, scores_path, synthetic_path):
+        console.print(f"  {path}")
+    console.print("Try next:")
+    console.print(f"  treewise show {model_path}")
+    console.print(
+        f"  treewise score {model_path} {folder} -o scored.parquet --key session_id --surprisal"
     )
+    console.print(f"  treewise sample {model_path} -n 10000 -o more-sessions.parquet --seed 1")
 
-    start = time.perf_counter()
-    model = treewise.DependencyTree(columns=columns).fit(table)
-    fitted = time.perf_counter() - start
-    print(
-        f"Fitted a dependency tree on {model.n_rows_:,} rows x {model.n_features_in_} columns "
-        f"in {fitted:.2f} s"
-    )
 
-    print("\nThe tree (mutual information with the parent, in nats):")
-    for line in _tree_lines(model):
-        print(line)
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run ``treewise demo`` with ``argv`` (default ``sys.argv[1:]``); returns the exit status."""
+    from treewise.cli import main as cli_main
 
-    edges = model.edges()
-    strongest = [int(k) for k in np.argsort(-np.asarray(edges["mutual_info"]), kind="stable")[:5]]
-    parents = edges["parent"].to_pylist()
-    children = edges["child"].to_pylist()
-    mutual_info = edges["mutual_info"].to_pylist()
-    print("\nStrongest dependencies:")
-    for k in strongest:
-        print(f"  {parents[k]} -> {children[k]}  MI {mutual_info[k]:.3f}")
-
-    found, total, missed = _recovered(model)
-    print(
-        f"\nCompared with the hidden tree (ignoring direction): recovered {found} of {total} "
-        "hidden edges"
-    )
-    for parent, child in missed:
-        print(f"  missed: {parent} - {child}")
-
-    print()
-    print(NEXT_STEPS)
-    return 0
+    return cli_main(["demo", *(sys.argv[1:] if argv is None else argv)])
 
 
 if __name__ == "__main__":

@@ -7,6 +7,7 @@ import numbers
 import os
 import warnings
 from collections.abc import Iterator, Sequence
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -15,16 +16,19 @@ import pyarrow as pa
 
 from treewise import _core
 from treewise.categories import OTHER, Bin
-from treewise.decode import decode_column, type_from_name, type_name
+from treewise.decode import decode_column, type_from_name
 from treewise.errors import (
-    CategoryCapWarning,
     DataError,
     NotFittedError,
     SchemaError,
     UnseenCategoryWarning,
 )
 from treewise.files import read_model_file, write_atomically
-from treewise.sources import as_table, iter_batches, select_columns
+from treewise.pairstats import PairStats
+from treewise.passes import TypeRecorder, count_pairs, learn_codebook
+from treewise.progress import PassProgress, wants_progress
+from treewise.sources import BATCH_ROWS, check_columns, located, open_source
+from treewise.stream import atomic_parquet, write_scores
 
 __all__ = ["DependencyTree"]
 
@@ -106,6 +110,9 @@ class DependencyTree:
         The mutual information of every pair of columns (the edge weights).
     n_parameters_ : int
         Free parameters: sum of (r_i - 1) plus, per edge, (r_parent - 1)(r_child - 1).
+    codebook_ : Codebook
+        The encoding of every column, to reuse with ``fit(..., codebook=model.codebook_)`` or
+        ``PairStats``.
     """
 
     _model: _core.TreeModel | None
@@ -154,10 +161,11 @@ class DependencyTree:
         state = self.__dict__.copy()
         model = state.pop("_model", None)
         stats = state.pop("_stats", None)
+        state.pop("codebook_", None)
         if model is not None:
             state["_model_bytes"] = model.to_bytes()
             if stats is not None:
-                state["_stats_bytes"] = stats.to_bytes(model.codebook)
+                state["_stats_bytes"] = stats.to_bytes(model.codebook, model.dtypes)
         return state
 
     def __setstate__(self, state: dict[str, Any]) -> None:
@@ -166,58 +174,144 @@ class DependencyTree:
         self.__dict__.update(state)
         if model_bytes is not None:
             self._model = _core.TreeModel.from_bytes(model_bytes)
+            self.codebook_ = self._model.codebook
             self._stats = None
             if stats_bytes is not None:
-                self._stats = _core.PairStats.from_bytes(stats_bytes)[1]
+                self._stats = _core.PairStats.from_bytes(stats_bytes)[2]
 
     # -- fitting ---------------------------------------------------------------------------------
 
-    def fit(self, data: Any, y: None = None) -> DependencyTree:
+    def fit(
+        self,
+        data: Any,
+        y: None = None,
+        *,
+        codebook: _core.Codebook | DependencyTree | None = None,
+        progress: bool | None = None,
+        batch_rows: int | None = None,
+    ) -> DependencyTree:
         """Fit the tree to ``data``.
 
         Parameters
         ----------
-        data : table
-            A pyarrow Table, RecordBatch or RecordBatchReader, a pandas or polars DataFrame, or
-            any object with ``__arrow_c_stream__``.
+        data : table, path or stream
+            In memory: a pyarrow Table or RecordBatch, a pandas or polars DataFrame, or any
+            object with ``__arrow_c_stream__``. On disk: a Parquet, CSV or Arrow IPC file, a
+            directory, a glob, or a list of paths, or a ``pyarrow.dataset.Dataset``; files are
+            streamed one batch at a time. One-shot streams: a ``pyarrow.RecordBatchReader`` or
+            any iterator of record batches.
         y : None
             Ignored; present for scikit-learn compatibility.
+        codebook : Codebook or DependencyTree, optional
+            Encode with this codebook (for example an earlier model's ``codebook_``) instead of
+            learning one: the data is then read once. A value it has no code for goes to the
+            column's "other" code, or is an error when the column has none.
+        progress : bool, optional
+            Draw a progress bar per pass. Default: only when stderr is a terminal.
+        batch_rows : int, optional
+            Rows per batch (default 262,144); memory grows with it.
 
         Returns
         -------
         DependencyTree
             The fitted estimator.
+
+        Notes
+        -----
+        Without ``codebook``, a replayable source is read twice: once to learn each column's
+        codes, once to count. A one-shot stream is read once and spooled to a temporary Arrow
+        file (in the system's temporary directory) for the counting pass.
         """
         max_categories = _check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
         n_bins = _check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
         alpha = _check_alpha(self.alpha)
-        table = select_columns(as_table(data), self.columns)
-        names = table.column_names
-        if self.root is None:
-            root = 0
-        elif self.root in names:
-            root = names.index(self.root)
-        else:
-            raise SchemaError(f"root={self.root!r} is not one of the modelled columns {names}")
-
-        builder = _core.CodebookBuilder(names)
-        for batch in iter_batches(table):
-            builder.observe(batch)
-        codebook, caps = builder.finish(max_categories, n_bins)
-        for column, n_values, n_rows in caps:
-            warnings.warn(
-                f"column {column!r}: {n_values} rare values in {n_rows} rows share the 'other' "
-                f"code (max_categories={max_categories}); raise max_categories to keep them apart",
-                CategoryCapWarning,
-                stacklevel=2,
+        rows = _check_int("batch_rows", BATCH_ROWS if batch_rows is None else batch_rows, 1, 2**31)
+        source = open_source(data)
+        given = _as_codebook(codebook)
+        wanted = self.columns if self.columns is not None or given is None else given.names
+        names = check_columns(source.names, wanted, source.description)
+        root = self._root_index(names)
+        types = TypeRecorder(names)
+        with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
+            if given is None:
+                with learn_codebook(source, names, max_categories, n_bins, rows, bar, types) as (
+                    learned,
+                    counting,
+                ):
+                    stats = _core.PairStats(learned)
+                    count_pairs(counting, names, learned, stats, rows, bar, types)
+                    chosen = learned
+            else:
+                chosen = given.select(names)
+                stats = _core.PairStats(chosen)
+                count_pairs(source, names, chosen, stats, rows, bar, types)
+        if stats.n_rows == 0:
+            raise DataError(
+                f"{source.description} has 0 rows; a dependency tree needs at least one"
             )
-        stats = _core.PairStats(codebook)
-        for batch in iter_batches(table):
-            stats.update(codebook, batch)
-        dtypes = [type_name(field.type) for field in table.schema]
-        self._set_model(_core.TreeModel.fit(codebook, stats, dtypes, root, alpha))
+        self._set_model(_core.TreeModel.fit(chosen, stats, types.type_names(), root, alpha))
         self._stats = stats
         return self
+
+    def partial_fit(
+        self, data: Any, y: None = None, *, codebook: _core.Codebook | DependencyTree | None = None
+    ) -> DependencyTree:
+        """Add ``data`` to the counts and refit the tree (exactly as one fit on all the data).
+
+        The first call fixes the codebook: ``codebook`` when given, else one learned from this
+        first ``data``. Later values without a code go to a column's "other" code, or are an
+        error when it has none. A model read with ``load`` keeps only its edges' counts and
+        cannot continue; refit it, or keep the ``PairStats``.
+        """
+        if getattr(self, "_model", None) is None:
+            if codebook is None:
+                return self.fit(data)
+            return self.fit(data, codebook=codebook)
+        model = self._fitted()
+        if self._stats is None:
+            raise NotFittedError(
+                "this model was loaded from a file, which keeps only its edges' counts; "
+                "partial_fit needs every pair's counts: refit it, or use treewise.PairStats"
+            )
+        names = list(model.codebook.names)
+        source = open_source(data)
+        types = TypeRecorder(names)
+        with PassProgress(False, None, 1) as bar:
+            count_pairs(
+                source,
+                check_columns(source.names, names, source.description),
+                model.codebook,
+                self._stats,
+                BATCH_ROWS,
+                bar,
+                types,
+            )
+        self._set_model(
+            _core.TreeModel.fit(model.codebook, self._stats, model.dtypes, model.root, model.alpha)
+        )
+        return self
+
+    @classmethod
+    def from_stats(
+        cls, stats: PairStats, *, root: str | None = None, alpha: float = 0.5
+    ) -> DependencyTree:
+        """Build a fitted model from pair statistics (for example merged from many workers)."""
+        estimator = cls(columns=list(stats.columns), root=root, alpha=alpha)
+        names = list(stats.columns)
+        index = estimator._root_index(names)
+        model = _core.TreeModel.fit(
+            stats.codebook, stats._stats, stats.dtypes, index, _check_alpha(alpha)
+        )
+        estimator._set_model(model)
+        estimator._stats = stats._stats.copy()
+        return estimator
+
+    def _root_index(self, names: list[str]) -> int:
+        if self.root is None:
+            return 0
+        if self.root in names:
+            return names.index(self.root)
+        raise SchemaError(f"root={self.root!r} is not one of the modelled columns {names}")
 
     def _set_model(self, model: _core.TreeModel) -> None:
         """Set every fitted attribute from a model (after fit, or after load)."""
@@ -241,6 +335,7 @@ class DependencyTree:
             ]
         )
         self.n_parameters_ = model.n_parameters
+        self.codebook_ = codebook
 
     # -- fitted views ----------------------------------------------------------------------------
 
@@ -318,17 +413,35 @@ class DependencyTree:
 
     # -- the model as a distribution -------------------------------------------------------------
 
-    def _scored(self, data: Any, surprisal: bool) -> Iterator[tuple[Any, Any]]:
-        """Score ``data`` batch by batch: yields (ln p per row, per-column surprisal or None)."""
+    def _scored(
+        self,
+        data: Any,
+        surprisal: bool,
+        keys: Sequence[str] = (),
+        batch_rows: int = BATCH_ROWS,
+        progress: bool | None = False,
+    ) -> Iterator[Scored]:
+        """Score ``data`` batch by batch (any source), then warn once about unseen values."""
         model = self._fitted()
-        names = list(self.feature_names_in_)
-        table = select_columns(as_table(data), names)
+        names = [str(n) for n in self.feature_names_in_]
+        source = open_source(data)
+        check_columns(source.names, names, source.description)
+        extra = [k for k in keys if k not in names]
+        wanted = names + check_columns(source.names, extra, source.description) if extra else names
         unseen = np.zeros(len(names), dtype=np.int64)
-        for batch in iter_batches(table):
-            total, columns, missing = model.score(batch, surprisal)
-            unseen += missing
-            per_column = None if columns is None else [np.frombuffer(c, "<f8") for c in columns]
-            yield np.frombuffer(total, "<f8"), per_column
+        with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
+            bar.start("scoring")
+            for part in source.parts(wanted, batch_rows):
+                with located(part.label):
+                    for batch in part.batches:
+                        total, columns, missing = model.score(batch.select(names), surprisal)
+                        unseen += missing
+                        per_column = (
+                            None if columns is None else [np.frombuffer(c, "<f8") for c in columns]
+                        )
+                        yield Scored(batch, np.frombuffer(total, "<f8"), per_column)
+                        bar.rows(batch.num_rows)
+                bar.part_done()
         if unseen.any():
             report = ", ".join(f"{names[c]!r}: {k}" for c, k in enumerate(unseen) if k)
             warnings.warn(
@@ -347,7 +460,7 @@ class DependencyTree:
         such a value is scored by its own marginal. An ``UnseenCategoryWarning`` gives the
         count per column. A null is scored as the null category it was fitted as.
         """
-        parts = [total for total, _ in self._scored(data, surprisal=False)]
+        parts = [scored.total for scored in self._scored(data, surprisal=False)]
         return np.concatenate(parts) if parts else np.zeros(0)
 
     def score(self, data: Any, y: None = None) -> float:
@@ -367,9 +480,9 @@ class DependencyTree:
         names = [str(n) for n in self.feature_names_in_]
         totals: list[npt.NDArray[np.float64]] = []
         columns: list[list[npt.NDArray[np.float64]]] = [[] for _ in names]
-        for total, per_column in self._scored(data, surprisal=True):
-            totals.append(-total)
-            for c, values in enumerate(per_column or []):
+        for scored in self._scored(data, surprisal=True):
+            totals.append(-scored.total)
+            for c, values in enumerate(scored.surprisal or []):
                 columns[c].append(values)
         arrays = {
             n: pa.array(np.concatenate(v) if v else np.zeros(0))
@@ -377,6 +490,64 @@ class DependencyTree:
         }
         arrays["total"] = pa.array(np.concatenate(totals) if totals else np.zeros(0))
         return pa.table(arrays)
+
+    def score_to_parquet(
+        self,
+        data: Any,
+        path: str | os.PathLike[str],
+        *,
+        keys: Sequence[str] = (),
+        surprisal: bool = False,
+        top: int = 0,
+        batch_rows: int = BATCH_ROWS,
+        progress: bool | None = None,
+    ) -> pa.Table:
+        """Score any source batch by batch into a Parquet file, in bounded memory.
+
+        The file holds the ``keys`` columns carried along from the data, ``score`` (ln p(row)
+        in nats) and, with ``surprisal``, one ``surprisal_<column>`` per modelled column. It is
+        written to a temporary name and renamed, so ``path`` never holds a partial file.
+
+        Returns
+        -------
+        pyarrow.Table
+            The ``top`` most surprising rows (lowest score): ``row`` (position in the source),
+            the keys, ``score``, and each column's surprisal under the column's name.
+        """
+        top = _check_int("top", top, 0, 1_000_000)
+        keys = list(keys)
+        if isinstance(keys, str) or not all(isinstance(k, str) for k in keys):
+            raise TypeError(f"keys= must be a list of column names, got {keys!r}")
+        names = [str(n) for n in self.feature_names_in_]
+        scored = self._scored(data, surprisal or top > 0, keys, batch_rows, progress)
+        return write_scores(scored, path, names, keys, surprisal, top)
+
+    def sample_to_parquet(
+        self,
+        n: int,
+        path: str | os.PathLike[str],
+        *,
+        random_state: RandomState = None,
+        batch_rows: int | None = None,
+        progress: bool | None = None,
+    ) -> int:
+        """Write ``n`` sampled rows to a Parquet file in bounded memory; returns ``n``.
+
+        The rows equal ``sample(n, random_state)`` for the same seed. The file is written to a
+        temporary name and renamed into place.
+        """
+        schema = self._output_schema()
+        rows = SAMPLE_BATCH_ROWS if batch_rows is None else batch_rows
+        batches = self.iter_sample(n, random_state, rows)
+        with (
+            PassProgress(wants_progress(progress), int(n), 1) as bar,
+            atomic_parquet(path, schema) as writer,
+        ):
+            bar.start("sampling")
+            for batch in batches:
+                writer.write_batch(batch)
+                bar.rows(batch.num_rows)
+        return int(n)
 
     def bic(self, data: Any) -> float:
         """Bayesian information criterion on ``data``: -2 ln L + k ln n (lower is better)."""
@@ -387,9 +558,8 @@ class DependencyTree:
         """Akaike information criterion on ``data``: -2 ln L + 2k (lower is better)."""
         return -2.0 * self.score(data) + 2.0 * self._fitted().n_parameters
 
-    @staticmethod
-    def _row_count(data: Any) -> int:
-        n = as_table(data).num_rows
+    def _row_count(self, data: Any) -> int:
+        n = sum(len(s.total) for s in self._scored(data, surprisal=False))
         if n == 0:
             raise DataError("the data has 0 rows; the criterion needs at least one")
         return n
@@ -475,6 +645,26 @@ class DependencyTree:
             type_from_name(t)
         estimator._set_model(model)
         return estimator
+
+
+@dataclass
+class Scored:
+    """One scored batch: the batch read, ln p per row, and per-column surprisal if asked."""
+
+    batch: pa.RecordBatch
+    total: npt.NDArray[np.float64]
+    surprisal: list[npt.NDArray[np.float64]] | None
+
+
+def _as_codebook(codebook: object) -> _core.Codebook | None:
+    """A codebook given as such, or taken from a fitted model."""
+    if codebook is None or isinstance(codebook, _core.Codebook):
+        return codebook
+    if isinstance(codebook, DependencyTree):
+        return codebook._fitted().codebook
+    raise TypeError(
+        f"codebook= takes a treewise.Codebook or a fitted DependencyTree, got {codebook!r}"
+    )
 
 
 def _is_default(value: object, default: object) -> bool:

@@ -1,21 +1,59 @@
-"""Inputs to Arrow: every supported source becomes a pyarrow Table, then bounded record batches."""
+"""Inputs to Arrow: every supported source becomes a stream of bounded record batches.
+
+In memory: pyarrow Tables and RecordBatches, pandas and polars DataFrames, any object with
+``__arrow_c_stream__`` or ``__arrow_c_array__``. On disk: Parquet (the main format), CSV and
+Arrow IPC files, given as a path, a directory, a glob or a list of paths, and
+``pyarrow.dataset`` datasets. One-shot streams: a ``pyarrow.RecordBatchReader`` or any iterator
+of record batches. Files are read one at a time, with only the needed columns, in batches of at
+most ``batch_rows`` rows, so memory stays near one batch whatever the size of the data.
+"""
 
 from __future__ import annotations
 
+import glob as globbing
+import itertools
+import os
 import sys
+import warnings
 from collections import Counter
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import pyarrow as pa
+import pyarrow.csv as pacsv
+import pyarrow.dataset as pads
+import pyarrow.parquet as pq
 
-from treewise.errors import DataError, SchemaError
+from treewise.errors import DataError, SchemaError, TreewiseError
 
-__all__ = ["BATCH_ROWS", "as_table", "iter_batches", "select_columns"]
+__all__ = [
+    "BATCH_ROWS",
+    "Part",
+    "SkippedFileWarning",
+    "Source",
+    "as_table",
+    "iter_batches",
+    "open_source",
+    "select_columns",
+]
 
 #: Rows per batch handed to the Rust core: large enough to amortise the call, small enough that
-#: Ctrl-C (checked between batches) is felt within a fraction of a second.
+#: memory stays bounded and Ctrl-C (checked between batches) is felt within a fraction of a second.
 BATCH_ROWS = 262_144
+
+_PARQUET = (".parquet", ".pq", ".parq")
+_CSV = (".csv", ".csv.gz", ".csv.bz2", ".tsv")
+_IPC = (".arrow", ".feather", ".ipc", ".arrows")
+
+
+class SkippedFileWarning(UserWarning):
+    """A file of the source holds no rows and was skipped."""
+
+
+# -- in-memory inputs ----------------------------------------------------------------------------
 
 
 def _from_pandas(frame: Any) -> pa.Table:
@@ -38,11 +76,11 @@ def _from_pandas(frame: Any) -> pa.Table:
 
 
 def as_table(data: Any) -> pa.Table:
-    """Turn any supported tabular input into a pyarrow Table without copying column buffers.
+    """Turn an in-memory tabular input into a pyarrow Table without copying column buffers.
 
-    Accepts a pyarrow Table, RecordBatch or RecordBatchReader, a pandas DataFrame, or any object
-    that implements the Arrow PyCapsule interface (``__arrow_c_stream__`` or
-    ``__arrow_c_array__``), such as a polars DataFrame or a DuckDB relation.
+    Accepts a pyarrow Table, RecordBatch or RecordBatchReader (read to the end), a pandas
+    DataFrame, or any object that implements the Arrow PyCapsule interface
+    (``__arrow_c_stream__`` or ``__arrow_c_array__``), such as a polars DataFrame.
     """
     if isinstance(data, pa.Table):
         return data
@@ -66,24 +104,30 @@ def as_table(data: Any) -> pa.Table:
         ) from e
     raise TypeError(
         f"treewise cannot read a {type(data).__name__}; pass a pyarrow Table, RecordBatch or "
-        "RecordBatchReader, a pandas or polars DataFrame, or any object with __arrow_c_stream__"
+        "RecordBatchReader, a pandas or polars DataFrame, any object with __arrow_c_stream__, "
+        "a path (Parquet, CSV or Arrow IPC file, directory or glob), a list of paths, a "
+        "pyarrow.dataset.Dataset, or an iterator of record batches"
     )
 
 
 def select_columns(table: pa.Table, columns: Sequence[str] | None) -> pa.Table:
     """Check the column names and keep ``columns`` (all of them when None), in that order."""
-    names = table.column_names
+    return table.select(check_columns(table.column_names, columns, "the data"))
+
+
+def check_columns(names: Sequence[str], columns: Sequence[str] | None, where: str) -> list[str]:
+    """The columns to read from data that has ``names``: all of them, or ``columns``, checked."""
     counts = Counter(names)
     duplicated = sorted(n for n, k in counts.items() if k > 1)
     if columns is None:
         if duplicated:
             raise SchemaError(
-                f"the data has duplicate column names {duplicated}; rename them, or pick distinct "
+                f"{where} has duplicate column names {duplicated}; rename them, or pick distinct "
                 "ones with columns="
             )
         if not names:
-            raise DataError("the data has no columns; a dependency tree needs at least one")
-        return table
+            raise DataError(f"{where} has no columns; a dependency tree needs at least one")
+        return list(names)
     if isinstance(columns, str) or not all(isinstance(c, str) for c in columns):
         raise TypeError(f"columns= must be a list of column names, got {columns!r}")
     wanted = list(columns)
@@ -94,11 +138,11 @@ def select_columns(table: pa.Table, columns: Sequence[str] | None) -> pa.Table:
         raise SchemaError(f"columns= names {repeated} more than once; name each column once")
     missing = [c for c in wanted if c not in counts]
     if missing:
-        raise SchemaError(f"columns {missing} are not in the data; it has {names}")
+        raise SchemaError(f"columns {missing} are not in {where}; it has {list(names)}")
     ambiguous = [c for c in wanted if c in duplicated]
     if ambiguous:
-        raise SchemaError(f"the data has more than one column named {ambiguous}; rename them")
-    return table.select(wanted)
+        raise SchemaError(f"{where} has more than one column named {ambiguous}; rename them")
+    return wanted
 
 
 def iter_batches(table: pa.Table, batch_rows: int = BATCH_ROWS) -> Iterator[pa.RecordBatch]:
@@ -106,3 +150,260 @@ def iter_batches(table: pa.Table, batch_rows: int = BATCH_ROWS) -> Iterator[pa.R
     for batch in table.to_batches(max_chunksize=batch_rows):
         if batch.num_rows:
             yield batch
+
+
+# -- files ---------------------------------------------------------------------------------------
+
+
+def _format_of(path: Path) -> str:
+    name = path.name.lower()
+    for fmt, endings in (("parquet", _PARQUET), ("csv", _CSV), ("ipc", _IPC)):
+        if name.endswith(endings):
+            return fmt
+    with open(path, "rb") as f:
+        head = f.read(8)
+    if head.startswith(b"PAR1"):
+        return "parquet"
+    if head.startswith(b"ARROW1") or head.startswith(b"\xff\xff\xff\xff"):
+        return "ipc"
+    raise DataError(
+        f"cannot tell the format of {path}; give it a .parquet, .csv or .arrow name, or "
+        "convert it to Parquet"
+    )
+
+
+def _is_data_file(path: Path) -> bool:
+    name = path.name.lower()
+    hidden = name.startswith((".", "_"))
+    return path.is_file() and not hidden and name.endswith(_PARQUET + _CSV + _IPC)
+
+
+def expand_paths(spec: str | os.PathLike[str] | Sequence[str | os.PathLike[str]]) -> list[Path]:
+    """Files named by a path, a directory (searched recursively), a glob, or a list of those."""
+    specs = [spec] if isinstance(spec, (str, os.PathLike)) else list(spec)
+    if not specs:
+        raise DataError("the list of paths is empty; name at least one file")
+    files: list[Path] = []
+    for item in specs:
+        text = os.fspath(item)
+        path = Path(text)
+        if path.is_dir():
+            found = sorted(p for p in path.rglob("*") if _is_data_file(p))
+            if not found:
+                raise DataError(
+                    f"the directory {path} holds no Parquet, CSV or Arrow IPC files "
+                    "(names ending in .parquet, .csv, .arrow and the like)"
+                )
+            files.extend(found)
+        elif path.is_file():
+            files.append(path)
+        elif globbing.has_magic(text):
+            matched = sorted(Path(p) for p in globbing.glob(text, recursive=True))
+            matched = [p for p in matched if p.is_file()]
+            if not matched:
+                raise FileNotFoundError(f"no files match {text}")
+            files.extend(matched)
+        else:
+            raise FileNotFoundError(f"no such file or directory: {text}")
+    return files
+
+
+@dataclass
+class Part:
+    """One piece of a source (a file, or the whole in-memory table) and its batches."""
+
+    label: str
+    batches: Iterator[pa.RecordBatch]
+
+
+@contextmanager
+def located(label: str) -> Iterator[None]:
+    """Re-raise an error while reading ``label`` with the file (or source) named in it."""
+    try:
+        yield
+    except TreewiseError as e:
+        if label and label not in str(e):
+            raise type(e)(f"{label}: {e}") from e
+        raise
+    except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError, OSError) as e:
+        if isinstance(e, (FileNotFoundError, IsADirectoryError, PermissionError)):
+            raise
+        raise DataError(f"{label}: cannot read it: {e}") from e
+
+
+def _file_columns(path: Path, fmt: str) -> list[str]:
+    with located(str(path)):
+        if fmt == "parquet":
+            return list(pq.ParquetFile(path).schema_arrow.names)
+        if fmt == "ipc":
+            return list(_open_ipc(path).schema.names)
+        with pacsv.open_csv(path) as reader:
+            return list(reader.schema.names)
+
+
+def _open_ipc(path: Path) -> Any:
+    try:
+        return pa.ipc.open_file(str(path))
+    except pa.ArrowInvalid:
+        return pa.ipc.open_stream(pa.OSFile(str(path), "rb"))
+
+
+def _file_batches(
+    path: Path, fmt: str, names: list[str], batch_rows: int
+) -> Iterator[pa.RecordBatch]:
+    present = _file_columns(path, fmt)
+    missing = [n for n in names if n not in present]
+    if missing:
+        raise SchemaError(
+            f"{path}: columns {missing} are missing (the file has {present}); every file must "
+            "hold the modelled columns"
+        )
+    if fmt == "parquet":
+        parquet = pq.ParquetFile(path)
+        for batch in parquet.iter_batches(batch_size=batch_rows, columns=names):
+            yield batch
+    elif fmt == "ipc":
+        reader = _open_ipc(path)
+        batches = (
+            (reader.get_batch(i) for i in range(reader.num_record_batches))
+            if isinstance(reader, pa.ipc.RecordBatchFileReader)
+            else reader
+        )
+        for batch in batches:
+            yield from pa.Table.from_batches([batch.select(names)]).to_batches(batch_rows)
+    else:
+        options = pacsv.ConvertOptions(include_columns=names)
+        with pacsv.open_csv(path, convert_options=options) as reader:
+            for batch in reader:
+                yield from pa.Table.from_batches([batch]).to_batches(batch_rows)
+
+
+def _file_rows(path: Path, fmt: str) -> int | None:
+    if fmt == "parquet":
+        with located(str(path)):
+            return int(pq.ParquetFile(path).metadata.num_rows)
+    return None
+
+
+# -- the source ----------------------------------------------------------------------------------
+
+
+@dataclass
+class Source:
+    """Data to read in record batches, one part (file) at a time.
+
+    ``replayable`` says whether the data can be read more than once (a codebook pass, then a
+    counting pass). ``total_rows`` is known up front for in-memory tables and Parquet files.
+    """
+
+    names: list[str]
+    replayable: bool
+    parts: Callable[[list[str], int], Iterator[Part]]
+    n_parts: int = 1
+    total_rows: int | None = None
+    description: str = "data"
+    files: list[Path] = field(default_factory=list)
+
+
+def _memory_source(table: pa.Table) -> Source:
+    def parts(names: list[str], batch_rows: int) -> Iterator[Part]:
+        yield Part("", iter_batches(table.select(names), batch_rows))
+
+    return Source(table.column_names, True, parts, 1, table.num_rows, "in-memory table")
+
+
+def _file_source(files: list[Path]) -> Source:
+    formats = [_format_of(p) for p in files]
+    first_names = _file_columns(files[0], formats[0])
+    rows = [_file_rows(p, f) for p, f in zip(files, formats, strict=True)]
+    total = None if any(r is None for r in rows) else sum(r for r in rows if r is not None)
+
+    def parts(names: list[str], batch_rows: int) -> Iterator[Part]:
+        for path, fmt, n in zip(files, formats, rows, strict=True):
+            if n == 0:
+                warnings.warn(f"skipped {path}: it holds no rows", SkippedFileWarning, stacklevel=4)
+                continue
+            yield Part(str(path), _file_batches(path, fmt, names, batch_rows))
+
+    what = f"{len(files)} file{'s' if len(files) != 1 else ''}"
+    return Source(first_names, True, parts, len(files), total, what, files)
+
+
+def _dataset_source(dataset: pads.Dataset) -> Source:
+    if isinstance(dataset, pads.FileSystemDataset) and isinstance(
+        dataset.filesystem, pa.fs.LocalFileSystem
+    ):
+        # Read file by file: the dataset scanner is known to hold on to memory.
+        return _file_source([Path(f) for f in dataset.files])
+
+    def parts(names: list[str], batch_rows: int) -> Iterator[Part]:
+        yield Part("dataset", dataset.to_batches(columns=names, batch_size=batch_rows))
+
+    return Source(list(dataset.schema.names), True, parts, 1, None, "dataset")
+
+
+def _stream_source(batches: Iterable[Any], names: list[str] | None) -> Source:
+    iterator = iter(batches)
+    first: list[Any] = []
+    if names is None:
+        # Peek at the first item for the column names.
+        for item in iterator:
+            first.append(item)
+            break
+        if not first:
+            raise DataError("the stream of record batches is empty; a fit needs at least one row")
+        names = list(_as_table(first[0]).schema.names)
+    consumed = False
+
+    def parts(wanted: list[str], batch_rows: int) -> Iterator[Part]:
+        nonlocal consumed
+        if consumed:
+            raise DataError(
+                "this stream of record batches has been read once already and cannot be replayed"
+            )
+        consumed = True
+
+        def read() -> Iterator[pa.RecordBatch]:
+            for item in itertools.chain(first, iterator):
+                table = _as_table(item)
+                missing = [n for n in wanted if n not in table.schema.names]
+                if missing:
+                    raise SchemaError(f"a batch of the stream lacks the columns {missing}")
+                yield from iter_batches(table.select(wanted), batch_rows)
+
+        yield Part("stream", read())
+
+    return Source(list(names), False, parts, 1, None, "stream of record batches")
+
+
+def _as_table(item: Any) -> pa.Table:
+    """One item of a stream (a record batch, a table, or any Arrow producer) as a table."""
+    if isinstance(item, (pa.RecordBatch, pa.Table)) or hasattr(item, "__arrow_c_array__"):
+        return as_table(item)
+    raise TypeError(f"a stream must yield Arrow record batches, got a {type(item).__name__}")
+
+
+def open_source(data: Any) -> Source:
+    """Describe any supported input as a :class:`Source` (nothing is read yet but metadata)."""
+    if isinstance(data, (str, os.PathLike)):
+        return _file_source(expand_paths(data))
+    if (
+        isinstance(data, (list, tuple))
+        and data
+        and all(isinstance(p, (str, os.PathLike)) for p in data)
+    ):
+        return _file_source(expand_paths(data))
+    if isinstance(data, pads.Dataset):
+        return _dataset_source(data)
+    if isinstance(data, pa.RecordBatchReader):
+        return _stream_source(data, data.schema.names)
+    if (
+        isinstance(data, (list, tuple))
+        and data
+        and all(isinstance(b, (pa.RecordBatch, pa.Table)) for b in data)
+    ):
+        tables = [b if isinstance(b, pa.Table) else pa.Table.from_batches([b]) for b in data]
+        return _memory_source(pa.concat_tables(tables))
+    if isinstance(data, Iterator):
+        return _stream_source(data, None)
+    return _memory_source(as_table(data))

@@ -6,6 +6,7 @@ use rayon::prelude::*;
 use rustc_hash::FxHashMap;
 
 use crate::error::{Error, Result};
+use crate::io::{Reader, Writer};
 use crate::values::{
     classify, dictionary_keys, each_bool, each_f64, each_i64, each_str, each_u64, Kind,
 };
@@ -293,8 +294,129 @@ enum Tally {
     Int(FxHashMap<i64, u64>),
     UInt(FxHashMap<u64, u64>),
     Str(FxHashMap<Box<str>, u64>),
-    /// Every finite value seen, for exact quantiles.
-    Float(Vec<f64>),
+    /// Counts of the finite values seen, for quantiles.
+    Float(FloatTally),
+}
+
+/// The most distinct values one column's tally may hold (categorical columns). Beyond it a
+/// column is refused: picking its most frequent values exactly would need unbounded memory.
+pub const DISTINCT_LIMIT: usize = 1 << 21;
+/// The most distinct floats a float column's tally holds before it coarsens them.
+pub const FLOAT_DISTINCT_LIMIT: usize = 1 << 20;
+
+/// Counts of the finite values of a float column. Exact while there are at most
+/// [`FLOAT_DISTINCT_LIMIT`] distinct values; beyond that, values are truncated to fewer mantissa
+/// bits (4 more at a time) until they fit. Truncation is monotone and nested, so the result
+/// depends only on the multiset of values, not on their order or on how batches were split.
+#[derive(Clone, Debug, PartialEq)]
+pub struct FloatTally {
+    counts: FxHashMap<u64, u64>,
+    /// Mantissa bits dropped (0 = exact).
+    level: u32,
+    low: f64,
+    high: f64,
+    n: u64,
+}
+
+impl Default for FloatTally {
+    fn default() -> Self {
+        FloatTally {
+            counts: FxHashMap::default(),
+            level: 0,
+            low: f64::INFINITY,
+            high: f64::NEG_INFINITY,
+            n: 0,
+        }
+    }
+}
+
+fn truncate(x: f64, level: u32) -> f64 {
+    // +0.0 and -0.0 are one value.
+    let x = if x == 0.0 { 0.0 } else { x };
+    if level == 0 {
+        x
+    } else {
+        f64::from_bits(x.to_bits() & !((1u64 << level) - 1))
+    }
+}
+
+impl FloatTally {
+    fn add(&mut self, x: f64, w: u64) {
+        if w == 0 {
+            return;
+        }
+        *self
+            .counts
+            .entry(truncate(x, self.level).to_bits())
+            .or_default() += w;
+        self.low = self.low.min(x);
+        self.high = self.high.max(x);
+        self.n += w;
+        self.coarsen_to(self.level);
+    }
+
+    /// Truncates to at least `level`, then further until the distinct values fit.
+    fn coarsen_to(&mut self, level: u32) {
+        let mut level = level.max(self.level);
+        while level != self.level || self.counts.len() > FLOAT_DISTINCT_LIMIT {
+            if level == self.level {
+                level = (level + 4).min(52);
+            }
+            let mut coarser = FxHashMap::default();
+            for (bits, c) in self.counts.drain() {
+                *coarser
+                    .entry(truncate(f64::from_bits(bits), level).to_bits())
+                    .or_default() += c;
+            }
+            self.counts = coarser;
+            self.level = level;
+            if level == 52 {
+                break;
+            }
+        }
+    }
+
+    fn merge(&mut self, other: &FloatTally) {
+        self.coarsen_to(other.level);
+        for (bits, c) in &other.counts {
+            *self
+                .counts
+                .entry(truncate(f64::from_bits(*bits), self.level).to_bits())
+                .or_default() += c;
+        }
+        self.low = self.low.min(other.low);
+        self.high = self.high.max(other.high);
+        self.n += other.n;
+        self.coarsen_to(self.level);
+    }
+
+    /// Bin edges at the order statistics `s[k*(n-1)/n_bins]` for k = 1..n_bins (integer
+    /// division) of the sorted values s, without repeats and without the minimum, so every bin
+    /// holds at least one value.
+    fn bins(&self, n_bins: usize) -> Values {
+        let mut sorted: Vec<(f64, u64)> = self
+            .counts
+            .iter()
+            .map(|(b, c)| (f64::from_bits(*b), *c))
+            .collect();
+        sorted.sort_unstable_by(|a, b| a.0.total_cmp(&b.0));
+        let (low, high) = (self.low, self.high);
+        let mut edges: Vec<f64> = Vec::with_capacity(n_bins);
+        let mut at = 0usize;
+        let mut before = 0u128; // values before sorted[at]
+        for k in 1..n_bins {
+            let index = k as u128 * u128::from(self.n.saturating_sub(1)) / n_bins as u128;
+            while at < sorted.len() && before + u128::from(sorted[at].1) <= index {
+                before += u128::from(sorted[at].1);
+                at += 1;
+            }
+            let Some(&(e, _)) = sorted.get(at) else { break };
+            if e > low && e <= high && edges.last().is_none_or(|last| *last < e) {
+                edges.push(e);
+            }
+        }
+        Values::Bins { edges, low, high }
+    }
 }
 
 impl Tally {
@@ -304,7 +426,7 @@ impl Tally {
             Kind::Int => Tally::Int(FxHashMap::default()),
             Kind::UInt => Tally::UInt(FxHashMap::default()),
             Kind::Str => Tally::Str(FxHashMap::default()),
-            Kind::Float => Tally::Float(Vec::new()),
+            Kind::Float => Tally::Float(FloatTally::default()),
         }
     }
 
@@ -444,9 +566,7 @@ impl ColumnTally {
                         Some(x) if x.is_infinite() && w > 0 => {
                             infinite.get_or_insert((at - 1, x));
                         }
-                        Some(x) if !x.is_nan() => {
-                            seen.extend(std::iter::repeat_n(x, usize::try_from(w).unwrap_or(0)))
-                        }
+                        Some(x) if !x.is_nan() => seen.add(x, w),
                         _ => nulls += w,
                     }
                 })?;
@@ -454,6 +574,61 @@ impl ColumnTally {
         }
         self.nulls += nulls;
         Ok(infinite)
+    }
+
+    /// Adds another tally of the same column (from another batch, file or worker).
+    fn merge(&mut self, other: &ColumnTally) -> Result<()> {
+        fn add_map<K: Clone + Eq + std::hash::Hash>(
+            a: &mut FxHashMap<K, u64>,
+            b: &FxHashMap<K, u64>,
+        ) {
+            for (k, c) in b {
+                *a.entry(k.clone()).or_default() += c;
+            }
+        }
+        self.nulls += other.nulls;
+        match (&mut self.tally, &other.tally) {
+            (_, Tally::Unknown) => {}
+            (mine @ Tally::Unknown, theirs) => *mine = theirs.clone(),
+            (Tally::Bool(a), Tally::Bool(b)) => {
+                a[0] += b[0];
+                a[1] += b[1];
+            }
+            (Tally::Int(a), Tally::Int(b)) => add_map(a, b),
+            (Tally::UInt(a), Tally::UInt(b)) => add_map(a, b),
+            (Tally::Str(a), Tally::Str(b)) => add_map(a, b),
+            (Tally::Float(a), Tally::Float(b)) => a.merge(b),
+            (mine, theirs) => {
+                return Err(Error::Schema(format!(
+                    "column '{}' holds {} values in one part of the data and {} values in another; \
+                     cast it to one type everywhere",
+                    self.name,
+                    mine.kind().map_or("null", Kind::name),
+                    theirs.kind().map_or("null", Kind::name)
+                )))
+            }
+        }
+        self.check_distinct()
+    }
+
+    /// Refuses a categorical column whose distinct values pass [`DISTINCT_LIMIT`].
+    fn check_distinct(&self) -> Result<()> {
+        let distinct = match &self.tally {
+            Tally::Int(m) => m.len(),
+            Tally::UInt(m) => m.len(),
+            Tally::Str(m) => m.len(),
+            _ => 0,
+        };
+        if distinct > DISTINCT_LIMIT {
+            return Err(Error::TooManyCategories(format!(
+                "column '{}' has more than {DISTINCT_LIMIT} distinct values, so it looks like an \
+                 identifier; treewise keeps at most {MAX_CATEGORIES} codes per column and cannot \
+                 find the most frequent values of a column this wide in bounded memory. Leave it \
+                 out with columns=, or bucket it first (by prefix, range or hash)",
+                self.name
+            )));
+        }
+        Ok(())
     }
 
     fn finish(
@@ -495,11 +670,8 @@ impl ColumnTally {
                     keep_most_frequent(&name, m.into_iter().collect(), max_categories, has_null);
                 (Values::Str(kept), cap)
             }
-            Tally::Float(seen) if seen.is_empty() => return Err(all_null()),
-            Tally::Float(mut seen) => {
-                seen.sort_unstable_by(f64::total_cmp);
-                (quantile_bins(&seen, n_bins), None)
-            }
+            Tally::Float(seen) if seen.n == 0 => return Err(all_null()),
+            Tally::Float(seen) => (seen.bins(n_bins), None),
         };
         if values.is_empty() && cap.is_none() {
             return Err(all_null());
@@ -532,27 +704,6 @@ fn keep_most_frequent<T: Ord>(
     let mut kept: Vec<T> = seen.into_iter().map(|(v, _)| v).collect();
     kept.sort_unstable();
     (kept, cap)
-}
-
-/// Bin edges at the order statistics `sorted[k*(n-1)/n_bins]` for k = 1..n_bins (integer
-/// division), without repeats and without the minimum, so every bin holds at least one value.
-fn quantile_bins(sorted: &[f64], n_bins: usize) -> Values {
-    let n = sorted.len();
-    let (Some(&low), Some(&high)) = (sorted.first(), sorted.last()) else {
-        return Values::Bins {
-            edges: Vec::new(),
-            low: 0.0,
-            high: 0.0,
-        };
-    };
-    let mut edges: Vec<f64> = Vec::with_capacity(n_bins);
-    for k in 1..n_bins {
-        let e = sorted[k * (n - 1) / n_bins];
-        if e > low && edges.last().is_none_or(|last| *last < e) {
-            edges.push(e);
-        }
-    }
-    Values::Bins { edges, low, high }
 }
 
 /// The codebook of a whole table.
@@ -647,8 +798,27 @@ impl CodebookBuilder {
         self.columns
             .par_iter_mut()
             .zip(batch.columns().par_iter())
-            .try_for_each(|(col, array)| col.observe(array.as_ref()))?;
+            .try_for_each(|(col, array)| {
+                col.observe(array.as_ref())?;
+                col.check_distinct()
+            })?;
         self.rows += batch.num_rows() as u64;
+        Ok(())
+    }
+
+    /// Adds another builder's tallies (the same columns, from other data).
+    pub fn merge(&mut self, other: &CodebookBuilder) -> Result<()> {
+        let mine: Vec<&str> = self.columns.iter().map(|c| c.name.as_str()).collect();
+        let theirs: Vec<&str> = other.columns.iter().map(|c| c.name.as_str()).collect();
+        if mine != theirs {
+            return Err(Error::Schema(format!(
+                "cannot merge codebook tallies of columns {mine:?} and {theirs:?}"
+            )));
+        }
+        for (a, b) in self.columns.iter_mut().zip(&other.columns) {
+            a.merge(b)?;
+        }
+        self.rows += other.rows;
         Ok(())
     }
 
@@ -688,19 +858,175 @@ impl CodebookBuilder {
     }
 }
 
+// -- serialization of the codebook pass, so that workers can send their tallies ----------------
+
+fn sorted_entries<K: Ord + Clone>(map: &FxHashMap<K, u64>) -> Vec<(K, u64)> {
+    let mut entries: Vec<(K, u64)> = map.iter().map(|(k, c)| (k.clone(), *c)).collect();
+    entries.sort_unstable_by(|a, b| a.0.cmp(&b.0));
+    entries
+}
+
+fn corrupt_tally(what: &str) -> Error {
+    Error::CorruptModel(format!("codebook tallies: {what}"))
+}
+
+fn read_map<K: Ord + Eq + Clone + std::hash::Hash>(
+    r: &mut Reader<'_>,
+    entry_size: usize,
+    mut key: impl FnMut(&mut Reader<'_>) -> Result<K>,
+) -> Result<FxHashMap<K, u64>> {
+    let n = r.len(entry_size)?;
+    let mut map = FxHashMap::default();
+    let mut last: Option<K> = None;
+    for _ in 0..n {
+        let k = key(r)?;
+        let c = r.u64()?;
+        if last.as_ref().is_some_and(|l| *l >= k) {
+            return Err(corrupt_tally("keys are not strictly increasing"));
+        }
+        last = Some(k.clone());
+        map.insert(k, c);
+    }
+    Ok(map)
+}
+
+impl CodebookBuilder {
+    /// Writes the tallies (keys sorted, so equal tallies give equal bytes).
+    pub fn write(&self, w: &mut Writer) {
+        w.u64(self.rows);
+        w.len(self.columns.len());
+        for col in &self.columns {
+            w.str(&col.name);
+            w.u64(col.nulls);
+            match &col.tally {
+                Tally::Unknown => w.u8(0),
+                Tally::Bool(c) => {
+                    w.u8(1);
+                    w.u64(c[0]);
+                    w.u64(c[1]);
+                }
+                Tally::Int(m) => {
+                    w.u8(2);
+                    let e = sorted_entries(m);
+                    w.len(e.len());
+                    e.iter().for_each(|(k, c)| {
+                        w.i64(*k);
+                        w.u64(*c);
+                    });
+                }
+                Tally::UInt(m) => {
+                    w.u8(3);
+                    let e = sorted_entries(m);
+                    w.len(e.len());
+                    e.iter().for_each(|(k, c)| {
+                        w.u64(*k);
+                        w.u64(*c);
+                    });
+                }
+                Tally::Str(m) => {
+                    w.u8(4);
+                    let e = sorted_entries(m);
+                    w.len(e.len());
+                    e.iter().for_each(|(k, c)| {
+                        w.str(k);
+                        w.u64(*c);
+                    });
+                }
+                Tally::Float(f) => {
+                    w.u8(5);
+                    w.u32(f.level);
+                    w.f64(f.low);
+                    w.f64(f.high);
+                    w.u64(f.n);
+                    let e = sorted_entries(&f.counts);
+                    w.len(e.len());
+                    e.iter().for_each(|(k, c)| {
+                        w.u64(*k);
+                        w.u64(*c);
+                    });
+                }
+            }
+        }
+    }
+
+    /// Reads tallies written by [`CodebookBuilder::write`], checking every length and count.
+    pub fn read(r: &mut Reader<'_>) -> Result<Self> {
+        let rows = r.u64()?;
+        let n = r.len(8 + 8 + 1)?;
+        let mut columns = Vec::with_capacity(n);
+        for _ in 0..n {
+            let name = r.str()?;
+            let nulls = r.u64()?;
+            let tally = match r.u8()? {
+                0 => Tally::Unknown,
+                1 => Tally::Bool([r.u64()?, r.u64()?]),
+                2 => Tally::Int(read_map(r, 16, |r| r.i64())?),
+                3 => Tally::UInt(read_map(r, 16, |r| r.u64())?),
+                4 => Tally::Str(read_map(r, 16, |r| r.str().map(String::into_boxed_str))?),
+                5 => {
+                    let level = r.u32()?;
+                    let (low, high, count) = (r.f64()?, r.f64()?, r.u64()?);
+                    let counts = read_map(r, 16, |r| r.u64())?;
+                    let total = counts.values().try_fold(0u64, |acc, c| acc.checked_add(*c));
+                    let finite = counts.keys().all(|b| f64::from_bits(*b).is_finite());
+                    if level > 52 || total != Some(count) || !finite {
+                        return Err(corrupt_tally("a float tally is inconsistent"));
+                    }
+                    Tally::Float(FloatTally {
+                        counts,
+                        level,
+                        low,
+                        high,
+                        n: count,
+                    })
+                }
+                _ => return Err(corrupt_tally("unknown tally kind")),
+            };
+            let col = ColumnTally { name, tally, nulls };
+            col.check_distinct()?;
+            columns.push(col);
+        }
+        Ok(CodebookBuilder { columns, rows })
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
 
     #[test]
     fn quantile_edges_skip_repeats_and_the_minimum() {
-        let sorted = [1.0, 1.0, 1.0, 2.0, 3.0, 3.0, 4.0, 9.0];
-        let Values::Bins { edges, low, high } = quantile_bins(&sorted, 4) else {
+        let mut tally = FloatTally::default();
+        for x in [3.0, 1.0, 9.0, 1.0, 2.0, 4.0, 1.0, 3.0] {
+            tally.add(x, 1);
+        }
+        let Values::Bins { edges, low, high } = tally.bins(4) else {
             panic!("not bins")
         };
         // k*(n-1)/4 for k=1,2,3 with n=8: indexes 1, 3, 5 -> 1.0 (the minimum, dropped), 2.0, 3.0.
         assert_eq!(edges, vec![2.0, 3.0]);
         assert_eq!((low, high), (1.0, 9.0));
+    }
+
+    #[test]
+    fn coarsening_does_not_depend_on_order_or_split() {
+        let values: Vec<f64> = (0..(FLOAT_DISTINCT_LIMIT as u64 + 5000))
+            .map(|k| 1.0 + (k as f64) * 1e-9)
+            .collect();
+        let mut forward = FloatTally::default();
+        values.iter().for_each(|x| forward.add(*x, 1));
+        let mut halves = [FloatTally::default(), FloatTally::default()];
+        values
+            .iter()
+            .rev()
+            .enumerate()
+            .for_each(|(i, x)| halves[i % 2].add(*x, 1));
+        let [mut a, b] = halves;
+        a.merge(&b);
+        assert!(forward.level > 0);
+        assert_eq!(forward.level, a.level);
+        assert_eq!(forward.counts, a.counts);
+        assert_eq!(forward.bins(10), a.bins(10));
     }
 
     #[test]

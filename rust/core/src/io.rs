@@ -1,7 +1,7 @@
 //! The model file: our own little-endian binary layout with a version and a CRC-32, read with a
 //! bounds check before every allocation (docs/model-format.md describes it byte by byte).
 
-use crate::codebook::{Codebook, ColumnCode, Values};
+use crate::codebook::{Codebook, CodebookBuilder, ColumnCode, Values};
 use crate::error::{Error, Result};
 use crate::model::TreeModel;
 use crate::stats::PairStats;
@@ -15,6 +15,10 @@ pub const FORMAT_VERSION: u32 = 1;
 pub const KIND_MODEL: u32 = 1;
 /// The file holds pair statistics with the codebook they were counted with.
 pub const KIND_STATS: u32 = 2;
+/// The file holds the tallies of a codebook pass (to merge across workers).
+pub const KIND_TALLIES: u32 = 3;
+/// The file holds a codebook alone.
+pub const KIND_CODEBOOK: u32 = 4;
 const HEADER_LEN: usize = 8 + 4 + 4 + 8 + 4;
 const NO_PARENT: u32 = u32::MAX;
 
@@ -330,10 +334,13 @@ pub fn model_from_bytes(file: &[u8]) -> Result<TreeModel> {
     })
 }
 
-/// The bytes of a pair-statistics file: the codebook, then the exact counts.
-pub fn stats_to_bytes(codebook: &Codebook, stats: &PairStats) -> Vec<u8> {
+/// The bytes of a pair-statistics file: the codebook, each column's output type name, then the
+/// exact counts.
+pub fn stats_to_bytes(codebook: &Codebook, dtypes: &[String], stats: &PairStats) -> Vec<u8> {
     let mut w = Writer::default();
     write_codebook(&mut w, codebook);
+    w.len(dtypes.len());
+    dtypes.iter().for_each(|t| w.str(t));
     w.u64(stats.n_rows());
     stats.marginals().iter().for_each(|m| w.u64s(m));
     w.u64s(stats.cells());
@@ -341,13 +348,28 @@ pub fn stats_to_bytes(codebook: &Codebook, stats: &PairStats) -> Vec<u8> {
 }
 
 /// Reads and validates a pair-statistics file (every count is checked against the others).
-pub fn stats_from_bytes(file: &[u8]) -> Result<(Codebook, PairStats)> {
+pub fn stats_from_bytes(file: &[u8]) -> Result<(Codebook, Vec<String>, PairStats)> {
     let mut r = Reader::open(file, KIND_STATS)?;
     let codebook = read_codebook(&mut r)?;
+    let d = codebook.columns().len();
+    let n_types = r.len(8)?;
+    if n_types != d {
+        return Err(bad(format!("{n_types} column types for {d} columns")));
+    }
+    let dtypes = (0..d).map(|_| r.str()).collect::<Result<Vec<_>>>()?;
+    if let Some((col, t)) = codebook
+        .columns()
+        .iter()
+        .zip(&dtypes)
+        .find(|(c, t)| !crate::dtype::fits(t, c))
+    {
+        return Err(bad(format!(
+            "column '{}' is stored as type {t:?}, which cannot hold its values",
+            col.name()
+        )));
+    }
     let n_rows = r.u64()?;
-    let marginals = (0..codebook.columns().len())
-        .map(|_| r.u64s())
-        .collect::<Result<Vec<_>>>()?;
+    let marginals = (0..d).map(|_| r.u64s()).collect::<Result<Vec<_>>>()?;
     let cells = r.u64s()?;
     r.end()?;
     let stats =
@@ -357,7 +379,37 @@ pub fn stats_from_bytes(file: &[u8]) -> Result<(Codebook, PairStats)> {
                 other => bad(other),
             }
         })?;
-    Ok((codebook, stats))
+    Ok((codebook, dtypes, stats))
+}
+
+/// The bytes of a codebook-pass tally file.
+pub fn tallies_to_bytes(builder: &CodebookBuilder) -> Vec<u8> {
+    let mut w = Writer::default();
+    builder.write(&mut w);
+    w.finish(KIND_TALLIES)
+}
+
+/// Reads a codebook-pass tally file.
+pub fn tallies_from_bytes(file: &[u8]) -> Result<CodebookBuilder> {
+    let mut r = Reader::open(file, KIND_TALLIES)?;
+    let builder = CodebookBuilder::read(&mut r)?;
+    r.end()?;
+    Ok(builder)
+}
+
+/// The bytes of a codebook file.
+pub fn codebook_to_bytes(codebook: &Codebook) -> Vec<u8> {
+    let mut w = Writer::default();
+    write_codebook(&mut w, codebook);
+    w.finish(KIND_CODEBOOK)
+}
+
+/// Reads a codebook file.
+pub fn codebook_from_bytes(file: &[u8]) -> Result<Codebook> {
+    let mut r = Reader::open(file, KIND_CODEBOOK)?;
+    let codebook = read_codebook(&mut r)?;
+    r.end()?;
+    Ok(codebook)
 }
 
 #[cfg(test)]
@@ -394,6 +446,52 @@ mod tests {
         )
     }
 
+    fn batch(
+        ints: Vec<Option<i64>>,
+        strs: Vec<Option<&str>>,
+        floats: Vec<f64>,
+    ) -> Result<arrow_array::RecordBatch> {
+        use arrow_array::{ArrayRef, Float64Array, Int64Array, StringArray};
+        use std::sync::Arc;
+        let columns: Vec<(&str, ArrayRef)> = vec![
+            ("i", Arc::new(Int64Array::from(ints))),
+            ("s", Arc::new(StringArray::from(strs))),
+            ("f", Arc::new(Float64Array::from(floats))),
+        ];
+        arrow_array::RecordBatch::try_from_iter(columns).map_err(|e| Error::Invalid(e.to_string()))
+    }
+
+    #[test]
+    fn merged_tallies_equal_one_pass_and_round_trip() -> Result<()> {
+        let names = vec!["i".to_string(), "s".to_string(), "f".to_string()];
+        let first = batch(
+            vec![Some(1), None, Some(3)],
+            vec![Some("a"), Some("b"), None],
+            vec![0.5, f64::NAN, 2.0],
+        )?;
+        let second = batch(
+            vec![Some(3), Some(7)],
+            vec![Some("b"), Some("z")],
+            vec![-1.0, 0.5],
+        )?;
+        let mut whole = CodebookBuilder::new(names.clone());
+        whole.observe(&first)?;
+        whole.observe(&second)?;
+        let mut a = CodebookBuilder::new(names.clone());
+        a.observe(&second)?;
+        let mut b = CodebookBuilder::new(names);
+        b.observe(&first)?;
+        let b = tallies_from_bytes(&tallies_to_bytes(&b))?;
+        a.merge(&b)?;
+        assert_eq!(tallies_to_bytes(&a), tallies_to_bytes(&whole));
+        let (codebook, _) = whole.finish(128, 10)?;
+        assert_eq!(
+            codebook_from_bytes(&codebook_to_bytes(&codebook))?,
+            codebook
+        );
+        Ok(())
+    }
+
     #[test]
     fn save_load_save_is_byte_identical() -> Result<()> {
         let model = small_model()?;
@@ -408,9 +506,10 @@ mod tests {
         let model = small_model()?;
         let mut stats = PairStats::new(model.codebook().cardinalities())?;
         stats.add_codes(&[vec![0, 1, 2, 1, 0], vec![0, 1, 1, 1, 0]])?;
-        let bytes = stats_to_bytes(model.codebook(), &stats);
-        let (codebook, back) = stats_from_bytes(&bytes)?;
+        let bytes = stats_to_bytes(model.codebook(), model.dtypes(), &stats);
+        let (codebook, dtypes, back) = stats_from_bytes(&bytes)?;
         assert_eq!((&codebook, &back), (model.codebook(), &stats));
+        assert_eq!(dtypes, model.dtypes());
         assert!(stats_from_bytes(&bytes[..bytes.len() - 1]).is_err());
         assert!(
             model_from_bytes(&bytes).is_err(),

@@ -40,6 +40,31 @@ impl PyCodebookBuilder {
         detached(py, || builder.observe(&batch))
     }
 
+    /// Adds another builder's tallies (the same columns, other data).
+    fn merge(&mut self, py: Python<'_>, other: &PyCodebookBuilder) -> PyResult<()> {
+        let theirs = other.inner.as_ref().ok_or_else(finished_error)?;
+        let mine = self.builder()?;
+        detached(py, || mine.merge(theirs))
+    }
+
+    /// The tallies as bytes (for sending between processes).
+    fn to_bytes<'py>(&self, py: Python<'py>) -> PyResult<Bound<'py, PyBytes>> {
+        let builder = self.inner.as_ref().ok_or_else(finished_error)?;
+        Ok(PyBytes::new(
+            py,
+            &treewise_core::io::tallies_to_bytes(builder),
+        ))
+    }
+
+    /// Reads tallies written by `to_bytes`.
+    #[staticmethod]
+    fn from_bytes(py: Python<'_>, data: &[u8]) -> PyResult<Self> {
+        let builder = detached(py, || treewise_core::io::tallies_from_bytes(data))?;
+        Ok(PyCodebookBuilder {
+            inner: Some(builder),
+        })
+    }
+
     /// Rows observed so far.
     #[getter]
     fn rows(&self) -> PyResult<u64> {
@@ -136,6 +161,44 @@ impl PyCodebook {
     fn __len__(&self) -> usize {
         self.inner.columns().len()
     }
+
+    /// The codebook as bytes (our own layout; see docs/model-format.md).
+    fn to_bytes<'py>(&self, py: Python<'py>) -> Bound<'py, PyBytes> {
+        PyBytes::new(py, &treewise_core::io::codebook_to_bytes(&self.inner))
+    }
+
+    /// Reads a codebook written by `to_bytes`, validating it.
+    #[staticmethod]
+    fn from_bytes(py: Python<'_>, data: &[u8]) -> PyResult<Self> {
+        let inner = detached(py, || treewise_core::io::codebook_from_bytes(data))?;
+        Ok(PyCodebook { inner })
+    }
+
+    /// The same codebook restricted to some columns, in the order given.
+    fn select(&self, names: Vec<String>) -> PyResult<PyCodebook> {
+        let columns = names
+            .iter()
+            .map(|n| {
+                self.inner
+                    .columns()
+                    .iter()
+                    .find(|c| c.name() == n)
+                    .cloned()
+                    .ok_or_else(|| {
+                        to_py(treewise_core::Error::Schema(format!(
+                            "column '{n}' is not in the codebook"
+                        )))
+                    })
+            })
+            .collect::<PyResult<Vec<_>>>()?;
+        Ok(PyCodebook {
+            inner: Codebook::new(columns).map_err(to_py)?,
+        })
+    }
+
+    fn __eq__(&self, other: &PyCodebook) -> bool {
+        self.inner == other.inner
+    }
 }
 
 /// Exact pair counts over one codebook's codes.
@@ -168,26 +231,43 @@ impl PyPairStats {
         })
     }
 
-    /// These counts with the codebook they were counted with, as a pair-statistics file.
+    /// These counts with the codebook they were counted with and each column's output type
+    /// name, as a pair-statistics file.
     fn to_bytes<'py>(
         &self,
         py: Python<'py>,
         codebook: &PyCodebook,
+        dtypes: Vec<String>,
     ) -> PyResult<Bound<'py, PyBytes>> {
         if codebook.inner.cardinalities() != self.inner.cardinalities() {
             return Err(to_py(treewise_core::Error::Schema(
                 "these statistics were not counted with this codebook".into(),
             )));
         }
-        let bytes = treewise_core::io::stats_to_bytes(&codebook.inner, &self.inner);
+        let bytes = treewise_core::io::stats_to_bytes(&codebook.inner, &dtypes, &self.inner);
         Ok(PyBytes::new(py, &bytes))
     }
 
-    /// Reads a pair-statistics file: (codebook, statistics), validated before use.
+    /// Reads a pair-statistics file: (codebook, type names, statistics), validated before use.
     #[staticmethod]
-    fn from_bytes(py: Python<'_>, data: &[u8]) -> PyResult<(PyCodebook, PyPairStats)> {
-        let (codebook, stats) = detached(py, || treewise_core::io::stats_from_bytes(data))?;
-        Ok((PyCodebook { inner: codebook }, PyPairStats { inner: stats }))
+    fn from_bytes(py: Python<'_>, data: &[u8]) -> PyResult<(PyCodebook, Vec<String>, PyPairStats)> {
+        let (codebook, dtypes, stats) = detached(py, || treewise_core::io::stats_from_bytes(data))?;
+        Ok((
+            PyCodebook { inner: codebook },
+            dtypes,
+            PyPairStats { inner: stats },
+        ))
+    }
+
+    /// An independent copy of these counts.
+    fn copy(&self) -> PyPairStats {
+        PyPairStats {
+            inner: self.inner.clone(),
+        }
+    }
+
+    fn __eq__(&self, other: &PyPairStats) -> bool {
+        self.inner == other.inner
     }
 
     /// Adds another PairStats' counts to these.

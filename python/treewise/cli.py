@@ -1,0 +1,611 @@
+"""The ``treewise`` command: fit, score, sample and show dependency trees from the terminal."""
+
+from __future__ import annotations
+
+import json
+import os
+import secrets
+import sys
+import time
+import warnings
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any, TextIO
+
+import click
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+from rich.console import Console
+from rich.table import Table
+from rich.text import Text
+from rich.tree import Tree
+
+import treewise
+from treewise.sources import open_source
+
+__all__ = [
+    "SAMPLE_CAUTION",
+    "SCORE_CAUTION",
+    "explain_rows",
+    "main",
+    "strongest_table",
+    "surprising_table",
+    "tree_view",
+]
+
+#: Printed once wherever scores are shown.
+SCORE_CAUTION = (
+    "A score is evidence, not a verdict: a surprising row is worth a look, but no decision "
+    "about a person should rest on a score alone."
+)
+#: Printed once wherever synthetic rows are written.
+SAMPLE_CAUTION = (
+    "Rows sampled from a model fitted on personal data can reveal rare records; local privacy "
+    "law and your organisation's policy come first."
+)
+
+#: Errors that end a command with one line (exit status 1) instead of a traceback.
+HANDLED_ERRORS: tuple[type[BaseException], ...] = (
+    treewise.TreewiseError,
+    OSError,  # FileNotFoundError, IsADirectoryError, PermissionError, a full disk, ...
+    ValueError,
+    TypeError,
+    pa.ArrowException,
+)
+
+# -- rendering shared by the commands and the demo --------------------------------------------
+
+
+def tree_view(model: treewise.DependencyTree, title: str) -> Tree:
+    """The fitted tree as a rich Tree, indented from the root.
+
+    Each node shows the column's name and cardinality (its number of codes, counting the "other"
+    and null codes) and, below the root, its mutual information with its parent in nats.
+    Children are listed strongest first, so the main chains read top to bottom.
+
+    Parameters
+    ----------
+    model : DependencyTree
+        A fitted model.
+    title : str
+        The label of the top node.
+
+    Returns
+    -------
+    rich.tree.Tree
+        Ready for ``Console.print``.
+    """
+    names = [str(name) for name in model.feature_names_in_]
+    children: dict[int, list[int]] = {i: [] for i in range(len(names))}
+    roots: list[int] = []
+    for child, parent in enumerate(model.parent_):
+        if parent < 0:
+            roots.append(child)
+        else:
+            children[int(parent)].append(child)
+
+    def label(node: int, is_root: bool) -> Text:
+        cardinality = len(model.categories_[node])
+        link = "root" if is_root else f"MI {model.mutual_info_[node]:.4f}"
+        return Text.assemble((names[node], "bold"), f"  {cardinality} categories, {link}")
+
+    top = Tree(Text(title))
+    stack: list[tuple[int, Tree]] = [(root, top) for root in reversed(roots)]
+    while stack:
+        node, under = stack.pop()
+        branch = under.add(label(node, is_root=model.parent_[node] < 0))
+        ordered = sorted(children[node], key=lambda c: (-model.mutual_info_[c], c))
+        stack.extend((c, branch) for c in reversed(ordered))
+    return top
+
+
+def strongest_table(model: treewise.DependencyTree, k: int = 5) -> Table:
+    """The ``k`` edges with the highest mutual information, strongest first."""
+    edges = model.edges()
+    mutual_info = np.asarray(edges["mutual_info"])
+    order = np.argsort(-mutual_info, kind="stable")[:k]
+    table = Table(title=f"Strongest dependencies (top {len(order)} of {edges.num_rows} edges)")
+    table.add_column("parent")
+    table.add_column("child")
+    table.add_column("MI (nats)", justify="right")
+    table.add_column("G", justify="right")
+    parents, children = edges["parent"].to_pylist(), edges["child"].to_pylist()
+    g_statistic = edges["g_statistic"].to_pylist()
+    for e in order:
+        table.add_row(parents[e], children[e], f"{mutual_info[e]:.4f}", f"{g_statistic[e]:,.0f}")
+    return table
+
+
+def explain_rows(top: pa.Table, names: Sequence[str], k: int = 3) -> list[list[tuple[str, float]]]:
+    """For each row of ``top``, the ``k`` columns with the highest surprisal, highest first.
+
+    Parameters
+    ----------
+    top : pyarrow.Table
+        Rows as returned by ``DependencyTree.score_to_parquet``: one surprisal column (in nats)
+        per modelled column, named like it.
+    names : sequence of str
+        The modelled columns.
+    k : int, default 3
+        How many columns per row.
+
+    Returns
+    -------
+    list of list of (str, float)
+        Per row, ``(column, surprisal)`` pairs; ties keep the column order.
+    """
+    if top.num_rows == 0 or not names:
+        return [[] for _ in range(top.num_rows)]
+    matrix = np.column_stack([np.asarray(top[name], dtype=np.float64) for name in names])
+    order = np.argsort(-matrix, axis=1, kind="stable")[:, :k]
+    return [[(names[c], float(matrix[r, c])) for c in order[r]] for r in range(top.num_rows)]
+
+
+def surprising_table(top: pa.Table, names: Sequence[str], keys: Sequence[str], title: str) -> Table:
+    """The most surprising rows with the three columns that made each one so.
+
+    Parameters
+    ----------
+    top : pyarrow.Table
+        Rows as returned by ``DependencyTree.score_to_parquet``, most surprising first.
+    names : sequence of str
+        The modelled columns (surprisal columns of ``top``).
+    keys : sequence of str
+        Key columns of ``top`` to show beside the row number.
+    title : str
+        The table's title.
+
+    Returns
+    -------
+    rich.table.Table
+        One line per row: row number, keys, ln p(row) and the top three columns with their
+        surprisal -ln P(value | parent value) in nats.
+    """
+    table = Table(title=title)
+    table.add_column("row", justify="right")
+    for key in keys:
+        table.add_column(key)
+    table.add_column("ln p", justify="right")
+    table.add_column("most surprising columns (surprisal in nats)")
+    key_values = {key: top[key].to_pylist() for key in keys}
+    scores = top["score"].to_pylist()
+    rows = top["row"].to_pylist()
+    for r, reasons in enumerate(explain_rows(top, names)):
+        why = "\n".join(f"{name} {value:.1f}" for name, value in reasons)
+        cells = [str(key_values[key][r]) for key in keys]
+        table.add_row(f"{rows[r]:,}", *cells, f"{scores[r]:.2f}", why)
+    return table
+
+
+def model_json(model: treewise.DependencyTree) -> dict[str, Any]:
+    """The model's structure as plain JSON types (what ``treewise show --json`` prints)."""
+    names = [str(name) for name in model.feature_names_in_]
+    edges = model.edges().to_pylist()
+    return {
+        "columns": names,
+        "cardinalities": [len(categories) for categories in model.categories_],
+        "parent": [names[int(p)] if p >= 0 else None for p in model.parent_],
+        "n_rows": int(model.n_rows_),
+        "alpha": float(model.alpha),
+        "edges": [
+            {
+                "parent": e["parent"],
+                "child": e["child"],
+                "mutual_info": e["mutual_info"],
+                "g_statistic": e["g_statistic"],
+                "dof": e["dof"],
+                "p_value": e["p_value"],
+            }
+            for e in edges
+        ],
+    }
+
+
+# -- helpers of the commands ------------------------------------------------------------------
+
+
+def _console() -> Console:
+    return Console(highlight=False, soft_wrap=True)
+
+
+def _source(data: Sequence[str]) -> str | list[str]:
+    """What the library takes: one path (file, directory or glob) or a list of them."""
+    return data[0] if len(data) == 1 else list(data)
+
+
+def _progress(no_progress: bool) -> bool | None:
+    """``None`` lets the library show a bar only when stderr is a terminal."""
+    return False if no_progress else None
+
+
+def _check_output(path: str) -> None:
+    """Fail before the long work, not after it, when the output cannot be written."""
+    target = Path(path)
+    if target.is_dir():
+        raise IsADirectoryError(f"the output {path} is a directory; give a file name")
+    parent = target.parent
+    if not parent.is_dir():
+        raise FileNotFoundError(f"the output's directory {parent} does not exist; create it first")
+
+
+def _load(path: str) -> treewise.DependencyTree:
+    """Load a model file, saying which file was bad."""
+    try:
+        return treewise.load(path)
+    except treewise.CorruptModelError as e:
+        raise treewise.CorruptModelError(f"cannot read the model file {path}: {e}") from e
+
+
+def _seconds(start: float) -> str:
+    return f"{time.perf_counter() - start:.2f} s"
+
+
+def _names(ctx: click.Context, param: click.Parameter, value: str | None) -> list[str] | None:
+    """Split a comma-separated list of column names (``a,b,c``); refuse empty names."""
+    if value is None:
+        return None
+    names = [part.strip() for part in value.split(",")]
+    if not all(names):
+        raise click.BadParameter(f"{value!r} has an empty column name; write a,b,c", ctx, param)
+    return names
+
+
+def _columns(
+    data: Sequence[str], columns: list[str] | None, exclude: list[str] | None
+) -> list[str] | None:
+    """The estimator's ``columns=``: ``--columns`` (default: all of DATA's) less ``--exclude``."""
+    if not exclude:
+        return columns
+    available = open_source(_source(data)).names if columns is None else columns
+    where = "--columns" if columns is not None else "the data"
+    unknown = [name for name in exclude if name not in available]
+    if unknown:
+        raise treewise.SchemaError(f"--exclude names {unknown}, which are not in {where}")
+    kept = [name for name in available if name not in exclude]
+    if not kept:
+        raise treewise.DataError(f"--exclude leaves none of the columns of {where} to model")
+    return kept
+
+
+def _one_line(error: BaseException) -> str:
+    """The error as one line: the library's own message, or a file error's reason and path."""
+    if isinstance(error, OSError) and error.strerror and error.filename:
+        text = f"{error.strerror}: {error.filename}"
+    else:
+        text = str(error) or type(error).__name__
+    return " ".join(text.split())
+
+
+def _show_warning(
+    message: Warning | str,
+    category: type[Warning],
+    filename: str,
+    lineno: int,
+    file: TextIO | None = None,
+    line: str | None = None,
+) -> None:
+    click.echo(f"warning: {' '.join(str(message).split())}", err=True)
+
+
+class _Failure(click.ClickException):
+    """A handled error: printed as one ``error: ...`` line, exit status 1."""
+
+    def show(self, file: Any = None) -> None:
+        click.echo(f"error: {self.message}", err=True)
+
+
+class _Group(click.Group):
+    """The command group; turns the library's errors into one line unless ``--debug``."""
+
+    def invoke(self, ctx: click.Context) -> Any:
+        try:
+            return super().invoke(ctx)
+        except BrokenPipeError:
+            raise
+        except HANDLED_ERRORS as e:
+            if ctx.params.get("debug"):
+                raise
+            raise _Failure(_one_line(e)) from e
+
+
+# -- the commands -----------------------------------------------------------------------------
+
+DATA_HELP = "Parquet, CSV or Arrow IPC files, directories of them, or globs."
+
+
+@click.group(
+    cls=_Group,
+    context_settings={"help_option_names": ["-h", "--help"]},
+    epilog="""\b
+Example:
+  treewise demo --rows 200000
+  treewise show demo-output/shop.treewise""",
+)
+@click.version_option(version=treewise.__version__, prog_name="treewise")
+@click.option("--debug", is_flag=True, help="Show the full traceback when something fails.")
+def cli(debug: bool) -> None:
+    """Fit, score, sample and show dependency trees over large categorical tables.
+
+    A dependency tree hangs every column from the one other column that tells most about it.
+    Fit one to your data, see its structure, score rows by how surprising they are, and draw
+    synthetic rows that keep the dependencies.
+    """
+
+
+@cli.command(
+    epilog="""\b
+Example:
+  treewise fit demo-output/sessions -o shop.treewise \\
+      --columns device,browser_family,os_family,hour_bucket,cart_add,purchase
+  treewise fit 'logs/2026-*.parquet' extra.csv -o logs.treewise --bins 20"""
+)
+@click.argument("data", nargs=-1, required=True)
+@click.option("-o", "--output", required=True, metavar="MODEL", help="Where to save the model.")
+@click.option(
+    "--columns",
+    callback=_names,
+    metavar="A,B,C",
+    help="Columns to model, in this order (default: all).",
+)
+@click.option(
+    "--exclude", callback=_names, metavar="X,Y", help="Columns to leave out (ids, keys, labels)."
+)
+@click.option(
+    "--max-categories",
+    type=click.IntRange(2, 65_535),
+    default=128,
+    show_default=True,
+    help="Most codes per column; the rarest values beyond it share an 'other' code.",
+)
+@click.option(
+    "--bins",
+    type=click.IntRange(1, 65_534),
+    default=10,
+    show_default=True,
+    help="Quantile bins for float columns.",
+)
+@click.option(
+    "--alpha",
+    type=click.FloatRange(min=0.0),
+    default=0.5,
+    show_default=True,
+    help="Smoothing of the conditional tables (0: maximum likelihood).",
+)
+@click.option("--root", help="The column the tree hangs from (default: the first modelled one).")
+@click.option("--batch-rows", type=click.IntRange(min=1), help="Rows per batch read from disk.")
+@click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
+def fit(
+    data: tuple[str, ...],
+    output: str,
+    columns: list[str] | None,
+    exclude: list[str] | None,
+    max_categories: int,
+    bins: int,
+    alpha: float,
+    root: str | None,
+    batch_rows: int | None,
+    no_progress: bool,
+) -> None:
+    """Fit a dependency tree to DATA and save it to MODEL.
+
+    DATA: Parquet, CSV or Arrow IPC files, directories of them, or globs; they are read batch
+    by batch, so they may be larger than memory. Leave out keys and labels (ids, timestamps,
+    answers) with --columns/--exclude: a unique id says nothing about the other columns.
+    """
+    chosen = _columns(data, columns, exclude)
+    _check_output(output)
+    start = time.perf_counter()
+    model = treewise.DependencyTree(
+        columns=chosen, max_categories=max_categories, n_bins=bins, root=root, alpha=alpha
+    )
+    model.fit(_source(data), progress=_progress(no_progress), batch_rows=batch_rows)
+    model.save(output)
+    console = _console()
+    console.print(
+        f"Fitted {model.n_rows_:,} rows x {model.n_features_in_} columns: "
+        f"{int(np.sum(model.parent_ >= 0))} edges, {model.n_parameters_:,} free parameters."
+    )
+    console.print(strongest_table(model))
+    console.print(f"Saved the model to {output} in {_seconds(start)}.")
+
+
+@cli.command(
+    epilog="""\b
+Example:
+  treewise score demo-output/shop.treewise demo-output/sessions \\
+      -o scored.parquet --key session_id --top 5"""
+)
+@click.argument("model_path", metavar="MODEL")
+@click.argument("data", nargs=-1, required=True)
+@click.option("-o", "--output", required=True, metavar="OUT", help="Parquet file to write.")
+@click.option(
+    "--key", "keys", multiple=True, metavar="COL", help="Column to carry along (repeatable)."
+)
+@click.option("--surprisal", is_flag=True, help="Also write surprisal_<column> per column.")
+@click.option(
+    "--top",
+    type=click.IntRange(0, 1_000_000),
+    default=10,
+    show_default=True,
+    help="Show this many of the most surprising rows.",
+)
+@click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
+def score(
+    model_path: str,
+    data: tuple[str, ...],
+    output: str,
+    keys: tuple[str, ...],
+    surprisal: bool,
+    top: int,
+    no_progress: bool,
+) -> None:
+    """Score every row of DATA under MODEL and write the scores to OUT.
+
+    OUT holds the key columns, `score` (ln p(row) in nats: lower is more surprising) and, with
+    --surprisal, `surprisal_<column>` for each modelled column (-ln P(value | parent value)).
+    The most surprising rows are printed with the three columns that made them so.
+    """
+    model = _load(model_path)
+    _check_output(output)
+    start = time.perf_counter()
+    worst = model.score_to_parquet(
+        _source(data),
+        output,
+        keys=keys,
+        surprisal=surprisal,
+        top=top,
+        progress=_progress(no_progress),
+    )
+    n_rows = pq.read_metadata(output).num_rows
+    console = _console()
+    console.print(f"Scored {n_rows:,} rows and wrote {output} in {_seconds(start)}.")
+    if worst.num_rows:
+        names = [str(name) for name in model.feature_names_in_]
+        title = f"The {worst.num_rows} most surprising rows"
+        console.print(surprising_table(worst, names, keys, title))
+    console.print(SCORE_CAUTION)
+
+
+@cli.command(
+    epilog="""\b
+Example:
+  treewise sample demo-output/shop.treewise -n 100000 -o synthetic.parquet --seed 7"""
+)
+@click.argument("model_path", metavar="MODEL")
+@click.option(
+    "-n", "--rows", "n_rows", type=click.IntRange(min=0), required=True, help="Rows to draw."
+)
+@click.option("-o", "--output", required=True, metavar="OUT", help="Parquet file to write.")
+@click.option(
+    "--seed",
+    type=click.IntRange(0, 2**64 - 1),
+    help="Random seed; the same seed gives the same rows (default: a fresh one, printed).",
+)
+@click.option("--batch-rows", type=click.IntRange(min=1), help="Rows per batch written.")
+@click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
+def sample(
+    model_path: str,
+    n_rows: int,
+    output: str,
+    seed: int | None,
+    batch_rows: int | None,
+    no_progress: bool,
+) -> None:
+    """Draw synthetic rows from MODEL and write them to OUT (Parquet).
+
+    The rows have the fitted columns and types; float columns get a number drawn inside the
+    sampled bin, and the null and "other" codes come back as null.
+    """
+    model = _load(model_path)
+    _check_output(output)
+    if seed is None:
+        seed = secrets.randbits(63)
+    start = time.perf_counter()
+    written = model.sample_to_parquet(
+        n_rows, output, random_state=seed, batch_rows=batch_rows, progress=_progress(no_progress)
+    )
+    console = _console()
+    console.print(
+        f"Wrote {written:,} synthetic rows to {output} in {_seconds(start)} (seed {seed})."
+    )
+    console.print(SAMPLE_CAUTION)
+
+
+@cli.command(
+    epilog="""\b
+Example:
+  treewise show demo-output/shop.treewise
+  treewise show demo-output/shop.treewise --json > shop-tree.json"""
+)
+@click.argument("model_path", metavar="MODEL")
+@click.option(
+    "--json", "as_json", is_flag=True, help="Print JSON: columns, cardinalities, parents, edges."
+)
+def show(model_path: str, as_json: bool) -> None:
+    """Show the tree of MODEL, indented from the root.
+
+    Each column shows its cardinality and its mutual information with its parent (nats).
+    """
+    model = _load(model_path)
+    if as_json:
+        click.echo(json.dumps(model_json(model), indent=2, allow_nan=False))
+        return
+    title = f"{model_path}: {model.n_features_in_} columns, {model.n_rows_:,} rows, MI in nats"
+    _console().print(tree_view(model, title))
+
+
+@cli.command(
+    epilog="""\b
+Example:
+  treewise demo
+  treewise demo --rows 200000 --dir /tmp/shop-demo --seed 3"""
+)
+@click.option(
+    "--rows",
+    type=click.IntRange(min=1),
+    default=2_000_000,
+    show_default=True,
+    help="Sessions to generate.",
+)
+@click.option(
+    "--dir",
+    "directory",
+    default="demo-output",
+    show_default=True,
+    help="Where to write the data, the model, the scores and the synthetic rows.",
+)
+@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True)
+@click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
+def demo(rows: int, directory: str, seed: int, no_progress: bool) -> None:
+    """Run the whole story on an invented shop's sessions.
+
+    Generates sessions from a hidden tree, writes them as Parquet files, fits a tree to them by
+    streaming, compares it with the hidden one, scores the sessions against planted anomalies,
+    and checks that synthetic rows keep the dependencies.
+    """
+    from treewise import demo as story  # the demo renders with this module's helpers
+
+    story.run(rows=rows, directory=Path(directory), seed=seed, progress=_progress(no_progress))
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the ``treewise`` command.
+
+    Parameters
+    ----------
+    argv : sequence of str, optional
+        The arguments without the program name; default ``sys.argv[1:]``.
+
+    Returns
+    -------
+    int
+        The exit status: 0 on success, 1 when the data or a model is unusable, 2 on a usage
+        error, 130 when interrupted.
+    """
+    with warnings.catch_warnings():
+        warnings.simplefilter("default")
+        warnings.showwarning = _show_warning
+        try:
+            result = cli.main(args=argv, prog_name="treewise", standalone_mode=False)
+        except click.UsageError as e:
+            hint = f" (see '{e.ctx.command_path} --help')" if e.ctx is not None else ""
+            message = " ".join(e.format_message().split()).rstrip(".")
+            click.echo(f"error: {message}{hint}", err=True)
+            return e.exit_code
+        except click.ClickException as e:
+            e.show()
+            return e.exit_code
+        except click.Abort:
+            click.echo("error: interrupted", err=True)
+            return 130
+        except BrokenPipeError:
+            # The reader went away (`treewise show m | head`); say nothing more.
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+            return 1
+    return result if isinstance(result, int) else 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,117 @@
+"""Scoring and sampling at scale: batch by batch into Parquet, in bounded memory, atomically."""
+
+from __future__ import annotations
+
+import itertools
+import os
+import tempfile
+from collections.abc import Iterable, Iterator, Sequence
+from contextlib import contextmanager
+from pathlib import Path
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from treewise.errors import DataError, SchemaError
+
+if TYPE_CHECKING:
+    from treewise.estimator import Scored
+
+__all__ = ["TopRows", "atomic_parquet", "write_scores"]
+
+
+@contextmanager
+def atomic_parquet(path: str | os.PathLike[str], schema: pa.Schema) -> Iterator[pq.ParquetWriter]:
+    """A Parquet writer on a temporary file beside ``path``, renamed to ``path`` on success.
+
+    On any error (or Ctrl-C) the temporary file is removed and ``path`` is left as it was.
+    """
+    target = Path(path)
+    if target.is_dir():
+        raise IsADirectoryError(f"{target} is a directory; give a file name for the output")
+    directory = target.parent if str(target.parent) else Path(".")
+    if not directory.is_dir():
+        raise FileNotFoundError(f"the directory {directory} does not exist; create it first")
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
+    os.close(fd)
+    writer = None
+    try:
+        writer = pq.ParquetWriter(tmp, schema)
+        yield writer
+        writer.close()
+        writer = None
+        os.replace(tmp, target)
+    finally:
+        if writer is not None:
+            writer.close()
+        Path(tmp).unlink(missing_ok=True)
+
+
+class TopRows:
+    """The ``k`` lowest-scoring rows seen so far, kept in a small table (bounded memory)."""
+
+    def __init__(self, k: int) -> None:
+        self.k = k
+        self.table: pa.Table | None = None
+
+    def offer(self, rows: pa.Table, scores: np.ndarray[Any, Any]) -> None:
+        """Consider a batch's rows (with a ``score`` column already in ``rows``)."""
+        if self.k <= 0 or rows.num_rows == 0:
+            return
+        if rows.num_rows > self.k:
+            # Only a batch's own k lowest can reach the overall k lowest.
+            keep = np.argpartition(scores, self.k - 1)[: self.k]
+            rows = rows.take(np.sort(keep))
+        merged = rows if self.table is None else pa.concat_tables([self.table, rows])
+        order = np.lexsort((merged["row"].to_numpy(), merged["score"].to_numpy()))
+        self.table = merged.take(order[: self.k])
+
+
+def write_scores(
+    scored: Iterable[Scored],
+    path: str | os.PathLike[str],
+    names: Sequence[str],
+    keys: Sequence[str],
+    surprisal: bool,
+    top: int,
+) -> pa.Table:
+    """Write scores batch by batch to Parquet; return the ``top`` most surprising rows.
+
+    The file holds the key columns, ``score`` (ln p(row) in nats) and, with ``surprisal``, one
+    ``surprisal_<column>`` per modelled column. The returned table holds ``row`` (the row's
+    position in the source), the keys, ``score`` and each column's surprisal under the column's
+    own name.
+    """
+    clash = [k for k in keys if k == "score" or k.startswith("surprisal_") or k == "row"]
+    if clash:
+        raise SchemaError(f"key columns may not be named {clash}; rename them in the data")
+
+    def output(item: Scored) -> pa.Table:
+        columns: dict[str, Any] = {k: item.batch.column(k) for k in keys}
+        columns["score"] = pa.array(item.total)
+        if surprisal:
+            for name, values in zip(names, item.surprisal or [], strict=True):
+                columns[f"surprisal_{name}"] = pa.array(values)
+        return pa.table(columns)
+
+    iterator = iter(scored)
+    first = next(iterator, None)
+    if first is None:
+        raise DataError("the data to score has 0 rows; there is nothing to write")
+    best = TopRows(top)
+    offset = 0
+    with atomic_parquet(path, output(first).schema) as writer:
+        for item in itertools.chain([first], iterator):
+            n = len(item.total)
+            writer.write_table(output(item))
+            if top > 0:
+                rows: dict[str, Any] = {"row": pa.array(np.arange(offset, offset + n))}
+                rows.update({k: item.batch.column(k) for k in keys})
+                rows["score"] = pa.array(item.total)
+                for name, values in zip(names, item.surprisal or [], strict=True):
+                    rows[name] = pa.array(values)
+                best.offer(pa.table(rows), item.total)
+            offset += n
+    return best.table if best.table is not None else pa.table({"row": pa.array([], pa.int64())})
