@@ -68,7 +68,41 @@ enum Lookup {
     Bool([u16; 2]),
     Int(FxHashMap<i64, u16>),
     UInt(FxHashMap<u64, u16>),
+    /// Integers in a short range: direct indexing instead of hashing.
+    Dense(Dense),
     Str(FxHashMap<Box<str>, u16>),
+}
+
+/// The widest range of integers that gets a direct-index table.
+const DENSE_SPAN: i128 = 1 << 16;
+
+/// Codes of integers in a short range, by direct indexing (values outside map to UNSEEN).
+#[derive(Clone, Debug)]
+struct Dense {
+    base: i128,
+    codes: Vec<u16>,
+}
+
+impl Dense {
+    fn build(values: &[i128]) -> Option<Dense> {
+        let (&low, &high) = (values.iter().min()?, values.iter().max()?);
+        if high - low >= DENSE_SPAN {
+            return None;
+        }
+        let mut codes = vec![UNSEEN; usize::try_from(high - low + 1).ok()?];
+        for (k, v) in values.iter().enumerate() {
+            codes[usize::try_from(v - low).ok()?] = as_code(k);
+        }
+        Some(Dense { base: low, codes })
+    }
+
+    #[inline]
+    fn get(&self, x: i128) -> u16 {
+        usize::try_from(x - self.base)
+            .ok()
+            .and_then(|i| self.codes.get(i).copied())
+            .unwrap_or(UNSEEN)
+    }
 }
 
 /// One column's encoding.
@@ -135,18 +169,28 @@ impl ColumnCode {
                 }
                 Lookup::Bool(codes)
             }
-            Values::Int(v) => Lookup::Int(
-                v.iter()
-                    .enumerate()
-                    .map(|(k, x)| (*x, as_code(k)))
-                    .collect(),
-            ),
-            Values::UInt(v) => Lookup::UInt(
-                v.iter()
-                    .enumerate()
-                    .map(|(k, x)| (*x, as_code(k)))
-                    .collect(),
-            ),
+            Values::Int(v) => {
+                match Dense::build(&v.iter().map(|x| i128::from(*x)).collect::<Vec<_>>()) {
+                    Some(dense) => Lookup::Dense(dense),
+                    None => Lookup::Int(
+                        v.iter()
+                            .enumerate()
+                            .map(|(k, x)| (*x, as_code(k)))
+                            .collect(),
+                    ),
+                }
+            }
+            Values::UInt(v) => {
+                match Dense::build(&v.iter().map(|x| i128::from(*x)).collect::<Vec<_>>()) {
+                    Some(dense) => Lookup::Dense(dense),
+                    None => Lookup::UInt(
+                        v.iter()
+                            .enumerate()
+                            .map(|(k, x)| (*x, as_code(k)))
+                            .collect(),
+                    ),
+                }
+            }
             Values::Str(v) => Lookup::Str(
                 v.iter()
                     .enumerate()
@@ -272,6 +316,13 @@ impl ColumnCode {
             Lookup::UInt(map) => each_u64(array, |v| {
                 out.push(v.map_or(null, |x| self.value_code(map.get(&x).copied())))
             }),
+            Lookup::Dense(dense) => {
+                let code = |x: i128| self.value_code(Some(dense.get(x)).filter(|c| *c != UNSEEN));
+                match self.values.kind() {
+                    Kind::UInt => each_u64(array, |v| out.push(v.map_or(null, |x| code(x.into())))),
+                    _ => each_i64(array, |v| out.push(v.map_or(null, |x| code(x.into())))),
+                }
+            }
             Lookup::Str(map) => each_str(array, |v| {
                 out.push(v.map_or(null, |x| self.value_code(map.get(x).copied())))
             }),
@@ -492,6 +543,7 @@ impl ColumnTally {
                 self.add(dict_values, &|i| weights[i])?
                     .map(|(at, x)| (keys.iter().position(|k| *k == Some(at)).unwrap_or(at), x))
             }
+            None if self.add_dense(array)? => None,
             None => self.add(array, &|_| 1)?,
         };
         match infinite {
@@ -502,6 +554,60 @@ impl ColumnTally {
             ))),
             None => Ok(()),
         }
+    }
+
+    /// Tallies a plain integer array whose values span a short range with a direct count per
+    /// value instead of a hash per row. Returns false (having done nothing) otherwise.
+    fn add_dense(&mut self, array: &dyn Array) -> Result<bool> {
+        let unsigned = match self.tally {
+            Tally::Int(_) => false,
+            Tally::UInt(_) => true,
+            _ => return Ok(false),
+        };
+        let walk = |f: &mut dyn FnMut(Option<i128>)| -> Result<()> {
+            if unsigned {
+                each_u64(array, |v| f(v.map(i128::from)))
+            } else {
+                each_i64(array, |v| f(v.map(i128::from)))
+            }
+        };
+        let (mut low, mut high) = (i128::MAX, i128::MIN);
+        walk(&mut |v| {
+            if let Some(x) = v {
+                low = low.min(x);
+                high = high.max(x);
+            }
+        })?;
+        if low > high || high - low >= DENSE_SPAN {
+            return Ok(false);
+        }
+        let mut counts = vec![0u64; usize::try_from(high - low + 1).unwrap_or(0)];
+        let mut nulls = 0u64;
+        walk(&mut |v| match v {
+            Some(x) => {
+                if let Some(c) = usize::try_from(x - low)
+                    .ok()
+                    .and_then(|i| counts.get_mut(i))
+                {
+                    *c += 1;
+                }
+            }
+            None => nulls += 1,
+        })?;
+        self.nulls += nulls;
+        let seen = counts.iter().enumerate().filter(|(_, c)| **c > 0);
+        match &mut self.tally {
+            Tally::Int(map) => seen.for_each(|(i, c)| {
+                let x = i64::try_from(low + i as i128).unwrap_or_default();
+                *map.entry(x).or_default() += c;
+            }),
+            Tally::UInt(map) => seen.for_each(|(i, c)| {
+                let x = u64::try_from(low + i as i128).unwrap_or_default();
+                *map.entry(x).or_default() += c;
+            }),
+            _ => {}
+        }
+        Ok(true)
     }
 
     /// Adds each row of `array` with the weight `weight(row)`; rows of weight 0 are not values seen.
