@@ -59,7 +59,13 @@ SAMPLE_BLOCK: int
 class TreeModel:
     @staticmethod
     def fit(
-        codebook: Codebook, stats: PairStats, dtypes: list[str], root: int, alpha: float
+        codebook: Codebook,
+        stats: PairStats,
+        dtypes: list[str],
+        root: int,
+        alpha: float,
+        prune: str = "none",
+        level: float = 0.0,
     ) -> TreeModel: ...
     @staticmethod
     def from_bytes(data: bytes) -> TreeModel: ...

@@ -16,7 +16,13 @@ from typing import Any
 
 from treewise import _core
 from treewise.errors import CategoryCapWarning, DataError
-from treewise.estimator import MAX_CATEGORIES, DependencyTree, _check_alpha, _check_int
+from treewise.estimator import (
+    MAX_CATEGORIES,
+    DependencyTree,
+    _check_alpha,
+    _check_int,
+    _check_prune,
+)
 from treewise.pairstats import PairStats
 from treewise.sources import BATCH_ROWS, check_columns, expand_paths, open_source
 
@@ -99,6 +105,7 @@ def fit_dask(
     n_bins: int = 10,
     root: str | None = None,
     alpha: float = 0.5,
+    prune: str | float | None = None,
     split_every: int = 8,
 ) -> DependencyTree:
     """Fit a dependency tree on Dask: the same model as ``DependencyTree.fit`` on the same rows.
@@ -109,7 +116,7 @@ def fit_dask(
         A Dask DataFrame (one task per partition), or Parquet/CSV/Arrow files, a directory or a
         glob (one task per file; workers read the files themselves, so the paths must be
         reachable from every worker).
-    columns, max_categories, n_bins, root, alpha
+    columns, max_categories, n_bins, root, alpha, prune
         As for :class:`DependencyTree`.
     split_every : int
         How many partial results each reduction task adds up.
@@ -136,8 +143,14 @@ def fit_dask(
         raise DataError("the Dask data has no partitions")
     names = check_columns(available, columns, "the Dask data")
     estimator = DependencyTree(
-        columns=names, max_categories=max_categories, n_bins=n_bins, root=root, alpha=alpha
+        columns=names,
+        max_categories=max_categories,
+        n_bins=n_bins,
+        root=root,
+        alpha=alpha,
+        prune=prune,
     )
+    kind, level = _check_prune(prune)
     root_index = estimator._root_index(names)
 
     tallies = [delayed(_tally, pure=True)(p, names) for p in parts]
@@ -154,7 +167,9 @@ def fit_dask(
     counts = [delayed(_count, pure=True)(p, names, encoded) for p in parts]
     (merged,) = compute(_tree_reduce(counts, _merge_stats, split_every))
     stats = PairStats.from_bytes(merged)
-    model = _core.TreeModel.fit(stats.codebook, stats._stats, stats.dtypes, root_index, alpha)
+    model = _core.TreeModel.fit(
+        stats.codebook, stats._stats, stats.dtypes, root_index, alpha, kind, level
+    )
     estimator._set_model(model)
     estimator._stats = stats._stats
     return estimator

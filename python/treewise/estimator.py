@@ -90,6 +90,11 @@ class DependencyTree:
         (n_a + alpha * r_x). ``alpha=0`` is the maximum-likelihood estimate; the default 0.5 is
         the Jeffreys pseudo-count (common practice). The counts are kept, so changing ``alpha``
         with ``set_params`` needs no refit.
+    prune : {None, "bic"} or float, default None
+        Keep only the dependencies that pay, turning the tree into a forest. ``"bic"`` keeps an
+        edge while its G statistic exceeds dof·ln N (adding it lowers the BIC); a float in
+        (0, 1) keeps it while the G-test rejects independence at that significance level.
+        Kruskal's algorithm then runs over the edges that pass. None keeps the whole tree.
 
     Attributes
     ----------
@@ -126,16 +131,18 @@ class DependencyTree:
         n_bins: int = 10,
         root: str | None = None,
         alpha: float = 0.5,
+        prune: str | float | None = None,
     ) -> None:
         self.columns = columns
         self.max_categories = max_categories
         self.n_bins = n_bins
         self.root = root
         self.alpha = alpha
+        self.prune = prune
 
     # -- scikit-learn parameter protocol ---------------------------------------------------------
 
-    _PARAMS = ("columns", "max_categories", "n_bins", "root", "alpha")
+    _PARAMS = ("columns", "max_categories", "n_bins", "root", "alpha", "prune")
 
     def get_params(self, deep: bool = True) -> dict[str, Any]:
         """Return the constructor parameters."""
@@ -249,7 +256,10 @@ class DependencyTree:
             raise DataError(
                 f"{source.description} has 0 rows; a dependency tree needs at least one"
             )
-        self._set_model(_core.TreeModel.fit(chosen, stats, types.type_names(), root, alpha))
+        kind, level = _check_prune(self.prune)
+        self._set_model(
+            _core.TreeModel.fit(chosen, stats, types.type_names(), root, alpha, kind, level)
+        )
         self._stats = stats
         return self
 
@@ -286,21 +296,30 @@ class DependencyTree:
                 bar,
                 types,
             )
+        kind, level = _check_prune(self.prune)
         self._set_model(
-            _core.TreeModel.fit(model.codebook, self._stats, model.dtypes, model.root, model.alpha)
+            _core.TreeModel.fit(
+                model.codebook, self._stats, model.dtypes, model.root, model.alpha, kind, level
+            )
         )
         return self
 
     @classmethod
     def from_stats(
-        cls, stats: PairStats, *, root: str | None = None, alpha: float = 0.5
+        cls,
+        stats: PairStats,
+        *,
+        root: str | None = None,
+        alpha: float = 0.5,
+        prune: str | float | None = None,
     ) -> DependencyTree:
         """Build a fitted model from pair statistics (for example merged from many workers)."""
-        estimator = cls(columns=list(stats.columns), root=root, alpha=alpha)
+        estimator = cls(columns=list(stats.columns), root=root, alpha=alpha, prune=prune)
         names = list(stats.columns)
         index = estimator._root_index(names)
+        kind, level = _check_prune(prune)
         model = _core.TreeModel.fit(
-            stats.codebook, stats._stats, stats.dtypes, index, _check_alpha(alpha)
+            stats.codebook, stats._stats, stats.dtypes, index, _check_alpha(alpha), kind, level
         )
         estimator._set_model(model)
         estimator._stats = stats._stats.copy()
@@ -665,6 +684,20 @@ def _as_codebook(codebook: object) -> _core.Codebook | None:
     raise TypeError(
         f"codebook= takes a treewise.Codebook or a fitted DependencyTree, got {codebook!r}"
     )
+
+
+def _check_prune(prune: object) -> tuple[str, float]:
+    """The core's (kind, level) for a ``prune`` parameter."""
+    if prune is None:
+        return "none", 0.0
+    if prune == "bic":
+        return "bic", 0.0
+    if isinstance(prune, numbers.Real) and not isinstance(prune, bool):
+        level = float(prune)
+        if 0.0 < level < 1.0:
+            return "level", level
+        raise ValueError(f"a pruning significance level must be between 0 and 1, got {prune}")
+    raise ValueError(f"prune must be None, 'bic' or a significance level in (0, 1); got {prune!r}")
 
 
 def _is_default(value: object, default: object) -> bool:

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 from collections import Counter
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 
 import numpy as np
@@ -175,10 +175,13 @@ def mutual_information(table: IntArray) -> tuple[float, float, int]:
     return mi, (2.0 * n) * mi, dof
 
 
-def spanning_tree(mi: FloatArray) -> list[tuple[int, int]]:
+def spanning_tree(
+    mi: FloatArray, keep: Callable[[int, int], bool] | None = None
+) -> list[tuple[int, int]]:
     """Kruskal's maximum spanning tree: edges ``(i, j)``, ``i < j``, in the order they were kept.
 
-    Candidates go by MI descending (exact float comparison), then ``i``, then ``j``.
+    Candidates go by MI descending (exact float comparison), then ``i``, then ``j``. With
+    ``keep``, only the candidates it accepts may join (pruning: the result is then a forest).
     """
     d = mi.shape[0]
     pairs = sorted(
@@ -197,7 +200,7 @@ def spanning_tree(mi: FloatArray) -> list[tuple[int, int]]:
         if len(chosen) == d - 1:
             break
         ri, rj = find(i), find(j)
-        if ri != rj:
+        if ri != rj and (keep is None or keep(i, j)):
             leader[max(ri, rj)] = min(ri, rj)
             chosen.append((i, j))
     return chosen
@@ -262,6 +265,7 @@ def fit(
     max_categories: int = 128,
     n_bins: int = 10,
     root: str | None = None,
+    prune: str | None = None,
 ) -> ReferenceTree:
     """Fit a Chow-Liu dependency tree to columns of equal length.
 
@@ -273,6 +277,8 @@ def fit(
         Passed to :func:`encode_column`.
     root : str, optional
         Name of the root column; the first column by default.
+    prune : {None, "bic"}
+        With ``"bic"``, an edge may join only while G > dof · ln N.
 
     Returns
     -------
@@ -306,7 +312,13 @@ def fit(
             tables[i, j] = pair_table(codes[i], codes[j], cards[i], cards[j])
             mi[i, j], g[i, j], dof[i, j] = mutual_information(tables[i, j])
             mi[j, i], g[j, i], dof[j, i] = mi[i, j], g[i, j], dof[i, j]
-    parent, order = orient(d, spanning_tree(mi), 0 if root is None else names.index(root))
+    if prune not in (None, "bic"):
+        raise ValueError(f"the reference prunes only with 'bic', got {prune!r}")
+
+    def pays(i: int, j: int) -> bool:
+        return prune is None or bool(g[i, j] > dof[i, j] * math.log(n_rows))
+
+    parent, order = orient(d, spanning_tree(mi, pays), 0 if root is None else names.index(root))
     return ReferenceTree(
         names=names,
         categories=[cats for _, cats in encoded],

@@ -443,6 +443,7 @@ mod tests {
             &stats,
             0,
             0.5,
+            crate::Prune::None,
         )
     }
 

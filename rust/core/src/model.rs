@@ -626,6 +626,7 @@ mod tests {
             &stats,
             1,
             alpha,
+            crate::Prune::None,
         )
     }
 

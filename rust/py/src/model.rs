@@ -3,7 +3,7 @@
 use pyo3::prelude::*;
 use pyo3::types::PyBytes;
 use treewise_core::model::TreeModel;
-use treewise_core::{io, Error};
+use treewise_core::{io, Error, Prune};
 
 use crate::arrow_import::import_batch;
 use crate::buffers::le_bytes;
@@ -21,8 +21,11 @@ pub struct PyTreeModel {
 
 #[pymethods]
 impl PyTreeModel {
-    /// Fits the Chow–Liu tree of `stats` (counted with `codebook`), oriented from `root`.
+    /// Fits the Chow–Liu tree of `stats` (counted with `codebook`), oriented from `root`;
+    /// `prune` is "none", "bic" or "level" (with `level`, the G-test's significance level).
     #[staticmethod]
+    #[pyo3(signature = (codebook, stats, dtypes, root, alpha, prune="none", level=0.0))]
+    #[allow(clippy::too_many_arguments)]
     fn fit(
         py: Python<'_>,
         codebook: &PyCodebook,
@@ -30,11 +33,23 @@ impl PyTreeModel {
         dtypes: Vec<String>,
         root: usize,
         alpha: f64,
+        prune: &str,
+        level: f64,
     ) -> PyResult<Self> {
+        let prune = match prune {
+            "none" => Prune::None,
+            "bic" => Prune::Bic,
+            "level" => Prune::Level(level),
+            other => {
+                return Err(to_py(Error::Invalid(format!(
+                    "prune must be 'none', 'bic' or 'level', got {other:?}"
+                ))))
+            }
+        };
         let codebook = codebook.inner.clone();
         let stats = &stats.inner;
         let inner = detached(py, move || {
-            treewise_core::fit_model(codebook, dtypes, stats, root, alpha)
+            treewise_core::fit_model(codebook, dtypes, stats, root, alpha, prune)
         })?;
         Ok(PyTreeModel { inner })
     }
