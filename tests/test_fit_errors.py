@@ -323,7 +323,7 @@ def test_not_a_table_is_a_type_error_naming_the_type(data: object, type_name: st
 
 
 def test_a_string_is_a_path_and_a_missing_one_is_named() -> None:
-    with pytest.raises(FileNotFoundError, match="no-such-table.csv"):
+    with pytest.raises(FileNotFoundError, match=r"no-such-table\.csv"):
         DependencyTree().fit("no-such-table.csv")
 
 

@@ -57,7 +57,7 @@ HANDLED_ERRORS: tuple[type[BaseException], ...] = (
 # -- rendering shared by the commands and the demo --------------------------------------------
 
 
-def tree_view(model: treewise.DependencyTree, title: str) -> Tree:
+def tree_view(model: treewise.DependencyTree, name: str) -> Tree:
     """The fitted tree as a rich Tree, indented from the root.
 
     Each node shows the column's name and cardinality (its number of codes, counting the "other"
@@ -68,8 +68,8 @@ def tree_view(model: treewise.DependencyTree, title: str) -> Tree:
     ----------
     model : DependencyTree
         A fitted model.
-    title : str
-        The label of the top node.
+    name : str
+        What to call the model in the top line (its file name).
 
     Returns
     -------
@@ -90,7 +90,7 @@ def tree_view(model: treewise.DependencyTree, title: str) -> Tree:
         link = "root" if is_root else f"MI {model.mutual_info_[node]:.4f}"
         return Text.assemble((names[node], "bold"), f"  {cardinality} categories, {link}")
 
-    top = Tree(Text(title))
+    top = Tree(Text(f"{name}: {len(names)} columns, {model.n_rows_:,} rows (MI in nats)"))
     stack: list[tuple[int, Tree]] = [(root, top) for root in reversed(roots)]
     while stack:
         node, under = stack.pop()
@@ -123,8 +123,8 @@ def explain_rows(top: pa.Table, names: Sequence[str], k: int = 3) -> list[list[t
     Parameters
     ----------
     top : pyarrow.Table
-        Rows as returned by ``DependencyTree.score_to_parquet``: one surprisal column (in nats)
-        per modelled column, named like it.
+        Rows as returned by ``DependencyTree.score_to_parquet``: one ``surprisal_<column>``
+        (in nats) per modelled column.
     names : sequence of str
         The modelled columns.
     k : int, default 3
@@ -137,7 +137,9 @@ def explain_rows(top: pa.Table, names: Sequence[str], k: int = 3) -> list[list[t
     """
     if top.num_rows == 0 or not names:
         return [[] for _ in range(top.num_rows)]
-    matrix = np.column_stack([np.asarray(top[name], dtype=np.float64) for name in names])
+    matrix = np.column_stack(
+        [np.asarray(top[f"surprisal_{name}"], dtype=np.float64) for name in names]
+    )
     order = np.argsort(-matrix, axis=1, kind="stable")[:, :k]
     return [[(names[c], float(matrix[r, c])) for c in order[r]] for r in range(top.num_rows)]
 
@@ -206,7 +208,7 @@ def model_json(model: treewise.DependencyTree) -> dict[str, Any]:
 
 
 def _console() -> Console:
-    return Console(highlight=False, soft_wrap=True)
+    return Console(highlight=False, markup=False, soft_wrap=True)
 
 
 def _source(data: Sequence[str]) -> str | list[str]:
@@ -311,8 +313,6 @@ class _Group(click.Group):
 
 # -- the commands -----------------------------------------------------------------------------
 
-DATA_HELP = "Parquet, CSV or Arrow IPC files, directories of them, or globs."
-
 
 @click.group(
     cls=_Group,
@@ -336,9 +336,9 @@ def cli(debug: bool) -> None:
 @cli.command(
     epilog="""\b
 Example:
-  treewise fit demo-output/sessions -o shop.treewise \\
-      --columns device,browser_family,os_family,hour_bucket,cart_add,purchase
-  treewise fit 'logs/2026-*.parquet' extra.csv -o logs.treewise --bins 20"""
+  treewise fit demo-output/sessions -o shop.treewise --exclude session_id,planted_anomaly
+  treewise fit 'logs/2026-*.parquet' extra.csv -o logs.treewise \\
+      --columns device,os_family,cart_add,purchase --bins 20"""
 )
 @click.argument("data", nargs=-1, required=True)
 @click.option("-o", "--output", required=True, metavar="MODEL", help="Where to save the model.")
@@ -354,6 +354,7 @@ Example:
 @click.option(
     "--max-categories",
     type=click.IntRange(2, 65_535),
+    metavar="N",
     default=128,
     show_default=True,
     help="Most codes per column; the rarest values beyond it share an 'other' code.",
@@ -361,6 +362,7 @@ Example:
 @click.option(
     "--bins",
     type=click.IntRange(1, 65_534),
+    metavar="N",
     default=10,
     show_default=True,
     help="Quantile bins for float columns.",
@@ -368,12 +370,19 @@ Example:
 @click.option(
     "--alpha",
     type=click.FloatRange(min=0.0),
+    metavar="A",
     default=0.5,
     show_default=True,
     help="Smoothing of the conditional tables (0: maximum likelihood).",
 )
-@click.option("--root", help="The column the tree hangs from (default: the first modelled one).")
-@click.option("--batch-rows", type=click.IntRange(min=1), help="Rows per batch read from disk.")
+@click.option(
+    "--root",
+    metavar="COL",
+    help="The column the tree hangs from (default: the first modelled one).",
+)
+@click.option(
+    "--batch-rows", type=click.IntRange(min=1), metavar="N", help="Rows per batch read from disk."
+)
 @click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
 def fit(
     data: tuple[str, ...],
@@ -426,6 +435,7 @@ Example:
 @click.option(
     "--top",
     type=click.IntRange(0, 1_000_000),
+    metavar="K",
     default=10,
     show_default=True,
     help="Show this many of the most surprising rows.",
@@ -474,15 +484,24 @@ Example:
 )
 @click.argument("model_path", metavar="MODEL")
 @click.option(
-    "-n", "--rows", "n_rows", type=click.IntRange(min=0), required=True, help="Rows to draw."
+    "-n",
+    "--rows",
+    "n_rows",
+    type=click.IntRange(min=0),
+    metavar="N",
+    required=True,
+    help="Rows to draw.",
 )
 @click.option("-o", "--output", required=True, metavar="OUT", help="Parquet file to write.")
 @click.option(
     "--seed",
     type=click.IntRange(0, 2**64 - 1),
+    metavar="S",
     help="Random seed; the same seed gives the same rows (default: a fresh one, printed).",
 )
-@click.option("--batch-rows", type=click.IntRange(min=1), help="Rows per batch written.")
+@click.option(
+    "--batch-rows", type=click.IntRange(min=1), metavar="N", help="Rows per batch written."
+)
 @click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
 def sample(
     model_path: str,
@@ -531,8 +550,7 @@ def show(model_path: str, as_json: bool) -> None:
     if as_json:
         click.echo(json.dumps(model_json(model), indent=2, allow_nan=False))
         return
-    title = f"{model_path}: {model.n_features_in_} columns, {model.n_rows_:,} rows, MI in nats"
-    _console().print(tree_view(model, title))
+    _console().print(tree_view(model, model_path))
 
 
 @cli.command(
@@ -544,6 +562,7 @@ Example:
 @click.option(
     "--rows",
     type=click.IntRange(min=1),
+    metavar="N",
     default=2_000_000,
     show_default=True,
     help="Sessions to generate.",
@@ -552,10 +571,18 @@ Example:
     "--dir",
     "directory",
     default="demo-output",
+    metavar="PATH",
     show_default=True,
     help="Where to write the data, the model, the scores and the synthetic rows.",
 )
-@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True)
+@click.option(
+    "--seed",
+    type=click.IntRange(min=0),
+    default=0,
+    show_default=True,
+    metavar="S",
+    help="Seed of the sessions and of the synthetic rows.",
+)
 @click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
 def demo(rows: int, directory: str, seed: int, no_progress: bool) -> None:
     """Run the whole story on an invented shop's sessions.

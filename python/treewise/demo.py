@@ -21,6 +21,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from rich.console import Console
 from rich.table import Table
+from rich.text import Text
 
 import treewise
 from treewise.cli import (
@@ -30,6 +31,7 @@ from treewise.cli import (
     surprising_table,
     tree_view,
 )
+from treewise.cli import main as cli_main
 from treewise.datasets import hidden_edges, model_columns, shop_sessions
 
 __all__ = ["main", "run"]
@@ -50,10 +52,10 @@ KEYS = ("session_id", "planted_anomaly")
 def _step(console: Console, number: int, title: str) -> Iterator[None]:
     """Print a step's title, run it, then print how long it took."""
     console.print()
-    console.rule(f"[bold]{number}. {title}", align="left")
+    console.rule(Text(f"{number}. {title}", style="bold"), align="left")
     start = time.perf_counter()
     yield
-    console.print(f"[dim]({time.perf_counter() - start:.2f} s)[/dim]")
+    console.print(f"({time.perf_counter() - start:.2f} s)", style="dim")
 
 
 def _write_sessions(table: pa.Table, folder: Path) -> list[Path]:
@@ -84,6 +86,19 @@ def _recovered(model: treewise.DependencyTree) -> tuple[int, list[tuple[str, str
     fitted = {frozenset((names[int(p)], names[c])) for c, p in enumerate(model.parent_) if p >= 0}
     missed = [edge for edge in hidden_edges() if frozenset(edge) not in fitted]
     return len(hidden_edges()) - len(missed), missed
+
+
+def _varied(rows: pa.Table, names: list[str]) -> pa.Table:
+    """Up to EXAMPLES of ``rows`` (most surprising first), each led by a different column."""
+    picks: list[int] = []
+    leaders: set[str] = set()
+    for r, reasons in enumerate(explain_rows(rows, names)):
+        if reasons and reasons[0][0] not in leaders:
+            leaders.add(reasons[0][0])
+            picks.append(r)
+            if len(picks) == EXAMPLES:
+                break
+    return rows.take(picks)
 
 
 def _synthetic_table(
@@ -125,8 +140,9 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     progress : bool, optional
         Progress bars: None shows them only when stderr is a terminal.
     """
-    console = Console(highlight=False, soft_wrap=True)
+    console = Console(highlight=False, markup=False, soft_wrap=True)
     begin = time.perf_counter()
+    written: list[Path] = []  # every step adds the files it wrote, for the closing list
     folder = directory / "sessions"
     model_path = directory / "shop.treewise"
     scores_path = directory / "scores.parquet"
@@ -135,11 +151,13 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     with _step(console, 1, f"Generate {rows:,} sessions of an invented shop"):
         table = shop_sessions(n=rows, seed=seed)
         paths = _write_sessions(table, folder)
+        written.append(folder)
         columns = model_columns(table)
+        left_out = [name for name in table.column_names if name not in columns]
         n_planted = int(pc.sum(table["planted_anomaly"].cast(pa.int64())).as_py() or 0)
         console.print(
             f"Wrote {len(paths)} Parquet files to {folder}/: {table.num_columns} columns, "
-            f"{len(columns)} to model ({', '.join(KEYS)} left out), {n_planted:,} planted "
+            f"{len(columns)} to model ({', '.join(left_out)} left out), {n_planted:,} planted "
             "anomalies."
         )
         del table
@@ -147,13 +165,13 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     with _step(console, 2, "Fit a dependency tree to the files, streaming"):
         model = treewise.DependencyTree(columns=columns).fit(folder, progress=progress)
         model.save(model_path)
+        written.append(model_path)
         console.print(
             f"Fitted {model.n_rows_:,} rows x {model.n_features_in_} columns; saved {model_path}."
         )
 
     with _step(console, 3, "The tree"):
-        title = f"{model_path} (mutual information with the parent, in nats)"
-        console.print(tree_view(model, title))
+        console.print(tree_view(model, str(model_path)))
 
     with _step(console, 4, "Compare with the hidden tree the data was drawn from"):
         found, missed = _recovered(model)
@@ -166,15 +184,18 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     with _step(console, 5, "Score every session; do the planted anomalies stand out?"):
         n_top = max(1, math.ceil(model.n_rows_ * TOP_SHARE))
         worst = model.score_to_parquet(folder, scores_path, keys=KEYS, top=n_top, progress=progress)
+        written.append(scores_path)
         caught = worst.filter(worst["planted_anomaly"])
         console.print(
             f"Wrote {scores_path}. Of {n_planted:,} planted anomalies, {caught.num_rows:,} rank "
-            f"among the {worst.num_rows:,} most surprising sessions (the top 1%)."
+            f"among the {worst.num_rows:,} most surprising sessions (the top 1%): "
+            f"{caught.num_rows / worst.num_rows:.1%} of those, against "
+            f"{n_planted / model.n_rows_:.1%} of all sessions."
         )
         if caught.num_rows:
             names = [str(name) for name in model.feature_names_in_]
-            examples = caught.slice(0, EXAMPLES)
-            title = f"The {examples.num_rows} most surprising planted anomalies"
+            examples = _varied(caught, names)
+            title = "Caught planted anomalies, the most surprising one per leading column"
             console.print(surprising_table(examples, names, ["session_id"], title))
             normal = worst.filter(pc.invert(worst["planted_anomaly"]))
             if normal.num_rows:
@@ -189,6 +210,7 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
         model.sample_to_parquet(
             SYNTHETIC_ROWS, synthetic_path, random_state=seed, progress=progress
         )
+        written.append(synthetic_path)
         again = treewise.DependencyTree(columns=list(model.feature_names_in_)).fit(
             synthetic_path, progress=progress
         )
@@ -201,9 +223,9 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
         console.print(SAMPLE_CAUTION)
 
     console.print()
-    console.rule("[bold]Done", align="left")
+    console.rule(Text("Done", style="bold"), align="left")
     console.print(f"In {time.perf_counter() - begin:.1f} s the demo wrote:")
-    for path in (folder, model_path, scores_path, synthetic_path):
+    for path in written:
         console.print(f"  {path}")
     console.print("Try next:")
     console.print(f"  treewise show {model_path}")
@@ -215,8 +237,6 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Run ``treewise demo`` with ``argv`` (default ``sys.argv[1:]``); returns the exit status."""
-    from treewise.cli import main as cli_main
-
     return cli_main(["demo", *(sys.argv[1:] if argv is None else argv)])
 
 

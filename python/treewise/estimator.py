@@ -530,8 +530,9 @@ class DependencyTree:
         Returns
         -------
         pyarrow.Table
-            The ``top`` most surprising rows (lowest score): ``row`` (position in the source),
-            the keys, ``score``, and each column's surprisal under the column's name.
+            The ``top`` most surprising rows (lowest score, ties by position): ``row``
+            (position in the source), the keys, ``score``, and ``surprisal_<column>`` for each
+            modelled column.
         """
         top = _check_int("top", top, 0, 1_000_000)
         keys = list(keys)

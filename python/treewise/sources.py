@@ -309,7 +309,7 @@ def _memory_source(table: pa.Table) -> Source:
     def parts(names: list[str], batch_rows: int) -> Iterator[Part]:
         yield Part("", iter_batches(table.select(names), batch_rows))
 
-    return Source(table.column_names, True, parts, 1, table.num_rows, "in-memory table")
+    return Source(table.column_names, True, parts, 1, table.num_rows, "the data")
 
 
 def _file_source(files: list[Path]) -> Source:
@@ -325,7 +325,7 @@ def _file_source(files: list[Path]) -> Source:
                 continue
             yield Part(str(path), _file_batches(path, fmt, names, batch_rows))
 
-    what = f"{len(files)} file{'s' if len(files) != 1 else ''}"
+    what = f"the data ({len(files)} file{'s' if len(files) != 1 else ''})"
     return Source(first_names, True, parts, len(files), total, what, files)
 
 
@@ -339,7 +339,7 @@ def _dataset_source(dataset: pads.Dataset) -> Source:
     def parts(names: list[str], batch_rows: int) -> Iterator[Part]:
         yield Part("dataset", dataset.to_batches(columns=names, batch_size=batch_rows))
 
-    return Source(list(dataset.schema.names), True, parts, 1, None, "dataset")
+    return Source(list(dataset.schema.names), True, parts, 1, None, "the dataset")
 
 
 def _stream_source(batches: Iterable[Any], names: list[str] | None) -> Source:
@@ -373,7 +373,7 @@ def _stream_source(batches: Iterable[Any], names: list[str] | None) -> Source:
 
         yield Part("stream", read())
 
-    return Source(list(names), False, parts, 1, None, "stream of record batches")
+    return Source(list(names), False, parts, 1, None, "the stream of record batches")
 
 
 def _as_table(item: Any) -> pa.Table:

@@ -61,9 +61,10 @@ class TopRows:
         if self.k <= 0 or rows.num_rows == 0:
             return
         if rows.num_rows > self.k:
-            # Only a batch's own k lowest can reach the overall k lowest.
-            keep = np.argpartition(scores, self.k - 1)[: self.k]
-            rows = rows.take(np.sort(keep))
+            # Only a batch's own k lowest can reach the overall k lowest; keep every row tied
+            # with the k-th lowest, so that ties are decided by row number below.
+            kth = np.partition(scores, self.k - 1)[self.k - 1]
+            rows = rows.take(np.flatnonzero(scores <= kth))
         merged = rows if self.table is None else pa.concat_tables([self.table, rows])
         order = np.lexsort((merged["row"].to_numpy(), merged["score"].to_numpy()))
         self.table = merged.take(order[: self.k])
@@ -81,8 +82,7 @@ def write_scores(
 
     The file holds the key columns, ``score`` (ln p(row) in nats) and, with ``surprisal``, one
     ``surprisal_<column>`` per modelled column. The returned table holds ``row`` (the row's
-    position in the source), the keys, ``score`` and each column's surprisal under the column's
-    own name.
+    position in the source), the keys, ``score`` and ``surprisal_<column>`` for each column.
     """
     clash = [k for k in keys if k == "score" or k.startswith("surprisal_") or k == "row"]
     if clash:
@@ -111,7 +111,7 @@ def write_scores(
                 rows.update({k: item.batch.column(k) for k in keys})
                 rows["score"] = pa.array(item.total)
                 for name, values in zip(names, item.surprisal or [], strict=True):
-                    rows[name] = pa.array(values)
+                    rows[f"surprisal_{name}"] = pa.array(values)
                 best.offer(pa.table(rows), item.total)
             offset += n
     return best.table if best.table is not None else pa.table({"row": pa.array([], pa.int64())})
