@@ -10,12 +10,11 @@ order-free way), so the result is bit-identical to a local fit of the same rows.
 from __future__ import annotations
 
 import os
-import warnings
-from collections.abc import Callable, Sequence
+from collections.abc import Callable
 from typing import Any
 
 from treewise import _core
-from treewise.errors import CategoryCapWarning, DataError
+from treewise.errors import DataError
 from treewise.estimator import (
     MAX_CATEGORIES,
     DependencyTree,
@@ -24,6 +23,7 @@ from treewise.estimator import (
     _check_prune,
 )
 from treewise.pairstats import PairStats
+from treewise.passes import warn_caps
 from treewise.sources import BATCH_ROWS, check_columns, expand_paths, open_source
 
 __all__ = ["fit_dask"]
@@ -97,17 +97,7 @@ def _parts(data: Any) -> tuple[list[Any], list[str]]:
     return list(to_delayed()), [str(c) for c in data.columns]
 
 
-def fit_dask(
-    data: Any,
-    *,
-    columns: Sequence[str] | None = None,
-    max_categories: int = 128,
-    n_bins: int = 10,
-    root: str | None = None,
-    alpha: float = 0.5,
-    prune: str | float | None = None,
-    split_every: int = 8,
-) -> DependencyTree:
+def fit_dask(data: Any, *, split_every: int = 8, **params: Any) -> DependencyTree:
     """Fit a dependency tree on Dask: the same model as ``DependencyTree.fit`` on the same rows.
 
     Parameters
@@ -116,10 +106,11 @@ def fit_dask(
         A Dask DataFrame (one task per partition), or Parquet/CSV/Arrow files, a directory or a
         glob (one task per file; workers read the files themselves, so the paths must be
         reachable from every worker).
-    columns, max_categories, n_bins, root, alpha, prune
-        As for :class:`DependencyTree`.
     split_every : int
         How many partial results each reduction task adds up.
+    **params
+        The parameters of :class:`DependencyTree` (columns, max_categories, n_bins, root,
+        alpha, prune).
 
     Returns
     -------
@@ -134,35 +125,22 @@ def fit_dask(
     from dask.base import compute
     from dask.delayed import delayed
 
-    max_categories = _check_int("max_categories", max_categories, 2, MAX_CATEGORIES)
-    n_bins = _check_int("n_bins", n_bins, 1, MAX_CATEGORIES - 1)
-    alpha = _check_alpha(alpha)
+    estimator = DependencyTree(**params)
+    max_categories = _check_int("max_categories", estimator.max_categories, 2, MAX_CATEGORIES)
+    n_bins = _check_int("n_bins", estimator.n_bins, 1, MAX_CATEGORIES - 1)
+    alpha = _check_alpha(estimator.alpha)
+    kind, level = _check_prune(estimator.prune)
     split_every = _check_int("split_every", split_every, 2, 1024)
     parts, available = _parts(data)
     if not parts:
         raise DataError("the Dask data has no partitions")
-    names = check_columns(available, columns, "the Dask data")
-    estimator = DependencyTree(
-        columns=names,
-        max_categories=max_categories,
-        n_bins=n_bins,
-        root=root,
-        alpha=alpha,
-        prune=prune,
-    )
-    kind, level = _check_prune(prune)
+    names = check_columns(available, estimator.columns, "the Dask data")
     root_index = estimator._root_index(names)
 
     tallies = [delayed(_tally, pure=True)(p, names) for p in parts]
     (tally,) = compute(_tree_reduce(tallies, _merge_tallies, split_every))
     codebook, caps = _core.CodebookBuilder.from_bytes(tally).finish(max_categories, n_bins)
-    for column, n_values, n_rows in caps:
-        warnings.warn(
-            f"column {column!r}: {n_values} rare values in {n_rows} rows share the 'other' code "
-            f"(max_categories={max_categories}); raise max_categories to keep them apart",
-            CategoryCapWarning,
-            stacklevel=2,
-        )
+    warn_caps(caps, max_categories)
     encoded = codebook.to_bytes()
     counts = [delayed(_count, pure=True)(p, names, encoded) for p in parts]
     (merged,) = compute(_tree_reduce(counts, _merge_stats, split_every))

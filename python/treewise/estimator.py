@@ -258,7 +258,7 @@ class DependencyTree:
             )
         kind, level = _check_prune(self.prune)
         self._set_model(
-            _core.TreeModel.fit(chosen, stats, types.type_names(), root, alpha, kind, level)
+            _core.TreeModel.fit(chosen, stats, types.type_names(chosen), root, alpha, kind, level)
         )
         self._stats = stats
         return self
@@ -297,11 +297,13 @@ class DependencyTree:
                 types,
             )
         kind, level = _check_prune(self.prune)
+        stats = self._stats
         self._set_model(
             _core.TreeModel.fit(
-                model.codebook, self._stats, model.dtypes, model.root, model.alpha, kind, level
+                model.codebook, stats, model.dtypes, model.root, model.alpha, kind, level
             )
         )
+        self._stats = stats
         return self
 
     @classmethod

@@ -4,33 +4,42 @@ from __future__ import annotations
 
 import os
 import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
-__all__ = ["read_model_file", "write_atomically"]
+__all__ = ["atomic_path", "read_model_file", "write_atomically"]
 
 
-def write_atomically(path: str | os.PathLike[str], data: bytes) -> None:
-    """Write ``data`` to ``path`` so that ``path`` never holds a partial file.
+@contextmanager
+def atomic_path(path: str | os.PathLike[str]) -> Iterator[Path]:
+    """A temporary file beside ``path`` to write; renamed over ``path`` when the block succeeds.
 
-    The bytes go to a temporary file in the same directory, are flushed to disk, and the file is
-    renamed over ``path`` in one step. On any failure the temporary file is removed.
+    ``path`` therefore never holds a partial file: on any failure (or Ctrl-C) the temporary file
+    is removed and ``path`` keeps whatever it held before.
     """
     target = Path(path)
     if target.is_dir():
-        raise IsADirectoryError(f"{target} is a directory; give a file name to write the model to")
+        raise IsADirectoryError(f"{target} is a directory; give a file name to write to")
     directory = target.parent if str(target.parent) else Path(".")
     if not directory.is_dir():
         raise FileNotFoundError(f"the directory {directory} does not exist; create it first")
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
+    fd, name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
+    os.close(fd)
+    tmp = Path(name)
     try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
+        yield tmp
         os.replace(tmp, target)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def write_atomically(path: str | os.PathLike[str], data: bytes) -> None:
+    """Write ``data`` to ``path`` atomically, flushed to disk before the rename."""
+    with atomic_path(path) as tmp, open(tmp, "wb") as f:
+        f.write(data)
+        f.flush()
+        os.fsync(f.fileno())
 
 
 def read_model_file(path: str | os.PathLike[str]) -> bytes:

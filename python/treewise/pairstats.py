@@ -70,7 +70,7 @@ class PairStats:
     def dtypes(self) -> list[str]:
         """Each column's Arrow type name (``string`` until data has been seen)."""
         if self._dtypes is None:
-            return TypeRecorder(self.columns).type_names()
+            return TypeRecorder(self.columns).type_names(self.codebook)
         return list(self._dtypes)
 
     def update(
@@ -83,7 +83,7 @@ class PairStats:
         with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
             count_pairs(source, names, self.codebook, self._stats, batch_rows, bar, types)
         if self._dtypes is None and types.types:
-            self._dtypes = types.type_names()
+            self._dtypes = types.type_names(self.codebook)
         return self
 
     def __add__(self, other: object) -> PairStats:

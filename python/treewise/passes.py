@@ -17,7 +17,17 @@ from treewise.errors import CategoryCapWarning, SchemaError
 from treewise.progress import PassProgress
 from treewise.sources import Source, located, open_source
 
-__all__ = ["TypeRecorder", "count_pairs", "learn_codebook"]
+__all__ = ["TypeRecorder", "count_pairs", "learn_codebook", "warn_caps"]
+
+
+#: The output type of a column whose data never showed a typed batch, by codebook family.
+FAMILY_TYPES = {
+    "bool": "bool",
+    "int": "int64",
+    "uint": "uint64",
+    "str": "string",
+    "float": "float64",
+}
 
 
 class TypeRecorder:
@@ -35,12 +45,24 @@ class TypeRecorder:
             if field.name not in self.types and not pa.types.is_null(field.type):
                 self.types[field.name] = field.type
 
-    def type_names(self) -> list[str]:
-        """Our stored name of each column's type (string for a column never seen with values)."""
-        return [type_name(self.types.get(n, pa.string())) for n in self.names]
+    def type_names(self, codebook: _core.Codebook | None = None) -> list[str]:
+        """Our stored name of each column's type.
+
+        A column never seen with values gets the plain type of its codebook family (bool,
+        int64, uint64, string or float64).
+        """
+        names = []
+        for i, n in enumerate(self.names):
+            if n in self.types:
+                names.append(type_name(self.types[n]))
+            else:
+                family = "str" if codebook is None else codebook.column(i)[0]
+                names.append(FAMILY_TYPES[family])
+        return names
 
 
-def _warn_caps(caps: list[tuple[str, int, int]], max_categories: int) -> None:
+def warn_caps(caps: list[tuple[str, int, int]], max_categories: int) -> None:
+    """One CategoryCapWarning per column whose rare values went to the 'other' code."""
     for column, n_values, n_rows in caps:
         warnings.warn(
             f"column {column!r}: {n_values} rare values in {n_rows} rows share the 'other' "
@@ -89,7 +111,7 @@ def learn_codebook(
             writer.close()
             writer = None
         codebook, caps = builder.finish(max_categories, n_bins)
-        _warn_caps(caps, max_categories)
+        warn_caps(caps, max_categories)
         yield codebook, (source if spool is None else open_source(spool))
     finally:
         if writer is not None:
@@ -98,14 +120,24 @@ def learn_codebook(
             spool.unlink(missing_ok=True)
 
 
+def _plain(dtype: pa.DataType) -> pa.DataType:
+    return dtype.value_type if pa.types.is_dictionary(dtype) else dtype
+
+
 class _Spool:
     """A temporary Arrow IPC file that a one-shot stream is copied to, batch by batch."""
 
     def __init__(self, path: Path, schema: pa.Schema) -> None:
-        self.schema = schema
-        self.writer = pa.ipc.new_file(str(path), schema)
+        self.schema = pa.schema([f.with_type(_plain(f.type)) for f in schema])
+        self.writer = pa.ipc.new_file(str(path), self.schema)
 
     def write(self, batch: pa.RecordBatch) -> None:
+        # An IPC file allows one dictionary per column, but each batch of a stream may carry
+        # its own: spool plain values instead (the codebook is learned from values anyway).
+        batch = pa.RecordBatch.from_arrays(
+            [c.dictionary_decode() if pa.types.is_dictionary(c.type) else c for c in batch.columns],
+            names=batch.schema.names,
+        )
         if batch.schema != self.schema:
             try:
                 batch = batch.cast(self.schema)

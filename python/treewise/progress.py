@@ -6,6 +6,7 @@ import sys
 from types import TracebackType
 from typing import Any
 
+from rich.console import Console
 from rich.progress import (
     BarColumn,
     Progress,
@@ -49,6 +50,7 @@ class PassProgress:
                 TextColumn("files {task.fields[parts]}"),
                 TimeElapsedColumn(),
                 TimeRemainingColumn(),
+                console=Console(stderr=True),
                 transient=False,
                 redirect_stdout=False,
                 redirect_stderr=False,

@@ -4,10 +4,8 @@ from __future__ import annotations
 
 import itertools
 import os
-import tempfile
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
-from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -15,6 +13,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from treewise.errors import DataError, SchemaError
+from treewise.files import atomic_path
 
 if TYPE_CHECKING:
     from treewise.estimator import Scored
@@ -24,29 +23,13 @@ __all__ = ["TopRows", "atomic_parquet", "write_scores"]
 
 @contextmanager
 def atomic_parquet(path: str | os.PathLike[str], schema: pa.Schema) -> Iterator[pq.ParquetWriter]:
-    """A Parquet writer on a temporary file beside ``path``, renamed to ``path`` on success.
-
-    On any error (or Ctrl-C) the temporary file is removed and ``path`` is left as it was.
-    """
-    target = Path(path)
-    if target.is_dir():
-        raise IsADirectoryError(f"{target} is a directory; give a file name for the output")
-    directory = target.parent if str(target.parent) else Path(".")
-    if not directory.is_dir():
-        raise FileNotFoundError(f"the directory {directory} does not exist; create it first")
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
-    os.close(fd)
-    writer = None
-    try:
-        writer = pq.ParquetWriter(tmp, schema)
-        yield writer
-        writer.close()
-        writer = None
-        os.replace(tmp, target)
-    finally:
-        if writer is not None:
+    """A Parquet writer whose file appears under ``path`` only once it is complete."""
+    with atomic_path(path) as tmp:
+        writer = pq.ParquetWriter(str(tmp), schema)
+        try:
+            yield writer
+        finally:
             writer.close()
-        Path(tmp).unlink(missing_ok=True)
 
 
 class TopRows:
@@ -102,10 +85,21 @@ def write_scores(
         raise DataError("the data to score has 0 rows; there is nothing to write")
     best = TopRows(top)
     offset = 0
-    with atomic_parquet(path, output(first).schema) as writer:
+    schema = output(first).schema
+    with atomic_parquet(path, schema) as writer:
         for item in itertools.chain([first], iterator):
             n = len(item.total)
-            writer.write_table(output(item))
+            table = output(item)
+            if table.schema != schema:
+                # Keys may drift in width between files (int32, int64): write the first type.
+                try:
+                    table = table.cast(schema)
+                except (pa.ArrowInvalid, pa.ArrowNotImplementedError, ValueError) as e:
+                    raise SchemaError(
+                        f"the key columns changed type between parts of the data "
+                        f"({schema} then {table.schema}); give them one type everywhere"
+                    ) from e
+            writer.write_table(table)
             if top > 0:
                 rows: dict[str, Any] = {"row": pa.array(np.arange(offset, offset + n))}
                 rows.update({k: item.batch.column(k) for k in keys})
