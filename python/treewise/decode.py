@@ -75,3 +75,63 @@ def decode_column(
     if pa.types.is_dictionary(dtype):
         return pa.DictionaryArray.from_arrays(indices, dictionary).cast(dtype)
     return dictionary.take(indices)
+
+
+#: The plain output type of each value family.
+FAMILY_TYPES = {
+    "bool": "bool",
+    "int": "int64",
+    "uint": "uint64",
+    "str": "string",
+    "float": "float64",
+}
+_RANGES = {
+    f"{s}int{b}": r
+    for b in (8, 16, 32, 64)
+    for s, r in (
+        ("", (-(2 ** (b - 1)), 2 ** (b - 1) - 1)),
+        ("u", (0, 2**b - 1)),
+    )
+}
+
+
+def _value_name(name: str) -> str:
+    if name.startswith("dictionary<") and name.endswith(">"):
+        return name[len("dictionary<") : -1].partition(",")[2]
+    return name
+
+
+def family(name: str) -> str:
+    """The value family (bool, int, uint, str, float) of a stored type name."""
+    value = _value_name(name)
+    if value.startswith("uint"):
+        return "uint"
+    if value.startswith("int"):
+        return "int"
+    if value.startswith("float"):
+        return "float"
+    return "bool" if value == "bool" else "str"
+
+
+def widen(first: str, second: str) -> str:
+    """One type name for a column seen with two types of one family (e.g. int8 and int64)."""
+    return first if first == second else FAMILY_TYPES[family(first)]
+
+
+def fitting_type(name: str, categories: list[Any]) -> str:
+    """The type name to store for a column: ``name`` if it can hold every kept value.
+
+    Otherwise the family's plain type: a column first seen as int8 may hold 300 by the end of
+    the data, and a dictionary's index type may be too narrow for all the categories.
+    """
+    values = [c for c in categories if c is not OTHER and c is not None and not isinstance(c, Bin)]
+    plain = _value_name(name)
+    if plain in _RANGES and values:
+        low, high = _RANGES[plain]
+        if min(values) < low or max(values) > high:
+            return FAMILY_TYPES[family(name)]
+    if name != plain:
+        index = name[len("dictionary<") :].partition(",")[0]
+        if index not in _RANGES or len(categories) - 1 > _RANGES[index][1]:
+            return FAMILY_TYPES[family(name)]
+    return name

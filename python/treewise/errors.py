@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import warnings
+
 __all__ = [
     "CategoryCapWarning",
     "CorruptModelError",
@@ -12,6 +14,7 @@ __all__ = [
     "TooManyCategoriesError",
     "TreewiseError",
     "UnseenCategoryWarning",
+    "warn",
 ]
 
 
@@ -49,3 +52,21 @@ class NotFittedError(TreewiseError, ValueError, AttributeError):
 
 class UnseenCategoryWarning(UserWarning):
     """Scored data held values (or nulls) that the model never saw in fitting."""
+
+
+def warn(message: str, category: type[Warning]) -> None:
+    """Issue a warning attributed to the user's line.
+
+    That is the first frame outside treewise (and outside the standard library's contextlib,
+    which treewise's passes run inside).
+    """
+    import contextlib
+    import sys
+    from pathlib import Path
+
+    skip = (str(Path(__file__).resolve().parent), str(Path(contextlib.__file__).resolve()))
+    level, frame = 2, sys._getframe(1)  # stacklevel 2 is the caller of this function
+    while frame is not None and str(Path(frame.f_code.co_filename).resolve()).startswith(skip):
+        level += 1
+        frame = frame.f_back  # type: ignore[assignment]
+    warnings.warn(message, category, stacklevel=level)

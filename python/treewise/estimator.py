@@ -5,7 +5,6 @@ from __future__ import annotations
 import math
 import numbers
 import os
-import warnings
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -22,6 +21,7 @@ from treewise.errors import (
     NotFittedError,
     SchemaError,
     UnseenCategoryWarning,
+    warn,
 )
 from treewise.files import read_model_file, write_atomically
 from treewise.pairstats import PairStats
@@ -465,11 +465,10 @@ class DependencyTree:
                 bar.part_done()
         if unseen.any():
             report = ", ".join(f"{names[c]!r}: {k}" for c, k in enumerate(unseen) if k)
-            warnings.warn(
+            warn(
                 f"values never seen in fitting (scored with the smoothing mass, alpha="
                 f"{self.alpha}): {report}",
                 UnseenCategoryWarning,
-                stacklevel=3,
             )
 
     def score_samples(self, data: Any) -> npt.NDArray[np.float64]:

@@ -10,6 +10,7 @@ import numpy as np
 import numpy.typing as npt
 
 from treewise import _core
+from treewise.decode import widen
 from treewise.errors import SchemaError
 from treewise.files import read_model_file, write_atomically
 from treewise.passes import TypeRecorder, count_pairs
@@ -82,8 +83,13 @@ class PairStats:
         types = TypeRecorder(names)
         with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
             count_pairs(source, names, self.codebook, self._stats, batch_rows, bar, types)
-        if self._dtypes is None and types.types:
-            self._dtypes = types.type_names(self.codebook)
+        if types.types:
+            seen = types.type_names(self.codebook)
+            self._dtypes = (
+                seen
+                if self._dtypes is None
+                else [widen(a, b) for a, b in zip(self._dtypes, seen, strict=True)]
+            )
         return self
 
     def __add__(self, other: object) -> PairStats:
@@ -94,7 +100,11 @@ class PairStats:
                 "cannot add PairStats counted with different codebooks; count both with the "
                 "same codebook (for example a fitted model's codebook_)"
             )
-        total = PairStats(self.codebook, self._dtypes or other._dtypes)
+        if self._dtypes is None or other._dtypes is None:
+            dtypes = self._dtypes or other._dtypes
+        else:
+            dtypes = [widen(a, b) for a, b in zip(self._dtypes, other._dtypes, strict=True)]
+        total = PairStats(self.codebook, dtypes)
         total._stats = self._stats.copy()
         total._stats.merge(other._stats)
         return total

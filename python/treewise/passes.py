@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import os
 import tempfile
-import warnings
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -12,63 +11,62 @@ from pathlib import Path
 import pyarrow as pa
 
 from treewise import _core
-from treewise.decode import type_name
-from treewise.errors import CategoryCapWarning, SchemaError
+from treewise.decode import FAMILY_TYPES, fitting_type, type_name, widen
+from treewise.errors import CategoryCapWarning, warn
 from treewise.progress import PassProgress
 from treewise.sources import Source, located, open_source
 
 __all__ = ["TypeRecorder", "count_pairs", "learn_codebook", "warn_caps"]
 
 
-#: The output type of a column whose data never showed a typed batch, by codebook family.
-FAMILY_TYPES = {
-    "bool": "bool",
-    "int": "int64",
-    "uint": "uint64",
-    "str": "string",
-    "float": "float64",
-}
-
-
 class TypeRecorder:
-    """Each column's Arrow type as first seen with values (a null-typed batch says nothing)."""
+    """Each column's Arrow type as seen with values (a null-typed batch says nothing).
+
+    Two widths of one family (int8 in one file, int64 in another) become the family's plain
+    type.
+    """
 
     def __init__(self, names: list[str]) -> None:
         self.names = names
-        self.types: dict[str, pa.DataType] = {}
+        self.types: dict[str, str] = {}
 
     def see(self, batch: pa.RecordBatch) -> None:
-        """Record the types of a batch's columns that have none yet."""
-        if len(self.types) == len(self.names):
-            return
+        """Record the types of a batch's columns."""
         for field in batch.schema:
-            if field.name not in self.types and not pa.types.is_null(field.type):
-                self.types[field.name] = field.type
+            if pa.types.is_null(field.type):
+                continue
+            name = type_name(field.type)
+            seen = self.types.get(field.name)
+            self.types[field.name] = name if seen is None else widen(seen, name)
 
     def type_names(self, codebook: _core.Codebook | None = None) -> list[str]:
-        """Our stored name of each column's type.
+        """Our stored name of each column's type, able to hold every code of ``codebook``.
 
         A column never seen with values gets the plain type of its codebook family (bool,
         int64, uint64, string or float64).
         """
         names = []
         for i, n in enumerate(self.names):
-            if n in self.types:
-                names.append(type_name(self.types[n]))
+            kind, values, has_other, has_null = (
+                ("str", [], False, False) if codebook is None else codebook.column(i)
+            )
+            if n not in self.types:
+                names.append(FAMILY_TYPES[kind])
+            elif codebook is None or kind == "float":
+                names.append(self.types[n])
             else:
-                family = "str" if codebook is None else codebook.column(i)[0]
-                names.append(FAMILY_TYPES[family])
+                categories = list(values) + [None] * (int(has_other) + int(has_null))
+                names.append(fitting_type(self.types[n], categories))
         return names
 
 
 def warn_caps(caps: list[tuple[str, int, int]], max_categories: int) -> None:
     """One CategoryCapWarning per column whose rare values went to the 'other' code."""
     for column, n_values, n_rows in caps:
-        warnings.warn(
+        warn(
             f"column {column!r}: {n_values} rare values in {n_rows} rows share the 'other' "
             f"code (max_categories={max_categories}); raise max_categories to keep them apart",
             CategoryCapWarning,
-            stacklevel=4,
         )
 
 
@@ -84,72 +82,74 @@ def learn_codebook(
 ) -> Iterator[tuple[_core.Codebook, Source]]:
     """The codebook pass. Yields the codebook and the source to count from next.
 
-    A replayable source is simply read again. A one-shot stream is spooled to a temporary Arrow
-    IPC file while its codebook is learned, and counted from that file, which is removed when
-    the block ends: one pass over the stream, exact counts, memory near one batch.
+    A replayable source is simply read again. A one-shot stream is spooled to temporary Arrow
+    IPC files while its codebook is learned, and counted from them; they are removed when the
+    block ends: one pass over the stream, exact counts, memory near one batch.
     """
     builder = _core.CodebookBuilder(names)
     bar.start("learning codes")
-    spool: Path | None = None
-    writer: _Spool | None = None
+    spool = None if source.replayable else _Spool()
     try:
-        if not source.replayable:
-            fd, name = tempfile.mkstemp(prefix="treewise-spool-", suffix=".arrow")
-            os.close(fd)
-            spool = Path(name)
         for part in source.parts(names, batch_rows):
             with located(part.label):
                 for batch in part.batches:
                     types.see(batch)
                     builder.observe(batch)
                     if spool is not None:
-                        writer = writer or _Spool(spool, batch.schema)
-                        writer.write(batch)
+                        spool.write(batch)
                     bar.rows(batch.num_rows)
             bar.part_done()
-        if writer is not None:
-            writer.close()
-            writer = None
         codebook, caps = builder.finish(max_categories, n_bins)
         warn_caps(caps, max_categories)
-        yield codebook, (source if spool is None else open_source(spool))
+        if spool is None:
+            yield codebook, source
+        else:
+            spool.close()
+            yield codebook, open_source(spool.paths)
     finally:
-        if writer is not None:
-            writer.close()
         if spool is not None:
-            spool.unlink(missing_ok=True)
-
-
-def _plain(dtype: pa.DataType) -> pa.DataType:
-    return dtype.value_type if pa.types.is_dictionary(dtype) else dtype
+            spool.remove()
 
 
 class _Spool:
-    """A temporary Arrow IPC file that a one-shot stream is copied to, batch by batch."""
+    """Temporary Arrow IPC files that a one-shot stream is copied to, batch by batch.
 
-    def __init__(self, path: Path, schema: pa.Schema) -> None:
-        self.schema = pa.schema([f.with_type(_plain(f.type)) for f in schema])
-        self.writer = pa.ipc.new_file(str(path), self.schema)
+    An IPC file has one schema and one dictionary per column, but the batches of a stream may
+    drift within a family (int8 then int64, a null-typed batch, new dictionaries): dictionaries
+    are written as plain values, and a batch of another schema starts a new file.
+    """
+
+    def __init__(self) -> None:
+        self.paths: list[Path] = []
+        self.writer: pa.ipc.RecordBatchFileWriter | None = None
+        self.schema: pa.Schema | None = None
 
     def write(self, batch: pa.RecordBatch) -> None:
-        # An IPC file allows one dictionary per column, but each batch of a stream may carry
-        # its own: spool plain values instead (the codebook is learned from values anyway).
         batch = pa.RecordBatch.from_arrays(
-            [c.dictionary_decode() if pa.types.is_dictionary(c.type) else c for c in batch.columns],
+            [
+                c.cast(c.type.value_type) if pa.types.is_dictionary(c.type) else c
+                for c in batch.columns
+            ],
             names=batch.schema.names,
         )
-        if batch.schema != self.schema:
-            try:
-                batch = batch.cast(self.schema)
-            except (pa.ArrowInvalid, pa.ArrowNotImplementedError, ValueError) as e:
-                raise SchemaError(
-                    f"the stream's batches change schema ({self.schema} then {batch.schema}); "
-                    "give every batch the same column types"
-                ) from e
+        if self.writer is None or batch.schema != self.schema:
+            self.close()
+            fd, name = tempfile.mkstemp(prefix="treewise-spool-", suffix=".arrow")
+            os.close(fd)
+            self.paths.append(Path(name))
+            self.schema = batch.schema
+            self.writer = pa.ipc.new_file(name, batch.schema)
         self.writer.write_batch(batch)
 
     def close(self) -> None:
-        self.writer.close()
+        if self.writer is not None:
+            self.writer.close()
+            self.writer = None
+
+    def remove(self) -> None:
+        self.close()
+        for path in self.paths:
+            path.unlink(missing_ok=True)
 
 
 def count_pairs(

@@ -14,7 +14,6 @@ import glob as globbing
 import itertools
 import os
 import sys
-import warnings
 from collections import Counter
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from contextlib import contextmanager
@@ -27,7 +26,7 @@ import pyarrow.csv as pacsv
 import pyarrow.dataset as pads
 import pyarrow.parquet as pq
 
-from treewise.errors import DataError, SchemaError, TreewiseError
+from treewise.errors import DataError, SchemaError, TreewiseError, warn
 
 __all__ = [
     "BATCH_ROWS",
@@ -318,10 +317,14 @@ def _file_source(files: list[Path]) -> Source:
     rows = [_file_rows(p, f) for p, f in zip(files, formats, strict=True)]
     total = None if any(r is None for r in rows) else sum(r for r in rows if r is not None)
 
+    skipped: set[Path] = set()
+
     def parts(names: list[str], batch_rows: int) -> Iterator[Part]:
         for path, fmt, n in zip(files, formats, rows, strict=True):
             if n == 0:
-                warnings.warn(f"skipped {path}: it holds no rows", SkippedFileWarning, stacklevel=4)
+                if path not in skipped:  # once, not once per pass
+                    skipped.add(path)
+                    warn(f"skipped {path}: it holds no rows", SkippedFileWarning)
                 continue
             yield Part(str(path), _file_batches(path, fmt, names, batch_rows))
 
