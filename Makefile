@@ -54,6 +54,7 @@ fmt: $(STAMP) ## Format Rust and Python sources
 
 bench: build ## Benchmark against the numpy reference; writes bench/RESULTS.md
 	$(PY) bench/fit_bench.py --write bench/RESULTS.md
+	$(PY) bench/compare.py --write bench/RESULTS.md
 
 clean: ## Remove build products and the environment
 	rm -rf target $(VENV) .pytest_cache .mypy_cache .ruff_cache

@@ -15,6 +15,7 @@ import pyarrow.feather as feather
 import pyarrow.parquet as pq
 import pytest
 import treewise
+from treewise.cli import main
 from treewise.datasets import hidden_edges, model_columns, shop_sessions
 
 N = 20_000
@@ -305,6 +306,65 @@ def test_show_json(model_file: Path) -> None:
         assert got == want
 
 
+# -- report ------------------------------------------------------------------------------------
+# In-process (treewise.cli.main), to spare the start-up of a new interpreter per call.
+
+
+def report(capsys: pytest.CaptureFixture[str], *args: str | Path) -> tuple[int, str, str]:
+    """Run ``treewise report ARGS`` in this process: exit status, stdout, stderr."""
+    status = main(["report", *map(str, args)])
+    captured = capsys.readouterr()
+    return status, " ".join(captured.out.split()), captured.err
+
+
+def test_report_with_data(
+    tmp_path: Path,
+    data: dict[str, Path | str],
+    model_file: Path,
+    sessions: pa.Table,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    out_path = tmp_path / "report.html"
+    args = ["--key", "session_id", "--top", "4", "--synthetic-rows", "3000", "--heatmaps", "2"]
+    status, out, err = report(capsys, model_file, data["directory"], "-o", out_path, *args)
+    assert status == 0, err
+    assert f"Wrote the report to {out_path}" in out
+    page = out_path.read_text("utf-8")
+    assert "<title>Dependency tree report: shop.treewise</title>" in page
+    for anchor in ("summary", "tree", "edges", "conditional", "marginals", "scores"):
+        assert f'<section id="{anchor}">' in page
+    assert page.count("<details>") == 4  # one per surprising row
+    assert page.count('<svg width="') == 2  # the heat maps
+    model = treewise.load(model_file)
+    worst = int(np.argmin(model.score_samples(sessions)))
+    assert f"<td class=n>{worst:,}</td>" in page
+    assert "http://" not in page and "https://" not in page
+
+
+def test_report_without_data(
+    tmp_path: Path, model_file: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out_path = tmp_path / "plain.html"
+    status, _, err = report(
+        capsys, model_file, "-o", out_path, "--title", "Shop <tree>", "--heatmaps", "0"
+    )
+    assert status == 0, err
+    page = out_path.read_text("utf-8")
+    assert "<title>Shop &lt;tree&gt;</title>" in page
+    assert 'id="scores"' not in page and 'id="conditional"' not in page
+    assert '<section id="cautions">' in page
+
+
+def test_report_errors(
+    tmp_path: Path, model_file: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    status, _, err = report(capsys, model_file, "-o", tmp_path / "r.html", "--key", "session_id")
+    assert status == 2 and err.startswith("error: --key needs DATA")
+    status, _, err = report(capsys, model_file, "-o", tmp_path / "no" / "r.html")
+    assert status == 1 and "does not exist" in err and len(err.splitlines()) == 1
+    assert not list(tmp_path.iterdir())
+
+
 # -- demo --------------------------------------------------------------------------------------
 
 
@@ -314,7 +374,7 @@ def test_demo_tells_the_whole_story(tmp_path: Path) -> None:
     match = re.search(r"Recovered (\d+) of (\d+) hidden edges", out)
     assert match is not None and int(match.group(2)) == len(hidden_edges())
     assert int(match.group(1)) >= 0.8 * len(hidden_edges())
-    for name in ("sessions", "shop.treewise", "scores.parquet", "synthetic.parquet"):
+    for name in ("sessions", "shop.treewise", "scores.parquet", "synthetic.parquet", "report.html"):
         assert (folder / name).exists()
         assert str(folder / name) in out
     assert len(list((folder / "sessions").glob("*.parquet"))) == 8
@@ -329,6 +389,10 @@ def test_demo_tells_the_whole_story(tmp_path: Path) -> None:
     assert "Largest absolute difference over the 24 edges" in out
     assert "evidence, not a verdict" in out and "reveal rare records" in out
     assert f"treewise show {folder / 'shop.treewise'}" in out
+    page = (folder / "report.html").read_text("utf-8")
+    for anchor in ("tree", "edges", "scores", "surprising", "synthetic", "cautions"):
+        assert f'<section id="{anchor}">' in page
+    assert "<th>session_id</th>" in page
     # A second run over the same folder replaces its own files.
     ok("demo", "--rows", "500", "--dir", folder, "--no-progress")
     assert treewise.load(folder / "shop.treewise").n_rows_ == 500
@@ -420,7 +484,7 @@ def test_debug_shows_the_traceback(tmp_path: Path) -> None:
     assert "Traceback" in result.stderr and "FileNotFoundError" in result.stderr
 
 
-@pytest.mark.parametrize("command", ["fit", "score", "sample", "show", "demo"])
+@pytest.mark.parametrize("command", ["fit", "score", "sample", "show", "report", "demo"])
 def test_every_subcommand_has_an_example(command: str) -> None:
     result = run(command, "--help")
     assert result.returncode == 0

@@ -25,7 +25,14 @@ from sklearn.base import clone
 from sklearn.utils import estimator_checks
 from treewise import DependencyTree
 
-PARAMS = {"columns": None, "max_categories": 128, "n_bins": 10, "root": None, "alpha": 0.5}
+PARAMS = {
+    "columns": None,
+    "max_categories": 128,
+    "n_bins": 10,
+    "root": None,
+    "alpha": 0.5,
+    "prune": None,
+}
 
 
 def table(n: int = 300, seed: int = 0) -> pa.Table:
@@ -115,6 +122,7 @@ def test_init_only_stores_parameters() -> None:
         "n_bins": -3,
         "root": "zz",
         "alpha": -1,
+        "prune": None,
     }
     with pytest.raises(ValueError, match="max_categories"):
         model.fit(table())
@@ -241,6 +249,16 @@ class ArrayInput(DependencyTree):
 
     def score_samples(self, data: Any) -> Any:
         return super().score_samples(self._as_table(data))
+
+    # predict and predict_proba answer questions about one column (they take a target), so they
+    # are not scikit-learn's predict(X): hide them from the array checks.
+    @property
+    def predict(self) -> Any:
+        raise AttributeError("predict takes a target column; not part of the array checks")
+
+    @property
+    def predict_proba(self) -> Any:
+        raise AttributeError("predict_proba takes a target column; not part of the array checks")
 
     def partial_fit(self, data: Any, y: None = None) -> ArrayInput:
         super().partial_fit(self._as_table(data), y)

@@ -9,10 +9,12 @@ from importlib.metadata import PackageNotFoundError, version
 from treewise import _core
 from treewise._core import Codebook
 from treewise.categories import OTHER, Bin
+from treewise.classifier import TreeAugmentedClassifier
 from treewise.errors import (
     CategoryCapWarning,
     CorruptModelError,
     DataError,
+    ImpossibleEvidenceWarning,
     NotFittedError,
     ResourceLimitError,
     SchemaError,
@@ -55,11 +57,13 @@ __all__ = [
     "CorruptModelError",
     "DataError",
     "DependencyTree",
+    "ImpossibleEvidenceWarning",
     "NotFittedError",
     "PairStats",
     "ResourceLimitError",
     "SchemaError",
     "TooManyCategoriesError",
+    "TreeAugmentedClassifier",
     "TreewiseError",
     "UnseenCategoryWarning",
     "__version__",

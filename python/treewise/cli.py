@@ -320,7 +320,8 @@ class _Group(click.Group):
     epilog="""\b
 Example:
   treewise demo --rows 200000
-  treewise show demo-output/shop.treewise""",
+  treewise show demo-output/shop.treewise
+  treewise report demo-output/shop.treewise -o report.html""",
 )
 @click.version_option(version=treewise.__version__, prog_name="treewise")
 @click.option("--debug", is_flag=True, help="Show the full traceback when something fails.")
@@ -556,6 +557,101 @@ def show(model_path: str, as_json: bool) -> None:
 @cli.command(
     epilog="""\b
 Example:
+  treewise report demo-output/shop.treewise -o shop-report.html
+  treewise report demo-output/shop.treewise demo-output/sessions -o report.html \\
+      --key session_id --top 30"""
+)
+@click.argument("model_path", metavar="MODEL")
+@click.argument("data", nargs=-1)
+@click.option("-o", "--output", required=True, metavar="OUT", help="HTML file to write.")
+@click.option(
+    "--key", "keys", multiple=True, metavar="COL", help="Column of DATA to show beside a row."
+)
+@click.option(
+    "--top",
+    type=click.IntRange(0, 100_000),
+    metavar="K",
+    default=20,
+    show_default=True,
+    help="Show this many of the most surprising rows of DATA.",
+)
+@click.option(
+    "--synthetic-rows",
+    type=click.IntRange(0, 100_000_000),
+    metavar="N",
+    default=100_000,
+    show_default=True,
+    help="Rows to sample for the comparison with DATA (0: none).",
+)
+@click.option(
+    "--seed",
+    type=click.IntRange(0, 2**64 - 1),
+    metavar="S",
+    default=0,
+    show_default=True,
+    help="Seed of the synthetic rows.",
+)
+@click.option(
+    "--heatmaps",
+    type=click.IntRange(min=0),
+    metavar="N",
+    default=6,
+    show_default=True,
+    help="Conditional tables to draw, strongest edges first.",
+)
+@click.option(
+    "--tree-edges",
+    type=click.IntRange(min=1),
+    metavar="N",
+    default=80,
+    show_default=True,
+    help="Draw at most this many edges (the strongest) in the tree picture.",
+)
+@click.option("--title", metavar="TEXT", help="The page's title (default: from MODEL).")
+def report(
+    model_path: str,
+    data: tuple[str, ...],
+    output: str,
+    keys: tuple[str, ...],
+    top: int,
+    synthetic_rows: int,
+    seed: int,
+    heatmaps: int,
+    tree_edges: int,
+    title: str | None,
+) -> None:
+    """Write a self-contained HTML report about MODEL (and DATA) to OUT.
+
+    The page shows the tree, its edges, the conditional tables of the strongest edges and
+    every column's distribution. With DATA it also shows how the rows score, the most
+    surprising rows and why, and how rows sampled from MODEL compare with DATA. It has no
+    scripts and fetches nothing: open it in any browser, offline.
+    """
+    from treewise.report import write_report  # matplotlib loads only for this command
+
+    model = _load(model_path)
+    _check_output(output)
+    if keys and not data:
+        raise click.UsageError("--key needs DATA to take the column from")
+    start = time.perf_counter()
+    write_report(
+        model,
+        output,
+        _source(data) if data else None,
+        synthetic_rows=synthetic_rows,
+        top=top,
+        heatmaps=heatmaps,
+        keys=keys,
+        tree_edges=tree_edges,
+        title=title or f"Dependency tree report: {Path(model_path).name}",
+        random_state=seed,
+    )
+    _console().print(f"Wrote the report to {output} in {_seconds(start)}.")
+
+
+@cli.command(
+    epilog="""\b
+Example:
   treewise demo
   treewise demo --rows 200000 --dir /tmp/shop-demo --seed 3"""
 )
@@ -573,7 +669,7 @@ Example:
     default="demo-output",
     metavar="PATH",
     show_default=True,
-    help="Where to write the data, the model, the scores and the synthetic rows.",
+    help="Where to write the data, the model, the scores, the synthetic rows and the report.",
 )
 @click.option(
     "--seed",
@@ -589,7 +685,7 @@ def demo(rows: int, directory: str, seed: int, no_progress: bool) -> None:
 
     Generates sessions from a hidden tree, writes them as Parquet files, fits a tree to them by
     streaming, compares it with the hidden one, scores the sessions against planted anomalies,
-    and checks that synthetic rows keep the dependencies.
+    checks that synthetic rows keep the dependencies, and writes an HTML report.
     """
     from treewise import demo as story  # the demo renders with this module's helpers
 

@@ -8,6 +8,7 @@ __all__ = [
     "CategoryCapWarning",
     "CorruptModelError",
     "DataError",
+    "ImpossibleEvidenceWarning",
     "NotFittedError",
     "ResourceLimitError",
     "SchemaError",
@@ -48,6 +49,10 @@ class CategoryCapWarning(UserWarning):
 
 class NotFittedError(TreewiseError, ValueError, AttributeError):
     """A method that needs a fitted model was called before ``fit``."""
+
+
+class ImpossibleEvidenceWarning(UserWarning):
+    """Some rows' evidence has probability zero under the model (possible only with alpha=0)."""
 
 
 class UnseenCategoryWarning(UserWarning):

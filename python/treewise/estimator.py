@@ -5,15 +5,15 @@ from __future__ import annotations
 import math
 import numbers
 import os
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import numpy.typing as npt
 import pyarrow as pa
 
-from treewise import _core
+from treewise import _core, inference
 from treewise.categories import OTHER, Bin
 from treewise.decode import decode_column, type_from_name
 from treewise.errors import (
@@ -25,10 +25,14 @@ from treewise.errors import (
 )
 from treewise.files import read_model_file, write_atomically
 from treewise.pairstats import PairStats
+from treewise.params import Params
 from treewise.passes import TypeRecorder, count_pairs, learn_codebook
 from treewise.progress import PassProgress, wants_progress
 from treewise.sources import BATCH_ROWS, check_columns, located, open_source
 from treewise.stream import atomic_parquet, write_scores
+
+if TYPE_CHECKING:
+    from matplotlib.figure import Figure
 
 __all__ = ["DependencyTree"]
 
@@ -64,7 +68,7 @@ def _check_int(name: str, value: object, low: int, high: int) -> int:
     return int(value)
 
 
-class DependencyTree:
+class DependencyTree(Params):
     """A maximum-likelihood tree-structured distribution over categorical columns.
 
     Fitting counts every pair of columns exactly, weighs each pair by its mutual information and
@@ -140,28 +144,7 @@ class DependencyTree:
         self.alpha = alpha
         self.prune = prune
 
-    # -- scikit-learn parameter protocol ---------------------------------------------------------
-
     _PARAMS = ("columns", "max_categories", "n_bins", "root", "alpha", "prune")
-
-    def get_params(self, deep: bool = True) -> dict[str, Any]:
-        """Return the constructor parameters."""
-        return {name: getattr(self, name) for name in self._PARAMS}
-
-    def set_params(self, **params: Any) -> DependencyTree:
-        """Set constructor parameters; returns ``self``. A new ``alpha`` needs no refit."""
-        for name, value in params.items():
-            if name not in self._PARAMS:
-                raise ValueError(f"unknown parameter {name!r}; the parameters are {self._PARAMS}")
-            setattr(self, name, value)
-        return self
-
-    def __repr__(self) -> str:
-        defaults = DependencyTree().get_params()
-        changed = [
-            f"{k}={v!r}" for k, v in self.get_params().items() if not _is_default(v, defaults[k])
-        ]
-        return f"DependencyTree({', '.join(changed)})"
 
     def __getstate__(self) -> dict[str, Any]:
         """Pickle support: the Rust objects travel as their own validated file bytes."""
@@ -613,7 +596,45 @@ class DependencyTree:
             for offset in range(0, count, batch_rows):
                 yield batch.slice(offset, batch_rows)
 
-    def sample(self, n: int, random_state: RandomState = None) -> pa.Table:
+    # -- questions to the tree (exact inference; see docs/inference.md) ---------------------------
+
+    def predict_proba(self, data: Any, target: str | int) -> npt.NDArray[np.float64]:
+        """The posterior of column ``target`` for each row, given the row's other values.
+
+        Exact (sum-product message passing on the tree). A null, a value without a code and a
+        column absent from ``data`` are unobserved. Columns of the result follow
+        ``categories_[target]``.
+        """
+        return inference.predict_proba(self, data, target)
+
+    def predict(self, data: Any, target: str | int) -> pa.Array[Any]:
+        """The most probable value of column ``target`` for each row, given the rest."""
+        return inference.predict(self, data, target)
+
+    def marginals(
+        self, evidence: Mapping[str, Any] | None = None
+    ) -> dict[str, npt.NDArray[np.float64]]:
+        """Every column's posterior distribution given ``evidence`` (a dict column -> value)."""
+        return inference.marginals(self, evidence)
+
+    def impute(
+        self, data: Any, strategy: str = "joint", random_state: RandomState = None
+    ) -> pa.Table:
+        """Fill the nulls of ``data`` from the model.
+
+        ``strategy="joint"`` takes the most probable completion of each row as a whole
+        (max-product); ``"marginal"`` each missing cell's own most probable value; ``"sample"``
+        a draw from the row's posterior.
+        """
+        return inference.impute(self, data, strategy, random_state)
+
+    def sample(
+        self,
+        n: int | None = None,
+        random_state: RandomState = None,
+        *,
+        given: Mapping[str, Any] | Any = None,
+    ) -> pa.Table:
         """Draw ``n`` synthetic rows by ancestral sampling.
 
         The root is drawn first, then each child given its parent's drawn value.
@@ -621,9 +642,12 @@ class DependencyTree:
         Parameters
         ----------
         n : int
-            How many rows (0 or more).
+            How many rows (0 or more). With ``given`` as a table, None means one per row.
         random_state : None, int, numpy.random.Generator or RandomState
             The same value gives the same rows, whatever the number of threads.
+        given : dict or table, optional
+            Conditional sampling: fixed evidence (a dict column -> value) for every row, or a
+            table with one row of evidence per sampled row (nulls unobserved).
 
         Returns
         -------
@@ -633,6 +657,10 @@ class DependencyTree:
             back as null, and so does the "other" code, which stands for many rare values and
             no single one.
         """
+        if given is not None:
+            return inference.sample_given(self, n, given, random_state)
+        if n is None:
+            raise TypeError("sample() needs n, the number of rows (or given= evidence)")
         return pa.Table.from_batches(
             list(self.iter_sample(n, random_state)), schema=self._output_schema()
         )
@@ -645,6 +673,20 @@ class DependencyTree:
                 for name, t in zip(self.feature_names_in_, model.dtypes, strict=True)
             ]
         )
+
+    # -- views -------------------------------------------------------------------------------------
+
+    def plot(self, **options: Any) -> Figure:
+        """A matplotlib figure of the tree; see :func:`treewise.plot.plot_tree` for options."""
+        from treewise.plot import plot_tree  # matplotlib loads only when a picture is asked for
+
+        return plot_tree(self, **options)
+
+    def _repr_html_(self) -> str:
+        """The notebook view: a compact summary with the picture."""
+        from treewise.notebook import model_html
+
+        return model_html(self)
 
     # -- persistence -----------------------------------------------------------------------------
 
@@ -700,14 +742,6 @@ def _check_prune(prune: object) -> tuple[str, float]:
             return "level", level
         raise ValueError(f"a pruning significance level must be between 0 and 1, got {prune}")
     raise ValueError(f"prune must be None, 'bic' or a significance level in (0, 1); got {prune!r}")
-
-
-def _is_default(value: object, default: object) -> bool:
-    """Whether a parameter still has its default (array-likes never compare as equal)."""
-    try:
-        return bool(value == default)
-    except (TypeError, ValueError):
-        return False
 
 
 def _u64(data: bytes) -> npt.NDArray[np.uint64]:

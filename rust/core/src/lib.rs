@@ -3,6 +3,7 @@
 pub mod codebook;
 pub mod dtype;
 pub mod error;
+pub mod infer;
 pub mod io;
 pub mod kernels;
 pub mod model;

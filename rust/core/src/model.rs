@@ -157,6 +157,28 @@ pub struct Scored {
     pub unseen: Vec<u64>,
 }
 
+impl Scored {
+    /// Appends the scores of the next rows.
+    pub fn append(&mut self, next: Scored) {
+        self.total.extend(next.total);
+        match (&mut self.surprisal, next.surprisal) {
+            (Some(mine), Some(theirs)) => {
+                mine.iter_mut().zip(theirs).for_each(|(a, b)| a.extend(b))
+            }
+            (mine @ None, theirs) if self.unseen.is_empty() => *mine = theirs,
+            _ => {}
+        }
+        if self.unseen.is_empty() {
+            self.unseen = next.unseen;
+        } else {
+            self.unseen
+                .iter_mut()
+                .zip(next.unseen)
+                .for_each(|(a, b)| *a += b);
+        }
+    }
+}
+
 /// Sampled rows, as codes, plus the numbers drawn inside the bins of float columns.
 #[derive(Clone, Debug, Default)]
 pub struct Sampled {
@@ -164,6 +186,25 @@ pub struct Sampled {
     pub codes: Vec<Vec<u16>>,
     /// Per column: for a float column, the value drawn in its bin (NaN for a null code).
     pub floats: Vec<Option<Vec<f64>>>,
+}
+
+impl Sampled {
+    /// Appends the next rows.
+    pub fn append(&mut self, next: Sampled) {
+        if self.codes.is_empty() {
+            *self = next;
+            return;
+        }
+        self.codes
+            .iter_mut()
+            .zip(next.codes)
+            .for_each(|(a, b)| a.extend(b));
+        for (a, b) in self.floats.iter_mut().zip(next.floats) {
+            if let (Some(a), Some(b)) = (a, b) {
+                a.extend(b);
+            }
+        }
+    }
 }
 
 /// A fitted dependency tree (or forest) over one codebook.
@@ -606,6 +647,39 @@ impl TreeModel {
                 }
             });
         Ok(out)
+    }
+}
+
+impl TreeModel {
+    /// Column `c`'s smoothed table ln P(x | parent code), row-major by the parent's code (one
+    /// row for a root); the tables scoring and sampling use.
+    pub fn log_table(&self, c: usize) -> Option<&[f64]> {
+        self.cpts.get(c).map(|t| t.logp.as_slice())
+    }
+
+    /// Column `c`'s smoothed marginal ln P(x) (what scoring uses when the parent has no code).
+    pub fn log_marginal(&self, c: usize) -> Option<&[f64]> {
+        self.cpts.get(c).map(|t| t.marginal.as_slice())
+    }
+
+    /// A number inside bin `k` of float column `c` at fraction `u` of the bin, rounded as
+    /// `sample` rounds (float32 columns stay float32); None when `c` is not a float column or
+    /// `k` is not one of its bins (the null code).
+    pub fn value_in_bin(&self, c: usize, k: usize, u: f64) -> Option<f64> {
+        let column = self.codebook.columns().get(c)?;
+        let Values::Bins { edges, low, high } = column.values() else {
+            return None;
+        };
+        let lo = if k == 0 { *low } else { *edges.get(k - 1)? };
+        let narrow = dtype::is_float32(self.dtypes.get(c)?);
+        // value_in_bin reads bin 0 of the bounds it is given: two bounds make the bin closed
+        // on the right (the last bin), three make it half-open.
+        Some(if k == edges.len() {
+            value_in_bin(&[lo, *high], 0, u, narrow)
+        } else {
+            let hi = *edges.get(k)?;
+            value_in_bin(&[lo, hi, hi], 0, u, narrow)
+        })
     }
 }
 

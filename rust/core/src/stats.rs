@@ -5,6 +5,7 @@
 use rayon::prelude::*;
 
 use crate::error::{Error, Result};
+use crate::kernels::{self, Kernel};
 
 /// The largest number of table cells we agree to hold (2^33 cells = 64 GiB of u64).
 pub const MAX_CELLS: u64 = 1 << 33;
@@ -164,7 +165,9 @@ impl PairStats {
         &self.cells[self.offsets[p]..self.offsets[p + 1]]
     }
 
-    /// Counts one batch of coded columns (each a slice of codes, all of one length).
+    /// Counts one batch of coded columns (each a slice of codes, all of one length). The counting
+    /// kernel is chosen per pair (see `kernels`), or forced by `TREEWISE_KERNEL`; every kernel
+    /// gives the same counts.
     pub fn add_codes(&mut self, codes: &[Vec<u16>]) -> Result<()> {
         let d = self.cards.len();
         if codes.len() != d {
@@ -174,42 +177,32 @@ impl PairStats {
             )));
         }
         let n = codes.first().map_or(0, Vec::len);
-        for (i, (col, &r)) in codes.iter().zip(&self.cards).enumerate() {
+        for (i, col) in codes.iter().enumerate() {
             if col.len() != n {
                 return Err(Error::Invalid(format!(
                     "code column {i} has {} rows, not {n}",
                     col.len()
                 )));
             }
-            // Every code must index its tables; this is what keeps the kernels panic-free.
-            if col.par_iter().any(|&c| usize::from(c) >= r) {
-                return Err(Error::Invalid(format!(
-                    "code column {i} has a code outside 0..{r}"
-                )));
-            }
         }
-        self.marginals
-            .par_iter_mut()
-            .zip(codes.par_iter())
-            .for_each(|(m, col)| {
-                for &c in col {
-                    m[usize::from(c)] += 1;
-                }
-            });
+        // Read before anything changes, so that a bad setting leaves the counts as they were. The
+        // kernels check every code (below its column's cardinality) before they count.
+        let kernel = Kernel::from_env()?;
+        let columns: Vec<&[u16]> = codes.iter().map(Vec::as_slice).collect();
         let mut tables: Vec<&mut [u64]> = Vec::with_capacity(self.offsets.len().saturating_sub(1));
         let mut rest: &mut [u64] = &mut self.cells;
         for w in self.offsets.windows(2) {
-            let (head, tail) = rest.split_at_mut(w[1] - w[0]);
+            let (head, tail) = std::mem::take(&mut rest).split_at_mut(w[1] - w[0]);
             tables.push(head);
             rest = tail;
         }
-        let cards = &self.cards;
-        pairs(d)
-            .into_par_iter()
-            .zip(tables.into_par_iter())
-            .for_each(|((i, j), table)| {
-                count_pair(&codes[i], &codes[j], cards[j], table);
-            });
+        kernels::count(
+            &columns,
+            &self.cards,
+            &mut self.marginals,
+            &mut tables,
+            kernel,
+        )?;
         self.n_rows += n as u64;
         Ok(())
     }
@@ -232,13 +225,6 @@ impl PairStats {
             .zip(other.cells.par_iter())
             .for_each(|(x, y)| *x += y);
         Ok(())
-    }
-}
-
-/// Adds the joint counts of codes `a` and `b` into a row-major table with `rb` columns.
-fn count_pair(a: &[u16], b: &[u16], rb: usize, table: &mut [u64]) {
-    for (&x, &y) in a.iter().zip(b) {
-        table[usize::from(x) * rb + usize::from(y)] += 1;
     }
 }
 

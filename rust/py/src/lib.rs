@@ -3,9 +3,11 @@
 mod arrow_import;
 mod buffers;
 mod errors;
+mod infer;
 mod model;
 mod threads;
 
+use arrow_array::RecordBatch;
 use pyo3::prelude::*;
 use pyo3::types::{PyBytes, PyList, PyTuple};
 use treewise_core::codebook::{CodebookBuilder, Values};
@@ -14,6 +16,22 @@ use treewise_core::{Codebook, PairStats};
 use crate::arrow_import::import_batch;
 use crate::buffers::le_bytes;
 use crate::errors::{detached, to_py};
+
+/// Rows per core call: between calls the GIL is taken back and Ctrl-C is checked, so a huge
+/// batch is still interrupted within a fraction of a second.
+pub(crate) const SLICE_ROWS: usize = 1 << 18;
+
+/// A batch as zero-copy slices of at most [`SLICE_ROWS`] rows.
+pub(crate) fn slices(batch: &RecordBatch) -> Vec<RecordBatch> {
+    let n = batch.num_rows();
+    if n <= SLICE_ROWS {
+        return vec![batch.clone()];
+    }
+    (0..n)
+        .step_by(SLICE_ROWS)
+        .map(|start| batch.slice(start, SLICE_ROWS.min(n - start)))
+        .collect()
+}
 
 /// What the cap did to one column: (column, values capped, rows capped).
 type CapTuple = (String, usize, u64);
@@ -37,7 +55,11 @@ impl PyCodebookBuilder {
     fn observe(&mut self, py: Python<'_>, batch: &Bound<'_, PyAny>) -> PyResult<()> {
         let batch = import_batch(batch)?;
         let builder = self.builder()?;
-        detached(py, || builder.observe(&batch))
+        for slice in slices(&batch) {
+            detached(py, || builder.observe(&slice))?;
+            py.check_signals()?;
+        }
+        Ok(())
     }
 
     /// Adds another builder's tallies (the same columns, other data).
@@ -225,10 +247,14 @@ impl PyPairStats {
         let batch = import_batch(batch)?;
         let stats = &mut self.inner;
         let codebook = &codebook.inner;
-        detached(py, || {
-            let codes = codebook.encode(&batch, true)?;
-            stats.add_codes(&codes)
-        })
+        for slice in slices(&batch) {
+            detached(py, || {
+                let codes = codebook.encode(&slice, true)?;
+                stats.add_codes(&codes)
+            })?;
+            py.check_signals()?;
+        }
+        Ok(())
     }
 
     /// These counts with the codebook they were counted with and each column's output type
@@ -330,6 +356,7 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_class::<PyCodebook>()?;
     m.add_class::<PyPairStats>()?;
     m.add_class::<model::PyTreeModel>()?;
+    m.add_class::<infer::PyTreeInference>()?;
     m.add("SAMPLE_BLOCK", treewise_core::model::SAMPLE_BLOCK)?;
     m.add_function(wrap_pyfunction!(chi2_sf, m)?)?;
     m.add_function(wrap_pyfunction!(thread_count, m)?)?;

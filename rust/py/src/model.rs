@@ -2,13 +2,13 @@
 
 use pyo3::prelude::*;
 use pyo3::types::PyBytes;
-use treewise_core::model::TreeModel;
+use treewise_core::model::{Sampled, Scored, TreeModel};
 use treewise_core::{io, Error, Prune};
 
 use crate::arrow_import::import_batch;
 use crate::buffers::le_bytes;
 use crate::errors::{detached, to_py};
-use crate::{PyCodebook, PyPairStats};
+use crate::{slices, PyCodebook, PyPairStats, SLICE_ROWS};
 
 /// One edge: (parent, child, mutual_info, g_statistic, dof, p_value).
 type EdgeTuple = (usize, usize, f64, f64, u64, f64);
@@ -166,7 +166,12 @@ impl PyTreeModel {
     )> {
         let batch = import_batch(batch)?;
         let model = &self.inner;
-        let scored = detached(py, || model.score(&batch, surprisal))?;
+        let mut scored = Scored::default();
+        for slice in slices(&batch) {
+            let part = detached(py, || model.score(&slice, surprisal))?;
+            scored.append(part);
+            py.check_signals()?;
+        }
         let columns = match scored.surprisal {
             Some(cols) => Some(
                 cols.iter()
@@ -189,7 +194,15 @@ impl PyTreeModel {
         seed: u64,
     ) -> PyResult<(Bound<'py, PyBytes>, Vec<Option<Bound<'py, PyBytes>>>)> {
         let model = &self.inner;
-        let sampled = detached(py, || model.sample(start, count, seed))?;
+        // SLICE_ROWS is a multiple of the sampling block, so the rows do not change.
+        let mut sampled = Sampled::default();
+        // At least one call, so that even 0 rows come back with every column.
+        for offset in (0..count.max(1)).step_by(SLICE_ROWS) {
+            let n = SLICE_ROWS.min(count - offset);
+            let part = detached(py, || model.sample(start + offset as u64, n, seed))?;
+            sampled.append(part);
+            py.check_signals()?;
+        }
         let parts: Vec<&[u16]> = sampled.codes.iter().map(Vec::as_slice).collect();
         let floats = sampled
             .floats

@@ -1,0 +1,73 @@
+"""Write the seed corpus of the fuzz targets: small valid files of every kind, in both input modes.
+
+Run from the repository root with the package installed:
+``.venv/bin/python fuzz/make_seeds.py`` (writes fuzz/seeds/decode and fuzz/seeds/counts).
+"""
+
+from __future__ import annotations
+
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import treewise
+from treewise import _core
+
+HEADER = 28
+KINDS = {"model": 1, "stats": 2, "tallies": 3, "codebook": 4}
+
+
+def tables() -> dict[str, pa.Table]:
+    """A few small tables covering every value family, nulls, caps and bins."""
+    rng = np.random.default_rng(3)
+    n = 60
+    a = rng.integers(0, 4, n)
+    return {
+        "mixed": pa.table(
+            {
+                "i": pa.array(a, pa.int16()),
+                "s": pa.array([None if k == 3 else f"v{k}" for k in (a + rng.integers(0, 2, n))]),
+                "f": pa.array(np.where(a == 0, np.nan, a * 1.5 + rng.random(n))),
+                "b": pa.array(a % 2 == 0),
+                "u": pa.array(rng.integers(0, 3, n), pa.uint8()),
+            }
+        ),
+        "capped": pa.table({"c": pa.array(rng.integers(0, 40, n)), "d": pa.array(a)}),
+        "one": pa.table({"x": pa.array(["only"] * 5)}),
+        "dict": pa.table({"k": pa.array(["p", "q", "p", None]).dictionary_encode()}),
+    }
+
+
+def main() -> None:
+    """Write every seed file."""
+    root = Path(__file__).parent / "seeds"
+    decode, counts = root / "decode", root / "counts"
+    decode.mkdir(parents=True, exist_ok=True)
+    counts.mkdir(parents=True, exist_ok=True)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for name, table in tables().items():
+            model = treewise.DependencyTree(max_categories=8).fit(table)
+            builder = _core.CodebookBuilder(table.column_names)
+            builder.observe(table.to_batches()[0])
+            files = {
+                "model": model._fitted().to_bytes(),
+                "stats": treewise.PairStats.from_source(table, model.codebook_).to_bytes(),
+                "tallies": builder.to_bytes(),
+                "codebook": model.codebook_.to_bytes(),
+            }
+            for kind, data in files.items():
+                # Mode 0: a whole file. Mode 4 + kind - 1: the payload, re-signed by the target.
+                (decode / f"{name}-{kind}-file").write_bytes(b"\x00" + data)
+                mode = bytes([4 + KINDS[kind] - 1])
+                (decode / f"{name}-{kind}-payload").write_bytes(mode + data[HEADER:])
+    rng = np.random.default_rng(5)
+    for k, d in enumerate((1, 2, 3, 5)):
+        head = bytes([d - 1]) + bytes(int(x) for x in rng.integers(0, 256, 2 * d))
+        body = bytes(int(x) for x in rng.integers(0, 256, 64 * d))
+        (counts / f"seed-{k}").write_bytes(head + bytes([8, 100]) + body)
+
+
+if __name__ == "__main__":
+    main()

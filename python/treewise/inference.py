@@ -1,0 +1,564 @@
+"""Questions to a fitted tree: exact posteriors, imputation, conditional sampling, edge stability.
+
+Every function takes a fitted :class:`~treewise.DependencyTree` first. The work is exact
+message passing on the tree (or forest) in the Rust core, one row per query, in parallel and
+with the GIL released. In the data given as evidence, a null (or NaN) means *unobserved*, even
+in a column whose codebook has a null category, and a value the codebook has no code for is
+unobserved too (an ``UnseenCategoryWarning`` counts them). A model column the data lacks is
+unobserved in every row. See docs/inference.md.
+"""
+
+from __future__ import annotations
+
+import numbers
+import weakref
+from collections.abc import Collection, Iterator, Mapping
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import numpy.typing as npt
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from treewise import _core
+from treewise.decode import decode_column
+from treewise.errors import (
+    DataError,
+    ImpossibleEvidenceWarning,
+    UnseenCategoryWarning,
+    warn,
+)
+from treewise.sources import BATCH_ROWS, Source, check_columns, located, open_source
+
+if TYPE_CHECKING:
+    from treewise.estimator import DependencyTree, RandomState
+
+__all__ = [
+    "ImpossibleEvidenceWarning",
+    "edge_stability",
+    "impute",
+    "marginals",
+    "predict",
+    "predict_proba",
+    "read_table",
+    "sample_given",
+]
+
+#: Rows per call of conditional sampling with one fixed row of evidence.
+SAMPLE_ROWS = 262_144
+#: The imputation strategies.
+STRATEGIES = ("joint", "marginal", "sample")
+#: The resampling methods of edge_stability.
+METHODS = ("bootstrap", "subsample")
+#: The code the core writes for a cell it left as it was.
+_KEPT = 0xFFFF
+
+
+# -- the prepared model --------------------------------------------------------------------------
+
+_ENGINES: weakref.WeakKeyDictionary[Any, tuple[_core.TreeModel, float, _core.TreeInference]] = (
+    weakref.WeakKeyDictionary()
+)
+
+
+def _engine(model: DependencyTree) -> _core.TreeInference:
+    """The model prepared for inference, kept while the estimator's fitted model and alpha stay."""
+    core = model._fitted()
+    hit = _ENGINES.get(model)
+    if hit is not None and hit[0] is core and hit[1] == core.alpha:
+        return hit[2]
+    engine = _core.TreeInference.from_bytes(core.to_bytes())
+    _ENGINES[model] = (core, core.alpha, engine)
+    return engine
+
+
+def _names(model: DependencyTree) -> list[str]:
+    model._fitted()
+    return [str(n) for n in model.feature_names_in_]
+
+
+# -- reading evidence ----------------------------------------------------------------------------
+
+
+def _read(source: Source, wanted: list[str] | None) -> Iterator[tuple[str, pa.RecordBatch]]:
+    """(label, batch) of a source, holding the ``wanted`` columns it has (None: all of them)."""
+    present = list(source.names) if wanted is None else [n for n in wanted if n in source.names]
+    # With none of the wanted columns, read one column anyway: the rows still count.
+    for part in source.parts(present or list(source.names[:1]), BATCH_ROWS):
+        batches = iter(part.batches)
+        while True:
+            with located(part.label):
+                batch = next(batches, None)
+            if batch is None:
+                break
+            yield part.label, batch
+
+
+def _evidence(batch: pa.RecordBatch, names: list[str], blank: Collection[str] = ()) -> Any:
+    """The batch as the model's columns in order; absent and ``blank`` columns are all null."""
+    n = batch.num_rows
+    have = set(batch.schema.names)
+    arrays = [
+        batch.column(name) if name in have and name not in blank else pa.nulls(n) for name in names
+    ]
+    return pa.RecordBatch.from_arrays(arrays, names=names)
+
+
+class _Tally:
+    """Values without a code and impossible rows over a whole call, warned about once."""
+
+    def __init__(self, names: list[str]) -> None:
+        self.names = names
+        self.unseen = np.zeros(len(names), dtype=np.int64)
+        self.impossible = 0
+
+    def add(self, unseen: list[int], impossible: int = 0) -> None:
+        self.unseen += np.asarray(unseen, dtype=np.int64)
+        self.impossible += impossible
+
+    def warn(self, impossible: str) -> None:
+        if self.unseen.any():
+            report = ", ".join(f"{self.names[c]!r}: {k}" for c, k in enumerate(self.unseen) if k)
+            warn(
+                f"values never seen in fitting were treated as unobserved: {report}",
+                UnseenCategoryWarning,
+            )
+        if self.impossible:
+            warn(
+                f"{self.impossible} rows have evidence of probability zero under the model "
+                f"(alpha=0 and a combination never seen in fitting); {impossible}. Fit with "
+                "alpha > 0 to give every combination some probability",
+                ImpossibleEvidenceWarning,
+            )
+
+
+def _f64(data: bytes) -> npt.NDArray[np.float64]:
+    return np.frombuffer(data, dtype="<f8")
+
+
+# -- posteriors ----------------------------------------------------------------------------------
+
+
+def predict_proba(model: DependencyTree, data: Any, target: str | int) -> npt.NDArray[np.float64]:
+    """The posterior of ``target`` in each row of ``data``, given the row's other columns.
+
+    Parameters
+    ----------
+    model : DependencyTree
+        A fitted model.
+    data : table, path or stream
+        Any source ``fit`` accepts, with any of the model's columns; the missing ones, nulls and
+        values without a code are unobserved. The ``target`` column, if present, is ignored.
+    target : str or int
+        The column to predict.
+
+    Returns
+    -------
+    ndarray of shape (n_rows, len(model.categories_[target]))
+        P(target = category | the row's observed columns), aligned with ``categories_``. Rows
+        whose evidence is impossible (alpha=0 only) are NaN, with an
+        ``ImpossibleEvidenceWarning``.
+    """
+    t = model._index(target)
+    engine = _engine(model)
+    names = _names(model)
+    tally = _Tally(names)
+    parts: list[npt.NDArray[np.float64]] = []
+    for label, batch in _read(open_source(data), names):
+        with located(label):
+            (table,), unseen, impossible = engine.posterior(
+                _evidence(batch, names, {names[t]}), [t]
+            )
+        tally.add(unseen, impossible)
+        parts.append(_f64(table))
+    tally.warn("their probabilities are NaN")
+    width = len(model.categories_[t])
+    return np.concatenate(parts).reshape(-1, width) if parts else np.zeros((0, width))
+
+
+def predict(model: DependencyTree, data: Any, target: str | int) -> pa.Array[Any]:
+    """The most probable value of ``target`` in each row of ``data`` (see :func:`predict_proba`).
+
+    Ties go to the first category in ``categories_`` order. The result has the fitted type of
+    ``target``; it is null where the most probable category is the null or "other" category (which
+    stands for many rare values) or where the evidence is impossible. A float column gets the
+    middle of its most probable bin.
+    """
+    t = model._index(target)
+    proba = predict_proba(model, data, target)
+    valid = ~np.isnan(proba).any(axis=1)
+    codes = np.where(valid, np.argmax(np.nan_to_num(proba, nan=-1.0), axis=1), _KEPT)
+    codes = codes.astype(np.uint16)
+    middles = _engine(model).bin_middles(t)
+    floats = None
+    if middles is not None:
+        table = np.append(np.asarray(middles, dtype=np.float64), np.nan)
+        floats = table[np.minimum(codes, len(middles))]
+    dtype = model._output_schema().field(t).type
+    return decode_column(codes, model.categories_[t], dtype, floats)
+
+
+def marginals(
+    model: DependencyTree, evidence: Mapping[str, Any] | None = None
+) -> dict[str, npt.NDArray[np.float64]]:
+    """Every column's posterior marginal given one set of evidence.
+
+    Parameters
+    ----------
+    model : DependencyTree
+        A fitted model.
+    evidence : dict, optional
+        Column name -> observed value (as it appears in the data; a float is placed in its bin).
+        ``None`` values are unobserved. Without evidence, the model's own marginals.
+
+    Returns
+    -------
+    dict of str -> ndarray
+        For each column, P(category | evidence) aligned with ``categories_``; an observed column
+        puts all its mass on its value. Impossible evidence raises ``DataError``.
+    """
+    names = _names(model)
+    batch = _one_row(model, evidence or {})
+    tables, unseen, impossible = _engine(model).posterior(batch, list(range(len(names))))
+    tally = _Tally(names)
+    tally.add(unseen)
+    tally.warn("")
+    if impossible:
+        raise DataError(_impossible_message(evidence or {}))
+    return {name: _f64(table).copy() for name, table in zip(names, tables, strict=True)}
+
+
+def _one_row(model: DependencyTree, evidence: Mapping[str, Any]) -> Any:
+    """One row of evidence with every model column (unobserved ones null)."""
+    if not isinstance(evidence, Mapping):
+        raise TypeError(f"evidence must be a dict of column -> value, got {evidence!r}")
+    names = _names(model)
+    unknown = [k for k in evidence if k not in names]
+    if unknown:
+        raise KeyError(f"{unknown} are not modelled columns; they are {names}")
+    arrays = []
+    for name in names:
+        value = evidence.get(name)
+        try:
+            arrays.append(pa.nulls(1) if value is None else pa.array([value]))
+        except (pa.ArrowInvalid, pa.ArrowTypeError) as e:
+            raise DataError(f"evidence for {name!r}: cannot read {value!r} as a value: {e}") from e
+    return pa.RecordBatch.from_arrays(arrays, names=names)
+
+
+def _impossible_message(evidence: Mapping[str, Any]) -> str:
+    return (
+        f"the evidence {dict(evidence)!r} has probability zero under the model (alpha=0 and a "
+        "combination never seen in fitting); fit with alpha > 0, or give other evidence"
+    )
+
+
+# -- filling in and sampling ---------------------------------------------------------------------
+
+
+def impute(
+    model: DependencyTree,
+    data: Any,
+    strategy: str = "joint",
+    random_state: RandomState = None,
+) -> pa.Table:
+    """Fill the nulls of the model's columns in ``data`` from the rest of each row.
+
+    Parameters
+    ----------
+    model : DependencyTree
+        A fitted model.
+    data : table, path or stream
+        Any source ``fit`` accepts. Columns the model does not know pass through unchanged.
+    strategy : {"joint", "marginal", "sample"}, default "joint"
+        ``"joint"``: the most probable completion of each row as a whole (max-product).
+        ``"marginal"``: each null cell's own most probable value. ``"sample"``: a draw from the
+        joint posterior of the row's null cells.
+    random_state : None, int, numpy.random.Generator or RandomState
+        For ``"sample"``: the same value gives the same rows, whatever the threads or batches.
+
+    Returns
+    -------
+    pyarrow.Table
+        ``data`` with its nulls (and NaNs) in modelled columns filled, types kept. Cells are
+        filled with concrete values only, never the null or "other" category: the posterior is
+        conditioned on every null cell holding one of the column's values. A float cell gets the
+        middle of its bin ("joint", "marginal") or a number drawn in it ("sample"). A model
+        column the data lacks is unobserved, not filled ("joint" maximises over it too). Rows
+        whose evidence is impossible (alpha=0 only) keep their nulls, with an
+        ``ImpossibleEvidenceWarning``.
+    """
+    from treewise.estimator import _seed
+
+    if strategy not in STRATEGIES:
+        raise ValueError(f"strategy must be one of {STRATEGIES}, got {strategy!r}")
+    engine = _engine(model)
+    names = _names(model)
+    seed = _seed(random_state) if strategy == "sample" else 0
+    tally = _Tally(names)
+    schema = model._output_schema()
+    out: list[pa.RecordBatch] = []
+    first = 0
+    source = open_source(data)
+    for label, batch in _read(source, None):
+        with located(label):
+            present = set(batch.schema.names)
+            fill = [c for c, name in enumerate(names) if name in present]
+            codes, floats, unseen, impossible = engine.impute(
+                _evidence(batch, names), fill, strategy, seed, first
+            )
+        tally.add(unseen, impossible)
+        filled = _filled(model, codes, floats, batch.num_rows, schema)
+        arrays = [
+            _merge(batch.column(i), filled[field.name]) if field.name in filled else batch.column(i)
+            for i, field in enumerate(batch.schema)
+        ]
+        out.append(pa.RecordBatch.from_arrays(arrays, names=batch.schema.names))
+        first += batch.num_rows
+    tally.warn("their nulls are left as they were")
+    if not out:
+        return pa.table({n: pa.nulls(0) for n in source.names})
+    return pa.Table.from_batches(out)
+
+
+def _filled(
+    model: DependencyTree,
+    codes: bytes,
+    floats: list[bytes | None],
+    n: int,
+    schema: pa.Schema,
+) -> dict[str, tuple[npt.NDArray[np.bool_], pa.Array[Any]]]:
+    """Per model column with any filled cell: (filled mask, decoded values of the fitted type)."""
+    matrix = np.frombuffer(codes, "<u2").reshape(len(model.categories_), n)
+    out = {}
+    for c, field in enumerate(schema):
+        mask = matrix[c] != _KEPT
+        if mask.any():
+            values = None if floats[c] is None else _f64(floats[c])  # type: ignore[arg-type]
+            out[field.name] = (
+                mask,
+                decode_column(matrix[c], model.categories_[c], field.type, values),
+            )
+    return out
+
+
+def _merge(original: pa.Array[Any], filled: tuple[npt.NDArray[np.bool_], pa.Array[Any]]) -> Any:
+    """``original`` with the filled cells replaced, in ``original``'s type when it can hold them."""
+    mask, values = filled
+    if pa.types.is_null(original.type):
+        return pc.if_else(pa.array(mask), values, pa.nulls(len(values), values.type))
+    try:
+        values = values.cast(original.type)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as e:
+        raise DataError(
+            f"cannot write filled values of type {values.type} into a column of type "
+            f"{original.type}: {e}"
+        ) from e
+    return pc.if_else(pa.array(mask), values, original)
+
+
+def sample_given(
+    model: DependencyTree,
+    n: int | None,
+    given: Mapping[str, Any] | Any,
+    random_state: RandomState = None,
+) -> pa.Table:
+    """Draw rows from the model conditioned on evidence.
+
+    Parameters
+    ----------
+    model : DependencyTree
+        A fitted model.
+    n : int or None
+        How many rows. With a table of evidence it may be None (one row per evidence row);
+        otherwise it must equal the table's row count.
+    given : dict or table
+        A dict of column -> value fixed in every row, or any source ``fit`` accepts with one row
+        of evidence per sampled row (nulls and absent columns are drawn).
+    random_state : None, int, numpy.random.Generator or RandomState
+        The same value gives the same rows, whatever the threads or batches.
+
+    Returns
+    -------
+    pyarrow.Table
+        The model's columns and types, as :meth:`DependencyTree.sample` returns them: the given
+        values where there was evidence, draws from P(unobserved | evidence) elsewhere (the
+        upward pass collects the evidence, then each column is drawn from the root down).
+        Impossible fixed evidence raises ``DataError``; impossible rows of a table stay null,
+        with an ``ImpossibleEvidenceWarning``.
+    """
+    from treewise.estimator import MAX_SAMPLE_ROWS, _check_int, _seed
+
+    engine = _engine(model)
+    names = _names(model)
+    seed = _seed(random_state)
+    schema = model._output_schema()
+    tally = _Tally(names)
+    out: list[pa.RecordBatch] = []
+    if isinstance(given, Mapping):
+        if n is None:
+            raise TypeError("sample_given needs n, the number of rows, with a dict of evidence")
+        n = _check_int("n", n, 0, MAX_SAMPLE_ROWS)
+        row = _one_row(model, given)
+        fixed = _as_output(row, schema)
+        for start in range(0, n, SAMPLE_ROWS):
+            count = min(SAMPLE_ROWS, n - start)
+            codes, floats, unseen, impossible = engine.sample_given(row, count, start, seed)
+            if impossible:
+                raise DataError(_impossible_message(given))
+            if start == 0:
+                tally.add(unseen)
+            repeated = fixed.take(np.zeros(count, dtype=np.int64))
+            out.append(_assemble(model, codes, floats, count, schema, repeated))
+    else:
+        source = open_source(given)
+        if n is not None and source.total_rows is not None and n != source.total_rows:
+            raise ValueError(f"n={n} but the evidence has {source.total_rows} rows; give n=None")
+        first = 0
+        for label, batch in _read(source, names):
+            evidence = _evidence(batch, names)
+            with located(label):
+                codes, floats, unseen, impossible = engine.sample_given(
+                    evidence, batch.num_rows, first, seed
+                )
+            tally.add(unseen, impossible)
+            given_rows = _as_output(evidence, schema)
+            out.append(_assemble(model, codes, floats, batch.num_rows, schema, given_rows))
+            first += batch.num_rows
+        if n is not None and n != first:
+            raise ValueError(f"n={n} but the evidence has {first} rows; give n=None")
+    tally.warn("their unobserved cells are left null")
+    return pa.Table.from_batches(out, schema=schema)
+
+
+def _as_output(batch: pa.RecordBatch, schema: pa.Schema) -> pa.RecordBatch:
+    """Evidence in the model's output types (absent columns all null)."""
+    arrays = []
+    for column, field in zip(batch.columns, schema, strict=True):
+        if pa.types.is_null(column.type):
+            arrays.append(pa.nulls(len(column), field.type))
+            continue
+        try:
+            arrays.append(column.cast(field.type))
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as e:
+            raise DataError(
+                f"evidence for {field.name!r} of type {column.type} does not fit the fitted type "
+                f"{field.type}: {e}"
+            ) from e
+    return pa.RecordBatch.from_arrays(arrays, schema=schema)
+
+
+def _assemble(
+    model: DependencyTree,
+    codes: bytes,
+    floats: list[bytes | None],
+    n: int,
+    schema: pa.Schema,
+    given: pa.RecordBatch,
+) -> pa.RecordBatch:
+    """Sampled cells over the given ones."""
+    filled = _filled(model, codes, floats, n, schema)
+    arrays = [
+        _merge(given.column(c), filled[f.name]) if f.name in filled else given.column(c)
+        for c, f in enumerate(schema)
+    ]
+    return pa.RecordBatch.from_arrays(arrays, schema=schema)
+
+
+# -- edge stability ------------------------------------------------------------------------------
+
+
+def edge_stability(
+    model: DependencyTree | Mapping[str, Any],
+    data: Any,
+    *,
+    n_resamples: int = 100,
+    method: str = "bootstrap",
+    min_frequency: float = 0.1,
+    random_state: RandomState = None,
+) -> pa.Table:
+    """How often each edge of the tree comes back when the rows are resampled and refitted.
+
+    Parameters
+    ----------
+    model : DependencyTree or dict
+        A DependencyTree (its parameters are used; it need not be fitted) or a dict of
+        DependencyTree parameters.
+    data : table, path or stream
+        The data, read into memory (resampling needs every row).
+    n_resamples : int, default 100
+        Refits.
+    method : {"bootstrap", "subsample"}, default "bootstrap"
+        ``"bootstrap"``: n rows drawn with replacement, so each refit sees as many rows as the
+        full fit. ``"subsample"``: half the rows, drawn without replacement. See
+        docs/inference.md for the choice.
+    min_frequency : float, default 0.1
+        Besides the full-data tree's edges, report every edge found in at least this share of
+        the refits.
+    random_state : None, int, numpy.random.Generator or RandomState
+        The resampling seed.
+
+    Returns
+    -------
+    pyarrow.Table
+        One row per edge, most stable first: ``column_a`` and ``column_b`` (in column order),
+        ``frequency`` (share of refits whose tree has the edge), ``in_full_tree`` and
+        ``mutual_info`` (on the full data, nats). Every refit uses the full fit's codebook, so
+        codes mean the same thing in all of them.
+    """
+    from treewise.estimator import DependencyTree, _check_int, _seed
+
+    if isinstance(model, DependencyTree):
+        params, make = model.get_params(), type(model)
+    elif isinstance(model, Mapping):
+        params, make = dict(model), DependencyTree
+    else:
+        raise TypeError(
+            f"model must be a DependencyTree or a dict of its parameters, got {model!r}"
+        )
+    n_resamples = _check_int("n_resamples", n_resamples, 1, 1_000_000)
+    if method not in METHODS:
+        raise ValueError(f"method must be one of {METHODS}, got {method!r}")
+    if not (isinstance(min_frequency, numbers.Real) and 0.0 <= float(min_frequency) <= 1.0):
+        raise ValueError(f"min_frequency must be between 0 and 1, got {min_frequency!r}")
+    table = read_table(data)
+    full = make(**params).fit(table)
+    n = table.num_rows
+    names = _names(full)
+    d = len(names)
+    rng = np.random.default_rng(_seed(random_state))
+    size = n if method == "bootstrap" else max(1, n // 2)
+    found = np.zeros((d, d), dtype=np.int64)
+    for _ in range(n_resamples):
+        rows = rng.integers(0, n, size) if method == "bootstrap" else rng.choice(n, size, False)
+        refit = make(**params).fit(table.take(pa.array(rows)), codebook=full.codebook_)
+        for child, parent in enumerate(refit.parent_):
+            if parent >= 0:
+                found[min(child, parent), max(child, parent)] += 1
+    frequency = found / n_resamples
+    tree = {(min(c, int(p)), max(c, int(p))) for c, p in enumerate(full.parent_) if p >= 0}
+    often = {(int(i), int(j)) for i, j in zip(*np.nonzero(frequency >= min_frequency), strict=True)}
+    edges = sorted(tree | {e for e in often if e[0] < e[1]}, key=lambda e: (-frequency[e], e))
+    return pa.table(
+        {
+            "column_a": pa.array([names[i] for i, _ in edges], pa.string()),
+            "column_b": pa.array([names[j] for _, j in edges], pa.string()),
+            "frequency": pa.array([float(frequency[e]) for e in edges], pa.float64()),
+            "in_full_tree": pa.array([e in tree for e in edges], pa.bool_()),
+            "mutual_info": pa.array(
+                [float(full.pairwise_mutual_info_[e]) for e in edges], pa.float64()
+            ),
+        }
+    )
+
+
+def read_table(data: Any, columns: list[str] | None = None) -> pa.Table:
+    """Any source (or an opened ``Source``) as one in-memory table; ``columns``: only these."""
+    source = data if isinstance(data, Source) else open_source(data)
+    if columns is not None:
+        columns = check_columns(source.names, columns, source.description)
+    batches = [batch for _, batch in _read(source, columns)]
+    if not batches:
+        return pa.table({c: pa.nulls(0) for c in (columns or source.names)})
+    tables = [pa.Table.from_batches([b]) for b in batches]
+    return pa.concat_tables(tables, promote_options="default")

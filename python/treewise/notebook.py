@@ -1,0 +1,70 @@
+"""A fitted model in a notebook: a compact HTML summary with the picture of the tree.
+
+``DependencyTree._repr_html_`` returns :func:`model_html`, so Jupyter and other notebook
+front ends show it when a model is the value of a cell. The HTML uses inline styles only (it
+lives inside someone else's page) and escapes every name.
+"""
+
+from __future__ import annotations
+
+import html
+from typing import TYPE_CHECKING
+
+from treewise.plot import INK, MUTED, figure_svg, plot_tree
+
+if TYPE_CHECKING:
+    from treewise.estimator import DependencyTree
+
+__all__ = ["NOTEBOOK_EDGES", "model_html"]
+
+#: The most edges drawn, and listed, in a notebook summary.
+NOTEBOOK_EDGES = 40
+#: How many of the strongest edges the summary lists.
+LISTED_EDGES = 5
+
+
+def model_html(model: DependencyTree) -> str:
+    """A compact HTML summary of ``model``: one line of facts, the tree, the strongest edges.
+
+    An unfitted model shows its ``repr``. Wide models draw only their strongest
+    ``NOTEBOOK_EDGES`` edges; ``treewise.plot.plot_tree`` draws any part of the tree.
+    """
+    if getattr(model, "_model", None) is None:
+        return f"<pre>{html.escape(repr(model))}</pre>"
+    names = [str(n) for n in model.feature_names_in_]
+    n_edges = int((model.parent_ >= 0).sum())
+    n_trees = len(names) - n_edges
+    facts = [
+        f"{len(names):,} columns",
+        f"{n_edges:,} edges" + (f" in {n_trees} trees" if n_trees > 1 else ""),
+        f"{int(model.n_rows_):,} rows",
+        f"{int(model.n_parameters_):,} free parameters",
+        f"alpha {float(model.alpha):g}",
+    ]
+    capped = n_edges > NOTEBOOK_EDGES
+    figure = plot_tree(model, max_edges=NOTEBOOK_EDGES if capped else None)
+    svg = figure_svg(figure, salt=f"treewise-notebook-{id(model)}")
+    edges = model.edges().to_pylist()
+    edges.sort(key=lambda e: -e["mutual_info"])
+    cell = "padding:2px 10px 2px 0;text-align:left"
+    rows = "".join(
+        f'<tr><td style="{cell}">{html.escape(e["parent"])} → {html.escape(e["child"])}</td>'
+        f'<td style="{cell};text-align:right">{e["mutual_info"]:.4f}</td></tr>'
+        for e in edges[:LISTED_EDGES]
+    )
+    listed = (
+        f'<table style="border-collapse:collapse;font-size:12px;margin-top:6px">'
+        f'<tr><th style="{cell}">strongest edges</th><th style="{cell}">MI (nats)</th></tr>'
+        f"{rows}</table>"
+        if rows
+        else ""
+    )
+    shown = f" (the {NOTEBOOK_EDGES} strongest edges drawn)" if capped else ""
+    return (
+        f'<div style="color:{INK};font-family:system-ui,sans-serif;font-size:13px">'
+        f"<div><b>DependencyTree</b> · {html.escape(' · '.join(facts))}"
+        f'<span style="color:{MUTED}">{shown}</span></div>'
+        f'<div style="max-width:100%;overflow-x:auto">'
+        f'<div style="max-width:900px">{svg}</div></div>'
+        f"{listed}</div>"
+    )

@@ -1,0 +1,241 @@
+//! Bindings of exact inference: posteriors, evidence likelihoods, imputation and conditional
+//! sampling over a fitted tree, each with the GIL released.
+
+use pyo3::prelude::*;
+use pyo3::types::PyBytes;
+use treewise_core::infer::{self, Filled, Inference, Strategy};
+use treewise_core::{io, Error};
+
+use crate::arrow_import::import_batch;
+use crate::buffers::le_bytes;
+use crate::errors::{detached, to_py};
+use crate::{PyCodebook, PyPairStats};
+
+/// Filled cells: (u16 codes column after column, 65535 where a cell was left as it was; per
+/// column the f64 bytes of numbers placed in float bins, or None; values without a code per
+/// column; rows whose evidence is impossible).
+type FilledTuple<'py> = (
+    Bound<'py, PyBytes>,
+    Vec<Option<Bound<'py, PyBytes>>>,
+    Vec<u64>,
+    u64,
+);
+
+/// A fitted tree prepared for exact inference.
+#[pyclass(name = "TreeInference", module = "treewise._core", frozen)]
+pub struct PyTreeInference {
+    inner: Inference,
+}
+
+fn filled<'py>(py: Python<'py>, f: &Filled, unseen: Vec<u64>) -> PyResult<FilledTuple<'py>> {
+    let parts: Vec<&[u16]> = f.codes.iter().map(Vec::as_slice).collect();
+    let floats = f
+        .floats
+        .iter()
+        .map(|v| v.as_ref().map(|v| le_bytes(py, &[v])).transpose())
+        .collect::<PyResult<_>>()?;
+    Ok((le_bytes(py, &parts)?, floats, unseen, f.impossible))
+}
+
+#[pymethods]
+impl PyTreeInference {
+    /// From a model file's bytes (validated before use); `backoff` pulls each child's table
+    /// toward its marginal by that many pseudo-rows (0: the model's own tables).
+    #[staticmethod]
+    #[pyo3(signature = (data, backoff = 0.0))]
+    fn from_bytes(py: Python<'_>, data: &[u8], backoff: f64) -> PyResult<Self> {
+        let inner = detached(py, || {
+            Inference::with_backoff(io::model_from_bytes(data)?, backoff)
+        })?;
+        Ok(PyTreeInference { inner })
+    }
+
+    /// The maximum spanning tree of `weights` (one per pair, in pair order), oriented from
+    /// `root`, with tables from `stats` counted with `codebook` (and `backoff` as above).
+    #[staticmethod]
+    #[allow(clippy::too_many_arguments)]
+    #[pyo3(signature = (codebook, stats, dtypes, weights, root, alpha, backoff = 0.0))]
+    fn from_weights(
+        py: Python<'_>,
+        codebook: &PyCodebook,
+        stats: &PyPairStats,
+        dtypes: Vec<String>,
+        weights: Vec<f64>,
+        root: usize,
+        alpha: f64,
+        backoff: f64,
+    ) -> PyResult<Self> {
+        let codebook = codebook.inner.clone();
+        let stats = &stats.inner;
+        let inner = detached(py, move || {
+            let model = infer::model_from_weights(codebook, dtypes, stats, weights, root, alpha)?;
+            Inference::with_backoff(model, backoff)
+        })?;
+        Ok(PyTreeInference { inner })
+    }
+
+    /// A given forest (`parent[c]` = -1 for a root) with tables from `stats`.
+    #[staticmethod]
+    fn from_parents(
+        py: Python<'_>,
+        codebook: &PyCodebook,
+        stats: &PyPairStats,
+        dtypes: Vec<String>,
+        parent: Vec<i64>,
+        alpha: f64,
+    ) -> PyResult<Self> {
+        let codebook = codebook.inner.clone();
+        let stats = &stats.inner;
+        let parent = parent
+            .iter()
+            .map(|&p| usize::try_from(p).ok())
+            .collect::<Vec<_>>();
+        let inner = detached(py, move || {
+            Inference::new(infer::model_from_parents(
+                codebook, dtypes, stats, parent, alpha,
+            )?)
+        })?;
+        Ok(PyTreeInference { inner })
+    }
+
+    /// The model file's bytes.
+    fn to_bytes<'py>(&self, py: Python<'py>) -> PyResult<Bound<'py, PyBytes>> {
+        let model = self.inner.model();
+        let bytes = detached(py, || Ok(io::model_to_bytes(model)))?;
+        Ok(PyBytes::new(py, &bytes))
+    }
+
+    /// Each column's parent, -1 for a root.
+    #[getter]
+    fn parent(&self) -> Vec<i64> {
+        self.inner
+            .model()
+            .parent()
+            .iter()
+            .map(|p| p.map_or(-1, |p| p as i64))
+            .collect()
+    }
+
+    #[getter]
+    fn alpha(&self) -> f64 {
+        self.inner.model().alpha()
+    }
+
+    /// The number inside each code's bin at its middle (None for a column that is not float;
+    /// NaN for the null code), as imputation fills float cells.
+    fn bin_middles(&self, c: usize) -> PyResult<Option<Vec<f64>>> {
+        let model = self.inner.model();
+        let card = *model
+            .codebook()
+            .cardinalities()
+            .get(c)
+            .ok_or_else(|| to_py(Error::Invalid(format!("no column {c}"))))?;
+        if model.value_in_bin(c, 0, 0.5).is_none() {
+            return Ok(None);
+        }
+        Ok(Some(
+            (0..card)
+                .map(|k| model.value_in_bin(c, k, 0.5).unwrap_or(f64::NAN))
+                .collect(),
+        ))
+    }
+
+    /// Posterior marginals of `targets` given a batch with the model's columns: (per target the
+    /// row-major n x r f64 bytes, NaN rows where the evidence is impossible; values without a
+    /// code per column; impossible rows).
+    #[allow(clippy::type_complexity)]
+    fn posterior<'py>(
+        &self,
+        py: Python<'py>,
+        batch: &Bound<'py, PyAny>,
+        targets: Vec<usize>,
+    ) -> PyResult<(Vec<Bound<'py, PyBytes>>, Vec<u64>, u64)> {
+        let batch = import_batch(batch)?;
+        let inf = &self.inner;
+        let (post, unseen) = detached(py, || {
+            let ev = inf.evidence(&batch)?;
+            Ok((inf.posterior(&ev, &targets)?, ev.unseen))
+        })?;
+        let tables = post
+            .tables
+            .iter()
+            .map(|t| le_bytes(py, &[t]))
+            .collect::<PyResult<_>>()?;
+        Ok((tables, unseen, post.impossible))
+    }
+
+    /// ln P(observed cells) per row (f64 bytes, -inf where impossible) and the values without a
+    /// code per column.
+    fn log_evidence<'py>(
+        &self,
+        py: Python<'py>,
+        batch: &Bound<'py, PyAny>,
+    ) -> PyResult<(Bound<'py, PyBytes>, Vec<u64>)> {
+        let batch = import_batch(batch)?;
+        let inf = &self.inner;
+        let (logz, unseen) = detached(py, || {
+            let ev = inf.evidence(&batch)?;
+            Ok((inf.log_evidence(&ev)?, ev.unseen))
+        })?;
+        Ok((le_bytes(py, &[&logz])?, unseen))
+    }
+
+    /// Fills the nulls of the columns in `fill` (indices) with strategy "joint", "marginal" or
+    /// "sample"; row i of the batch samples from stream `first_row + i` of `seed`.
+    #[allow(clippy::too_many_arguments)]
+    fn impute<'py>(
+        &self,
+        py: Python<'py>,
+        batch: &Bound<'py, PyAny>,
+        fill: Vec<usize>,
+        strategy: &str,
+        seed: u64,
+        first_row: u64,
+    ) -> PyResult<FilledTuple<'py>> {
+        let strategy = match strategy {
+            "joint" => Strategy::Joint,
+            "marginal" => Strategy::Marginal,
+            "sample" => Strategy::Sample,
+            other => {
+                return Err(to_py(Error::Invalid(format!(
+                    "strategy must be 'joint', 'marginal' or 'sample', got {other:?}"
+                ))))
+            }
+        };
+        let batch = import_batch(batch)?;
+        let inf = &self.inner;
+        let (f, unseen) = detached(py, || {
+            let ev = inf.evidence(&batch)?;
+            let mut flags = vec![false; ev.unseen.len()];
+            for c in fill {
+                *flags
+                    .get_mut(c)
+                    .ok_or_else(|| Error::Invalid(format!("no column {c}")))? = true;
+            }
+            Ok((
+                inf.impute(&ev, &flags, strategy, seed, first_row)?,
+                ev.unseen,
+            ))
+        })?;
+        filled(py, &f, unseen)
+    }
+
+    /// Draws `count` rows given a batch of evidence (one row for all, or one per row); the null
+    /// cells are drawn. Row i samples from stream `first_row + i` of `seed`.
+    fn sample_given<'py>(
+        &self,
+        py: Python<'py>,
+        batch: &Bound<'py, PyAny>,
+        count: usize,
+        first_row: u64,
+        seed: u64,
+    ) -> PyResult<FilledTuple<'py>> {
+        let batch = import_batch(batch)?;
+        let inf = &self.inner;
+        let (f, unseen) = detached(py, || {
+            let ev = inf.evidence(&batch)?;
+            Ok((inf.sample_given(&ev, count, first_row, seed)?, ev.unseen))
+        })?;
+        filled(py, &f, unseen)
+    }
+}
