@@ -167,6 +167,21 @@ def test_fit_options_reach_the_model(tmp_path: Path, data: dict[str, Path | str]
     assert len(model.categories_[2]) == 3  # session_seconds in three bins
 
 
+def test_fit_prunes_to_a_forest(tmp_path: Path, data: dict[str, Path | str]) -> None:
+    # weekday_bucket and site_language hang on different, weakly related parts of the hidden tree.
+    columns = "device,browser_family,weekday_bucket,support_chat"
+    tree, forest = tmp_path / "tree.treewise", tmp_path / "forest.treewise"
+    ok("fit", data["file"], "-o", tree, "--columns", columns, "--no-progress")
+    ok("fit", data["file"], "-o", forest, "--columns", columns, "--prune", "bic", "--no-progress")
+    full, pruned = treewise.load(tree), treewise.load(forest)
+    expected = treewise.DependencyTree(columns=columns.split(","), prune="bic")
+    expected.fit(data["file"])
+    assert list(pruned.parent_) == list(expected.parent_)
+    assert (full.parent_ == -1).sum() == 1
+    bad = run("fit", data["file"], "-o", tmp_path / "x.treewise", "--prune", "1.5")
+    assert bad.returncode == 2 and "--prune" in bad.stderr
+
+
 def test_fit_warns_on_one_line_when_values_are_capped(
     tmp_path: Path, data: dict[str, Path | str]
 ) -> None:

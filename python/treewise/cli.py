@@ -334,6 +334,19 @@ def cli(debug: bool) -> None:
     """
 
 
+def _prune(ctx: click.Context, param: click.Parameter, value: str | None) -> str | float | None:
+    """``--prune``: ``bic``, or a significance level strictly between 0 and 1."""
+    if value is None or value == "bic":
+        return value
+    try:
+        level = float(value)
+    except ValueError:
+        level = -1.0
+    if not 0.0 < level < 1.0:
+        raise click.BadParameter(f"give 'bic' or a level between 0 and 1, not {value!r}")
+    return level
+
+
 @cli.command(
     epilog="""\b
 Example:
@@ -382,6 +395,12 @@ Example:
     help="The column the tree hangs from (default: the first modelled one).",
 )
 @click.option(
+    "--prune",
+    callback=_prune,
+    metavar="bic|LEVEL",
+    help="Keep only edges that pay: 'bic', or a G-test significance level such as 0.01.",
+)
+@click.option(
     "--batch-rows", type=click.IntRange(min=1), metavar="N", help="Rows per batch read from disk."
 )
 @click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
@@ -394,6 +413,7 @@ def fit(
     bins: int,
     alpha: float,
     root: str | None,
+    prune: str | float | None,
     batch_rows: int | None,
     no_progress: bool,
 ) -> None:
@@ -407,7 +427,12 @@ def fit(
     _check_output(output)
     start = time.perf_counter()
     model = treewise.DependencyTree(
-        columns=chosen, max_categories=max_categories, n_bins=bins, root=root, alpha=alpha
+        columns=chosen,
+        max_categories=max_categories,
+        n_bins=bins,
+        root=root,
+        alpha=alpha,
+        prune=prune,
     )
     model.fit(_source(data), progress=_progress(no_progress), batch_rows=batch_rows)
     model.save(output)
