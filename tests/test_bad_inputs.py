@@ -211,12 +211,6 @@ def test_non_string_column_names_are_a_data_error() -> None:
     assert "df.columns.astype(str)" in str(e.value)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: a column name with a NUL character is cut at the NUL when the batch crosses "
-    "the Arrow C interface, so fit raises a SchemaError that compares ['a\\x00b'] with ['a'] "
-    "instead of saying that names may not contain NUL",
-)
 def test_column_name_with_a_nul_character_is_named_clearly() -> None:
     table = pa.table({"a\x00b": [1, 2, 1]})
     with pytest.raises(SchemaError, match="NUL"):
@@ -299,11 +293,6 @@ def test_bad_parameter_is_refused_before_reading(
     assert not isinstance(e.value, TreewiseError)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: DependencyTree.fit checks prune= (_check_prune) only after both passes over "
-    "the data, so prune=2 on a large source fails at the very end instead of at once",
-)
 def test_bad_prune_is_refused_before_reading() -> None:
     def untouchable() -> Iterator[pa.RecordBatch]:
         raise AssertionError("the data was read before prune= was checked")
@@ -491,13 +480,6 @@ FORGED_STATS = textwrap.dedent(
 )
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: PairStats.from_bytes on a 1 MB statistics file whose codebook declares two "
-    "columns of 65,535 codes allocates the 2**32-cell pair table (34 GB) before checking the "
-    "stored cells (stats.rs PairStats::from_parts calls PairStats::new first); the process "
-    "aborts on the failed allocation (SIGABRT) instead of raising CorruptModelError",
-)
 def test_statistics_file_declaring_huge_tables_is_refused_before_allocating() -> None:
     done = subprocess.run(
         [sys.executable, "-c", FORGED_STATS], capture_output=True, text=True, timeout=120
@@ -527,26 +509,11 @@ def wrapping_stats_file() -> bytes:
     return head + payload
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: stats.rs PairStats::from_parts checks row and column sums with wrapping u64 "
-    "sums, so a statistics file whose cells overflow to the marginals is accepted by "
-    "PairStats.from_bytes (release build; a debug build panics: 'attempt to add with overflow') "
-    "and later fails with a confusing error; it should be CorruptModelError",
-)
 def test_statistics_whose_counts_overflow_are_corrupt() -> None:
     with pytest.raises(CorruptModelError):
         treewise.PairStats.from_bytes(wrapping_stats_file())
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: codebook.rs CodebookBuilder::read does not check a column's counts and nulls "
-    "against the tally's rows, and ColumnTally::merge adds them unchecked: a tally of 1 row "
-    "claiming 2**64-1 values is accepted and its merge wraps (a debug build panics: 'attempt "
-    "to add with overflow'); it should be CorruptModelError (found by the cargo-fuzz target "
-    "`decode`)",
-)
 def test_tallies_whose_counts_exceed_their_rows_are_corrupt() -> None:
     payload = struct.pack("<QQQ", 1, 1, 1) + b"b" + struct.pack("<Q", 0)  # 1 row; column 'b'
     payload += bytes([1]) + struct.pack("<QQ", 2**64 - 1, 0)  # a bool tally: 2**64-1 false
@@ -555,12 +522,6 @@ def test_tallies_whose_counts_exceed_their_rows_are_corrupt() -> None:
         treewise._core.CodebookBuilder.from_bytes(head + payload)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: DependencyTree.from_stats on PairStats that counted no rows raises "
-    "CorruptModelError ('the model is inconsistent: 3 columns and 0 rows'), as if a file were "
-    "damaged; it should be a DataError saying the statistics hold 0 rows",
-)
 def test_from_stats_of_no_rows_is_a_data_error(model: DependencyTree) -> None:
     with pytest.raises(DataError, match="0 rows"):
         DependencyTree.from_stats(treewise.PairStats(model.codebook_))
@@ -672,12 +633,6 @@ def test_failing_score_to_parquet_leaves_no_file(model: DependencyTree, tmp_path
     assert list(tmp_path.iterdir()) == []
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: score_to_parquet(keys='session_id') calls list(keys) before checking that keys "
-    "is not a string, so a single name is split into letters and the user gets a SchemaError "
-    "about columns ['s', 'e', ...] instead of the TypeError the code means to raise",
-)
 def test_keys_given_as_one_string_is_a_type_error(model: DependencyTree, tmp_path: Path) -> None:
     with pytest.raises(TypeError, match="keys= must be a list of column names"):
         model.score_to_parquet(small_table(), tmp_path / "scores.parquet", keys="ab")

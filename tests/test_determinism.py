@@ -159,14 +159,6 @@ def test_files_batches_and_streams_change_no_byte(
     assert model_bytes(fit(reader), tmp_path / "stream.treewise") == want
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="BUG: a one-shot stream is spooled with dictionaries decoded to plain values, and the "
-    "counting pass over the spool records those plain types too (passes.py count_pairs -> "
-    "TypeRecorder.see -> widen), so a dictionary column fitted from a RecordBatchReader is "
-    "stored as 'string', not 'dictionary<int32,string>' as fit(table) stores it: the model "
-    "bytes differ and sample() returns another type",
-)
 def test_a_stream_of_dictionary_columns_changes_no_byte(
     data: pa.Table, reference: bytes, tmp_path: Path
 ) -> None:

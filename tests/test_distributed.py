@@ -151,7 +151,7 @@ def test_fit_dask_without_a_client_in_a_fresh_process() -> None:
 def client() -> Iterator[distributed.Client]:
     with (
         distributed.LocalCluster(
-            n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None
+            n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0"
         ) as cluster,
         distributed.Client(cluster) as c,
     ):

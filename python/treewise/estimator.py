@@ -215,6 +215,7 @@ class DependencyTree(Params):
         max_categories = _check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
         n_bins = _check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
         alpha = _check_alpha(self.alpha)
+        kind, level = _check_prune(self.prune)
         rows = _check_int("batch_rows", BATCH_ROWS if batch_rows is None else batch_rows, 1, 2**31)
         source = open_source(data)
         given = _as_codebook(codebook)
@@ -229,7 +230,9 @@ class DependencyTree(Params):
                     counting,
                 ):
                     stats = _core.PairStats(learned)
-                    count_pairs(counting, names, learned, stats, rows, bar, types)
+                    # A spooled stream holds decoded values: its types say nothing new.
+                    seen = types if counting is source else TypeRecorder(names)
+                    count_pairs(counting, names, learned, stats, rows, bar, seen)
                     chosen = learned
             else:
                 chosen = given.select(names)
@@ -239,7 +242,6 @@ class DependencyTree(Params):
             raise DataError(
                 f"{source.description} has 0 rows; a dependency tree needs at least one"
             )
-        kind, level = _check_prune(self.prune)
         self._set_model(
             _core.TreeModel.fit(chosen, stats, types.type_names(chosen), root, alpha, kind, level)
         )
@@ -299,6 +301,8 @@ class DependencyTree(Params):
         prune: str | float | None = None,
     ) -> DependencyTree:
         """Build a fitted model from pair statistics (for example merged from many workers)."""
+        if stats.n_rows == 0:
+            raise DataError("these PairStats have counted 0 rows; a model needs at least one")
         estimator = cls(columns=list(stats.columns), root=root, alpha=alpha, prune=prune)
         names = list(stats.columns)
         index = estimator._root_index(names)
@@ -519,9 +523,9 @@ class DependencyTree(Params):
             modelled column.
         """
         top = _check_int("top", top, 0, 1_000_000)
-        keys = list(keys)
         if isinstance(keys, str) or not all(isinstance(k, str) for k in keys):
             raise TypeError(f"keys= must be a list of column names, got {keys!r}")
+        keys = list(keys)
         names = [str(n) for n in self.feature_names_in_]
         scored = self._scored(data, surprisal or top > 0, keys, batch_rows, progress)
         return write_scores(scored, path, names, keys, surprisal, top)

@@ -116,6 +116,11 @@ def select_columns(table: pa.Table, columns: Sequence[str] | None) -> pa.Table:
 
 def check_columns(names: Sequence[str], columns: Sequence[str] | None, where: str) -> list[str]:
     """The columns to read from data that has ``names``: all of them, or ``columns``, checked."""
+    nul = [n for n in names if "\x00" in n]
+    if nul:
+        raise SchemaError(
+            f"column names may not contain the NUL character, but {where} has {nul!r}; rename them"
+        )
     counts = Counter(names)
     duplicated = sorted(n for n, k in counts.items() if k > 1)
     if columns is None:

@@ -717,6 +717,20 @@ impl ColumnTally {
         self.check_distinct()
     }
 
+    /// The number of non-null values counted (None on overflow).
+    fn total(&self) -> Option<u64> {
+        let sum =
+            |mut it: Box<dyn Iterator<Item = u64> + '_>| it.try_fold(0u64, |a, c| a.checked_add(c));
+        match &self.tally {
+            Tally::Unknown => Some(0),
+            Tally::Bool(c) => c[0].checked_add(c[1]),
+            Tally::Int(m) => sum(Box::new(m.values().copied())),
+            Tally::UInt(m) => sum(Box::new(m.values().copied())),
+            Tally::Str(m) => sum(Box::new(m.values().copied())),
+            Tally::Float(f) => Some(f.n),
+        }
+    }
+
     /// Refuses a categorical column whose distinct values pass [`DISTINCT_LIMIT`].
     fn check_distinct(&self) -> Result<()> {
         let distinct = match &self.tally {
@@ -921,10 +935,14 @@ impl CodebookBuilder {
                 "cannot merge codebook tallies of columns {mine:?} and {theirs:?}"
             )));
         }
+        // Each side's counts add up to its rows, so no count can overflow once the rows do not.
+        let rows = self.rows.checked_add(other.rows).ok_or_else(|| {
+            Error::ResourceLimit("the merged tallies would count more than 2^64 rows".into())
+        })?;
         for (a, b) in self.columns.iter_mut().zip(&other.columns) {
             a.merge(b)?;
         }
-        self.rows += other.rows;
+        self.rows = rows;
         Ok(())
     }
 
@@ -1090,6 +1108,10 @@ impl CodebookBuilder {
             };
             let col = ColumnTally { name, tally, nulls };
             col.check_distinct()?;
+            // Every row is a value or a null: with this checked, no later sum can overflow.
+            if col.total().and_then(|t| t.checked_add(col.nulls)) != Some(rows) {
+                return Err(corrupt_tally("a column's counts do not add up to the rows"));
+            }
             columns.push(col);
         }
         Ok(CodebookBuilder { columns, rows })

@@ -30,13 +30,16 @@ pub const KERNEL_ENV: &str = "TREEWISE_KERNEL";
 /// Rows counted at once: bounds the memory of bitsets, row lists and sparse entries, and keeps
 /// every block-local u32 counter and u32 row index far from overflow.
 const CHUNK_ROWS: usize = 1 << 22;
-/// The bitset memory one block of rows aims at (in u64 words: 512 KiB, so that the bitsets of a
-/// block stay in a core's L2 cache while every tile reads them).
-const BITSET_BUDGET_WORDS: usize = 1 << 16;
+/// The bitset memory one block of rows may take (in u64 words: 16 MiB). Longer blocks amortise
+/// each tile's set-up; the tiles stream their partners' bitsets from cache.
+const BITSET_BUDGET_WORDS: usize = 1 << 21;
 /// The longest bitset of one block, in u64 words (32,768 rows: 4 KiB, so a tile stays in L1).
 const BITSET_MAX_WORDS: usize = 512;
-/// Rows of one sparse sub-block (row numbers within it fit in u16).
-const SPARSE_BLOCK_ROWS: usize = 4096;
+/// Rows of one sparse sub-block, at most (row numbers within it fit in u16); fewer when rows hold
+/// many entries, so that a block's entries take about 8 MiB.
+const SPARSE_BLOCK_ROWS: usize = 1 << 15;
+/// Entries (non-dominant column levels) one sparse sub-block aims at.
+const SPARSE_BLOCK_ENTRIES: usize = 1 << 20;
 /// The largest table the histogram kernel gives block-local counters (16 MiB of u32).
 const HISTOGRAM_MAX_CELLS: usize = 1 << 22;
 /// Rows per histogram block, at least (block-local u32 counters are merged after each block).
@@ -136,7 +139,7 @@ impl Popcount {
     /// Estimated nanoseconds per (table cell x 64 rows) on one thread.
     fn cost_per_cell_word(self) -> f64 {
         match self {
-            Popcount::Avx2 => 0.2,
+            Popcount::Avx2 => 0.25,
             Popcount::Popcnt => 0.45,
             Popcount::Portable => 1.0,
         }
@@ -715,6 +718,8 @@ struct SparseSet {
     /// Start of each member pair's `k_p x k_q` cells, in pair-index order over members.
     off: Vec<usize>,
     total: usize,
+    /// Rows per sub-block.
+    block_rows: usize,
 }
 
 impl SparseSet {
@@ -752,16 +757,23 @@ fn count_cooc(ctx: &Ctx<'_>, pairs: Vec<PairTable<'_>>) -> Result<()> {
         }
     }
     let total = off.last().copied().unwrap_or(0);
+    let n = ctx.n();
+    let entries: u64 = cols
+        .iter()
+        .map(|&c| n as u64 - ctx.m[c][usize::from(ctx.dominant[c])])
+        .sum();
+    let per_row = (entries / (n as u64).max(1)) as usize + 1;
+    let block_rows = (SPARSE_BLOCK_ENTRIES / per_row).clamp(256, SPARSE_BLOCK_ROWS) / 32 * 32;
     let set = SparseSet {
         cols,
         dom,
         k,
         off,
         total,
+        block_rows,
     };
     // One contiguous range of rows per thread, each with its own u32 counters.
-    let n = ctx.n();
-    let parts = rayon::current_num_threads().clamp(1, n.div_ceil(SPARSE_BLOCK_ROWS).max(1));
+    let parts = rayon::current_num_threads().clamp(1, n.div_ceil(set.block_rows).max(1));
     let ranges: Vec<Range<usize>> = (0..parts)
         .map(|t| (n * t / parts)..(n * (t + 1) / parts))
         .collect();
@@ -788,6 +800,22 @@ fn count_cooc(ctx: &Ctx<'_>, pairs: Vec<PairTable<'_>>) -> Result<()> {
             let (di, dj) = (set.dom[pi], set.dom[pj]);
             let start = set.off[pair_index(s, pi, pj)];
             let kq = set.k[pj];
+            if ri == 2 && rj == 2 {
+                // Two binary columns: one counted cell, three from the marginals.
+                let (a, b) = (1 - usize::from(di), 1 - usize::from(dj));
+                let (di, dj) = (usize::from(di), usize::from(dj));
+                let (mi, mj) = (&ctx.m[p.i], &ctx.m[p.j]);
+                let both = inner[start];
+                let short = || internal("a pair table exceeds a marginal");
+                let a_only = mi[a].checked_sub(both).ok_or_else(short)?;
+                let b_only = mj[b].checked_sub(both).ok_or_else(short)?;
+                let neither = mi[di].checked_sub(b_only).ok_or_else(short)?;
+                p.table[a * 2 + b] += both;
+                p.table[a * 2 + dj] += a_only;
+                p.table[di * 2 + b] += b_only;
+                p.table[di * 2 + dj] += neither;
+                return Ok(());
+            }
             local.clear();
             local.resize(ri * rj, 0);
             for a in 0..ri {
@@ -830,7 +858,7 @@ fn cooc_range(ctx: &Ctx<'_>, set: &SparseSet, range: Range<usize>) -> Vec<u32> {
     let mut starts: Vec<u32> = Vec::new();
     let mut block = range.start;
     while block < range.end {
-        let end = (block + SPARSE_BLOCK_ROWS).min(range.end);
+        let end = (block + set.block_rows).min(range.end);
         let len = end - block;
         ent_row.clear();
         ent_val.clear();

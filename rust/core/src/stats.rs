@@ -79,8 +79,20 @@ impl PairStats {
         marginals: Vec<Vec<u64>>,
         cells: Vec<u64>,
     ) -> Result<Self> {
-        let mut stats = PairStats::new(cards)?;
         let bad = |what: String| Err(Error::CorruptModel(format!("pair statistics: {what}")));
+        // The cell count follows from the cardinalities: check it before allocating anything,
+        // so that a file cannot ask for more memory than its own size.
+        if cell_count(&cards) != cells.len() as u64 {
+            return bad(format!(
+                "{} table cells where the cardinalities call for {}",
+                cells.len(),
+                cell_count(&cards)
+            ));
+        }
+        if let Some(c) = cells.iter().find(|c| **c > n_rows) {
+            return bad(format!("a table cell counts {c} rows of {n_rows}"));
+        }
+        let mut stats = PairStats::new(cards)?;
         if marginals.len() != stats.cards.len() {
             return bad(format!(
                 "{} marginals for {} columns",
@@ -116,16 +128,18 @@ impl PairStats {
             let t = stats.table(i, j);
             let rj = stats.cards[j];
             for a in 0..stats.cards[i] {
-                let row: u64 = t[a * rj..(a + 1) * rj].iter().sum();
-                if row != stats.marginals[i][a] {
+                let row = t[a * rj..(a + 1) * rj]
+                    .iter()
+                    .try_fold(0u64, |x, c| x.checked_add(*c));
+                if row != Some(stats.marginals[i][a]) {
                     return bad(format!(
                         "the table of columns {i} and {j} disagrees with column {i}'s counts"
                     ));
                 }
             }
             for b in 0..rj {
-                let col: u64 = (0..stats.cards[i]).map(|a| t[a * rj + b]).sum();
-                if col != stats.marginals[j][b] {
+                let col = (0..stats.cards[i]).try_fold(0u64, |x, a| x.checked_add(t[a * rj + b]));
+                if col != Some(stats.marginals[j][b]) {
                     return bad(format!(
                         "the table of columns {i} and {j} disagrees with column {j}'s counts"
                     ));
