@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import itertools
 from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import treewise
 
 
 def reference_columns(table: pa.Table) -> dict[str, np.ndarray[Any, Any]]:
@@ -26,3 +28,28 @@ def reference_columns(table: pa.Table) -> dict[str, np.ndarray[Any, Any]]:
             array[:] = values
             out[name] = array
     return out
+
+
+def model_summary(model: treewise.DependencyTree) -> dict[str, Any]:
+    """Everything a fit determines, in plain Python values, to compare two fits exactly."""
+    names = list(model.feature_names_in_)
+    return {
+        "names": names,
+        "n_rows": model.n_rows_,
+        "parent": model.parent_.tolist(),
+        "categories": model.categories_,
+        "kinds": [[type(v) for v in c] for c in model.categories_],
+        "pairwise": model.pairwise_mutual_info_.tolist(),
+        "joints": {
+            (a, b): model.joint_counts(a, b).tolist()
+            for a, b in itertools.combinations_with_replacement(names, 2)
+        },
+    }
+
+
+def assert_same_model(got: treewise.DependencyTree, want: treewise.DependencyTree) -> None:
+    """Two fits agree exactly: counts, codes, tree and weights."""
+    g, w = model_summary(got), model_summary(want)
+    for key in w:
+        assert g[key] == w[key], key
+    assert got.codebook_ == want.codebook_

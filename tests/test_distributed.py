@@ -25,6 +25,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from conftest import assert_same_model
 from dask.delayed import delayed
 from treewise import (
     CategoryCapWarning,
@@ -49,29 +50,6 @@ def _float_frame(n: int, seed: int) -> pd.DataFrame:
     level = (x > 0).astype(np.int64) + (rng.random(n) < 0.2)
     shade = pd.Categorical(np.where(y > 0, "light", "dark"))
     return pd.DataFrame({"x": x, "y": y, "level": level, "shade": shade})
-
-
-def _summary(model: DependencyTree) -> dict[str, Any]:
-    names = list(model.feature_names_in_)
-    return {
-        "names": names,
-        "n_rows": model.n_rows_,
-        "parent": model.parent_.tolist(),
-        "categories": model.categories_,
-        "kinds": [[type(v) for v in c] for c in model.categories_],
-        "pairwise": model.pairwise_mutual_info_.tolist(),
-        "joints": {
-            (a, b): model.joint_counts(a, b).tolist()
-            for a, b in itertools.combinations_with_replacement(names, 2)
-        },
-    }
-
-
-def _assert_same_model(got: DependencyTree, want: DependencyTree) -> None:
-    g, w = _summary(got), _summary(want)
-    for key in w:
-        assert g[key] == w[key], key
-    assert got.codebook_ == want.codebook_
 
 
 def _ran_on(client: distributed.Client, tasks: list[dict[str, Any]]) -> dict[str, int]:
@@ -164,7 +142,7 @@ def test_partitions_equal_the_local_fit(client: distributed.Client) -> None:
         model = fit_dask(ddf, columns=COLUMNS)
     kinds = _ran_on(client, stream.data)
     assert kinds.get("_tally", 0) >= 7 and kinds.get("_count", 0) >= 7
-    _assert_same_model(model, DependencyTree(columns=COLUMNS).fit(FRAME))
+    assert_same_model(model, DependencyTree(columns=COLUMNS).fit(FRAME))
     # Scoring and sampling work off the merged counts like a local model's.
     local = DependencyTree(columns=COLUMNS).fit(FRAME)
     assert np.array_equal(model.score_samples(SESSIONS), local.score_samples(SESSIONS))
@@ -175,7 +153,7 @@ def test_split_every_does_not_change_the_result(client: distributed.Client) -> N
     ddf = dd.from_pandas(FRAME, npartitions=9)
     want = DependencyTree(columns=COLUMNS).fit(FRAME)
     for split_every in (2, 3, 1024):
-        _assert_same_model(fit_dask(ddf, columns=COLUMNS, split_every=split_every), want)
+        assert_same_model(fit_dask(ddf, columns=COLUMNS, split_every=split_every), want)
 
 
 def test_filtered_partitions_equal_the_local_fit(client: distributed.Client) -> None:
@@ -184,7 +162,7 @@ def test_filtered_partitions_equal_the_local_fit(client: distributed.Client) -> 
     sizes = kept.map_partitions(len).compute().tolist()
     assert len(sizes) == 7 and min(sizes) > 0
     want = DependencyTree(columns=COLUMNS).fit(FRAME[FRAME.session_id % 3 == 0])
-    _assert_same_model(fit_dask(kept, columns=COLUMNS), want)
+    assert_same_model(fit_dask(kept, columns=COLUMNS), want)
 
 
 def test_empty_partitions_are_harmless(client: distributed.Client) -> None:
@@ -196,11 +174,11 @@ def test_empty_partitions_are_harmless(client: distributed.Client) -> None:
     want = DependencyTree(columns=COLUMNS).fit(
         FRAME[(FRAME.session_id < low) | (FRAME.session_id >= high)]
     )
-    _assert_same_model(fit_dask(kept, columns=COLUMNS), want)
+    assert_same_model(fit_dask(kept, columns=COLUMNS), want)
     # Empty partitions first, too: the merge must not take its column types from them.
     late = ddf[ddf.session_id >= FRAME.session_id.iloc[5000]]
     assert late.map_partitions(len).compute().tolist()[:3] == [0, 0, 0]
-    _assert_same_model(
+    assert_same_model(
         fit_dask(late, columns=COLUMNS), DependencyTree(columns=COLUMNS).fit(FRAME[5000:])
     )
 
@@ -215,7 +193,7 @@ def test_float_columns_bin_identically(client: distributed.Client) -> None:
     frame = _float_frame(20_000, 2)
     want = DependencyTree(n_bins=16).fit(frame)
     got = fit_dask(dd.from_pandas(frame, npartitions=7), n_bins=16)
-    _assert_same_model(got, want)
+    assert_same_model(got, want)
     # x: 16 bins; y: 16 bins and the null code (NaN is null).
     assert [len(c) for c in got.categories_[:2]] == [16, 17]
     assert got.categories_[1][-1] is None
@@ -241,7 +219,7 @@ def test_more_distinct_floats_than_the_exact_tally_keeps(client: distributed.Cli
     # Coarsened edges are truncated values, not all of them data values: the path was taken.
     edges = np.array([b.low for b in want.categories_[0][1:]])
     assert not np.isin(edges, frame["x"].to_numpy()).all()
-    _assert_same_model(fit_dask(ddf, n_bins=12), want)
+    assert_same_model(fit_dask(ddf, n_bins=12), want)
 
 
 def test_parquet_directory_equals_the_local_fit(client: distributed.Client, tmp_path: Path) -> None:
@@ -260,12 +238,12 @@ def test_parquet_directory_equals_the_local_fit(client: distributed.Client, tmp_
         pq.write_table(piece, tmp_path / f"part-{k}.parquet", row_group_size=400)
     (tmp_path / "_SUCCESS").write_text("")
     want = DependencyTree(columns=COLUMNS).fit(tmp_path)
-    _assert_same_model(want, DependencyTree(columns=COLUMNS).fit(SESSIONS))
+    assert_same_model(want, DependencyTree(columns=COLUMNS).fit(SESSIONS))
     with distributed.get_task_stream(client) as stream:
         got = fit_dask(str(tmp_path), columns=COLUMNS)
     assert _ran_on(client, stream.data).get("_tally", 0) == 4
-    _assert_same_model(got, want)
-    _assert_same_model(fit_dask(str(tmp_path / "part-*.parquet"), columns=COLUMNS), want)
+    assert_same_model(got, want)
+    assert_same_model(fit_dask(str(tmp_path / "part-*.parquet"), columns=COLUMNS), want)
 
 
 def test_file_with_an_all_null_column_first(client: distributed.Client, tmp_path: Path) -> None:
@@ -273,7 +251,7 @@ def test_file_with_an_all_null_column_first(client: distributed.Client, tmp_path
     pq.write_table(pa.table({"k": pa.nulls(4), "s": ["a", "b", "a", "c"]}), tmp_path / "a.parquet")
     pq.write_table(table, tmp_path / "b.parquet")
     want = DependencyTree().fit(tmp_path)
-    _assert_same_model(fit_dask(str(tmp_path)), want)
+    assert_same_model(fit_dask(str(tmp_path)), want)
 
 
 def test_files_whose_integer_width_grows(client: distributed.Client, tmp_path: Path) -> None:
@@ -282,7 +260,7 @@ def test_files_whose_integer_width_grows(client: distributed.Client, tmp_path: P
     pq.write_table(narrow, tmp_path / "a.parquet")
     pq.write_table(wide, tmp_path / "b.parquet")
     want = DependencyTree().fit(pa.concat_tables([narrow.cast(wide.schema), wide]))
-    _assert_same_model(fit_dask(str(tmp_path)), want)
+    assert_same_model(fit_dask(str(tmp_path)), want)
 
 
 def test_category_cap_warns_on_the_driver_like_a_local_fit(client: distributed.Client) -> None:
@@ -294,7 +272,7 @@ def test_category_cap_warns_on_the_driver_like_a_local_fit(client: distributed.C
     with pytest.warns(CategoryCapWarning) as record:
         got = fit_dask(ddf, columns=COLUMNS, max_categories=4)
     assert sorted(str(w.message) for w in record) == sorted(str(w.message) for w in local_warnings)
-    _assert_same_model(got, want)
+    assert_same_model(got, want)
 
 
 def test_category_cap_warning_points_at_the_callers_line(client: distributed.Client) -> None:
@@ -359,4 +337,4 @@ def test_synchronous_scheduler_bypasses_the_client(client: distributed.Client) -
     with distributed.get_task_stream(client) as stream, dask.config.set(scheduler="synchronous"):
         got = fit_dask(dd.from_pandas(frame, npartitions=4))
     assert stream.data == []
-    _assert_same_model(got, DependencyTree().fit(frame))
+    assert_same_model(got, DependencyTree().fit(frame))

@@ -26,6 +26,7 @@ import pyarrow.dataset as pads
 import pyarrow.parquet as pq
 import pytest
 import treewise.progress
+from conftest import assert_same_model
 from treewise import (
     OTHER,
     CategoryCapWarning,
@@ -75,29 +76,6 @@ def _truth(n: int = N_ROWS, seed: int = 11) -> pa.Table:
 
 
 TRUTH = _truth()
-
-
-def _summary(model: DependencyTree) -> dict[str, Any]:
-    names = list(model.feature_names_in_)
-    return {
-        "names": names,
-        "n_rows": model.n_rows_,
-        "parent": model.parent_.tolist(),
-        "categories": model.categories_,
-        "kinds": [[type(v) for v in c] for c in model.categories_],
-        "pairwise": model.pairwise_mutual_info_.tolist(),
-        "joints": {
-            (a, b): model.joint_counts(a, b).tolist()
-            for a, b in itertools.combinations_with_replacement(names, 2)
-        },
-    }
-
-
-def _assert_same_model(got: DependencyTree, want: DependencyTree) -> None:
-    g, w = _summary(got), _summary(want)
-    for key in w:
-        assert g[key] == w[key], key
-    assert got.codebook_ == want.codebook_
 
 
 @pytest.fixture(scope="module")
@@ -220,7 +198,7 @@ def test_streamed_fit_over_files_is_bit_identical(
     parts: list[Path], reference: DependencyTree, batch_rows: int
 ) -> None:
     model = DependencyTree().fit(parts, batch_rows=batch_rows, progress=False)
-    _assert_same_model(model, reference)
+    assert_same_model(model, reference)
     streamed = PairStats.from_source(parts, model.codebook_, batch_rows=batch_rows)
     in_memory = PairStats.from_source(TRUTH, model.codebook_)
     assert streamed == in_memory
@@ -241,13 +219,13 @@ def test_directory_glob_and_dataset_read_the_same_rows(
         pads.dataset([str(p) for p in parts], format="parquet"),
     ]
     for form in forms:
-        _assert_same_model(DependencyTree().fit(form, batch_rows=100), reference)
+        assert_same_model(DependencyTree().fit(form, batch_rows=100), reference)
 
 
 def test_in_memory_dataset_is_read_through_its_scanner(reference: DependencyTree) -> None:
     dataset = pads.dataset(TRUTH.to_batches(max_chunksize=333))
     assert not isinstance(dataset, pads.FileSystemDataset)
-    _assert_same_model(DependencyTree().fit(dataset, batch_rows=50), reference)
+    assert_same_model(DependencyTree().fit(dataset, batch_rows=50), reference)
 
 
 def test_csv_files_stream_like_the_table(tmp_path: Path) -> None:
@@ -257,7 +235,7 @@ def test_csv_files_stream_like_the_table(tmp_path: Path) -> None:
     pacsv.write_csv(table.slice(0, half), tmp_path / "a.csv")
     pacsv.write_csv(table.slice(half), tmp_path / "b.csv")
     model = DependencyTree().fit(tmp_path, batch_rows=97)
-    _assert_same_model(model, DependencyTree().fit(table))
+    assert_same_model(model, DependencyTree().fit(table))
     assert PairStats.from_source(tmp_path, model.codebook_) == PairStats.from_source(
         table, model.codebook_
     )
@@ -276,7 +254,7 @@ def test_arrow_ipc_file_and_stream_formats(tmp_path: Path, reference: Dependency
             region = _dictionary(piece["region"].combine_chunks(), rng, ["sea"])
             writer.write_table(_recast(piece, region=region))
     model = DependencyTree().fit([tmp_path / "a.arrow", tmp_path / "b.arrows"], batch_rows=90)
-    _assert_same_model(model, reference)
+    assert_same_model(model, reference)
 
 
 # -- one-shot streams ----------------------------------------------------------------------------
@@ -299,7 +277,7 @@ def test_stream_is_spooled_once_and_the_spool_is_removed(
         seen_during.append(sorted(os.listdir(spool_dir)))
 
     model = DependencyTree().fit(generate(), batch_rows=50)
-    _assert_same_model(model, reference)
+    assert_same_model(model, reference)
     # While the stream was read, the spool file existed in the (patched) temp directory...
     assert len(seen_during) == 1 and len(seen_during[0]) == 1
     assert seen_during[0][0].startswith("treewise-spool-")
@@ -312,7 +290,7 @@ def test_record_batch_reader_fits_like_the_table(
 ) -> None:
     monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
     reader = pa.RecordBatchReader.from_batches(TRUTH.schema, _batches(TRUTH, 200))
-    _assert_same_model(DependencyTree().fit(reader, batch_rows=64), reference)
+    assert_same_model(DependencyTree().fit(reader, batch_rows=64), reference)
     assert os.listdir(tmp_path) == []
 
 
@@ -342,7 +320,7 @@ def test_stream_whose_batches_change_dictionary(
         if k != 2:
             region = _dictionary(region, rng, ["extra"])
         batches.append(batch.set_column(0, "region", region))
-    _assert_same_model(DependencyTree().fit(iter(batches)), reference)
+    assert_same_model(DependencyTree().fit(iter(batches)), reference)
     assert os.listdir(tmp_path) == []
 
 
@@ -351,7 +329,7 @@ def test_reader_over_parquet_row_groups_with_different_dictionaries(
 ) -> None:
     file = pq.ParquetFile(parts[0])
     reader = pa.RecordBatchReader.from_batches(file.schema_arrow, file.iter_batches(batch_size=100))
-    _assert_same_model(DependencyTree().fit(reader), DependencyTree().fit(parts[0]))
+    assert_same_model(DependencyTree().fit(reader), DependencyTree().fit(parts[0]))
 
 
 def test_stream_with_a_codebook_is_read_once_without_a_spool(
@@ -365,7 +343,7 @@ def test_stream_with_a_codebook_is_read_once_without_a_spool(
         listed.append(os.listdir(tmp_path))
 
     model = DependencyTree().fit(generate(), codebook=reference)
-    _assert_same_model(model, reference)
+    assert_same_model(model, reference)
     assert listed == [[]]
     stats = PairStats.from_source(iter(_batches(TRUTH, 500)), reference.codebook_)
     assert stats == PairStats.from_source(TRUTH, reference.codebook_)
@@ -380,7 +358,7 @@ def test_codebook_from_another_model_gives_the_same_counts(
 ) -> None:
     given = reference if as_model else reference.codebook_
     model = DependencyTree().fit(parts, codebook=given, batch_rows=128)
-    _assert_same_model(model, reference)
+    assert_same_model(model, reference)
 
 
 def test_unseen_value_without_other_code_is_an_error_naming_the_column(
@@ -438,7 +416,7 @@ def test_pair_stats_add_up_exactly(reference: DependencyTree, thirds: list[PairS
     assert a + b != whole
     # Adding leaves the operands alone.
     assert (a.n_rows, b.n_rows, c.n_rows) == (512, 1, N_ROWS - 513)
-    _assert_same_model(DependencyTree.from_stats(a + b + c), reference)
+    assert_same_model(DependencyTree.from_stats(a + b + c), reference)
     for x, y in itertools.product(NAMES, repeat=2):
         assert whole.joint_counts(x, y).tolist() == reference.joint_counts(x, y).tolist()
     for x in NAMES:
@@ -451,7 +429,7 @@ def test_from_stats_takes_root_and_alpha(
     total = sum(thirds)
     model = DependencyTree.from_stats(total, root="amount", alpha=0.0)
     want = DependencyTree(root="amount", alpha=0.0).fit(TRUTH)
-    _assert_same_model(model, want)
+    assert_same_model(model, want)
     assert np.array_equal(model.score_samples(TRUTH), want.score_samples(TRUTH))
 
 
@@ -505,8 +483,8 @@ def test_pair_stats_from_an_all_null_piece_add_up() -> None:
     )
     a = PairStats.from_source(first, want.codebook_)
     b = PairStats.from_source(second, want.codebook_)
-    _assert_same_model(DependencyTree.from_stats(a + b), want)
-    _assert_same_model(DependencyTree.from_stats(b + a), want)
+    assert_same_model(DependencyTree.from_stats(a + b), want)
+    assert_same_model(DependencyTree.from_stats(b + a), want)
 
 
 def test_empty_pair_stats_round_trip(tmp_path: Path, reference: DependencyTree) -> None:
@@ -540,10 +518,10 @@ def test_partial_fit_over_many_batches_equals_one_fit(reference: DependencyTree)
             model.partial_fit(batch, codebook=reference.codebook_)
         else:
             model.partial_fit(batch)
-    _assert_same_model(model, reference)
+    assert_same_model(model, reference)
     # A pickled copy keeps every pair's counts and can go on counting.
     again = pickle.loads(pickle.dumps(model))
-    _assert_same_model(again, reference)
+    assert_same_model(again, reference)
     again.partial_fit(TRUTH)
     assert again.n_rows_ == 2 * N_ROWS
     assert again.parent_.tolist() == reference.parent_.tolist()
@@ -551,7 +529,7 @@ def test_partial_fit_over_many_batches_equals_one_fit(reference: DependencyTree)
 
 def test_partial_fit_keeps_every_pair_after_the_first_call(reference: DependencyTree) -> None:
     model = DependencyTree().partial_fit(TRUTH, codebook=reference)
-    _assert_same_model(model, reference)
+    assert_same_model(model, reference)
 
 
 # -- errors that name the file -------------------------------------------------------------------
@@ -614,7 +592,7 @@ def test_int32_and_int64_files_get_the_same_codes(tmp_path: Path) -> None:
     )
     pq.write_table(TRUTH.slice(half), wide)
     model = DependencyTree().fit([narrow, wide])
-    _assert_same_model(model, DependencyTree().fit(TRUTH))
+    assert_same_model(model, DependencyTree().fit(TRUTH))
 
 
 WIDE = pa.table({"k": pa.array([1, 2, 300, 2] * 25, pa.int64()), "s": ["a", "b", "c", "a"] * 25})
@@ -625,7 +603,7 @@ def test_integer_widths_may_grow_between_files(tmp_path: Path) -> None:
     pq.write_table(NARROW, tmp_path / "a.parquet")
     pq.write_table(WIDE, tmp_path / "b.parquet")
     model = DependencyTree().fit(tmp_path)
-    _assert_same_model(
+    assert_same_model(
         model, DependencyTree().fit(pa.concat_tables([NARROW.cast(WIDE.schema), WIDE]))
     )
     assert set(model.sample(50, random_state=0)["k"].to_pylist()) <= {1, 2, 300}
@@ -662,7 +640,7 @@ def test_a_stream_whose_first_batch_is_all_null_in_a_column(
     pq.write_table(pa.Table.from_batches([rest]), tmp_path / "b.parquet")
     want = DependencyTree().fit(tmp_path)
     monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
-    _assert_same_model(DependencyTree().fit(iter([first, rest])), want)
+    assert_same_model(DependencyTree().fit(iter([first, rest])), want)
 
 
 def test_an_empty_file_is_skipped_with_a_warning_naming_it(
@@ -675,7 +653,7 @@ def test_an_empty_file_is_skipped_with_a_warning_naming_it(
     with pytest.warns(SkippedFileWarning, match=re.escape(str(empty))) as record:
         model = DependencyTree().fit(tmp_path, batch_rows=256)
     assert all(str(empty) in str(w.message) for w in record)
-    _assert_same_model(model, reference)
+    assert_same_model(model, reference)
 
 
 # -- progress ------------------------------------------------------------------------------------
@@ -684,9 +662,9 @@ def test_an_empty_file_is_skipped_with_a_warning_naming_it(
 def test_progress_off_prints_nothing(
     parts: list[Path], reference: DependencyTree, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    _assert_same_model(DependencyTree().fit(parts, progress=False), reference)
+    assert_same_model(DependencyTree().fit(parts, progress=False), reference)
     # The default draws only on a terminal, and capsys is none.
-    _assert_same_model(DependencyTree().fit(parts), reference)
+    assert_same_model(DependencyTree().fit(parts), reference)
     captured = capsys.readouterr()
     assert (captured.out, captured.err) == ("", "")
 
@@ -694,7 +672,7 @@ def test_progress_off_prints_nothing(
 def test_progress_on_draws_and_changes_nothing(
     parts: list[Path], reference: DependencyTree, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    _assert_same_model(DependencyTree().fit(parts, progress=True, batch_rows=500), reference)
+    assert_same_model(DependencyTree().fit(parts, progress=True, batch_rows=500), reference)
     captured = capsys.readouterr()
     assert "rows" in captured.out + captured.err
 

@@ -762,15 +762,7 @@ def write_report(
     model: DependencyTree,
     path: str | os.PathLike[str],
     data: Any = None,
-    *,
-    synthetic_rows: int = 100_000,
-    top: int = 20,
-    heatmaps: int = 6,
-    keys: Sequence[str] = (),
-    stability: pa.Table | None = None,
-    tree_edges: int | None = 80,
-    title: str | None = None,
-    random_state: RandomState = 0,
+    **options: Any,
 ) -> Path:
     """Write a self-contained HTML report about ``model`` (and ``data``) to ``path``.
 
@@ -789,6 +781,9 @@ def write_report(
     data : table, path or stream, optional
         Rows to score, in any form ``fit`` takes. Files are read a few times, batch by batch;
         a one-shot stream is read into memory first.
+    **options
+        Passed to :func:`render_report`:
+
     synthetic_rows : int, default 100,000
         Rows to sample for the comparison with ``data`` (0: no comparison).
     top : int, default 20
@@ -812,17 +807,6 @@ def write_report(
     pathlib.Path
         ``path``.
     """
-    page = render_report(
-        model,
-        data,
-        synthetic_rows=synthetic_rows,
-        top=top,
-        heatmaps=heatmaps,
-        keys=keys,
-        stability=stability,
-        tree_edges=tree_edges,
-        title=title,
-        random_state=random_state,
-    )
+    page = render_report(model, data, **options)
     write_atomically(path, page.encode("utf-8"))
     return Path(path)
