@@ -391,7 +391,7 @@ pub(crate) fn plan(
     Plan { methods, dominant }
 }
 
-/// One pair's table, with its columns and its place in pair-index order.
+/// One pair's table (row-major `r_i x r_j`) with its columns i < j.
 struct PairTable<'a> {
     i: usize,
     j: usize,
