@@ -10,7 +10,7 @@ STAMP := $(VENV)/.installed
 export DEPS_FROM_PYPROJECT := import tomllib; \
   p = tomllib.load(open("pyproject.toml", "rb"))["project"]; \
   extras = [d for g in ("test", "bench", "dev") for d in p["optional-dependencies"][g]]; \
-  print(" ".join(p["dependencies"] + extras))
+  print("\n".join(p["dependencies"] + extras))
 
 .DEFAULT_GOAL := help
 .PHONY: help venv build build-dev demo test test-rust lint fmt bench clean
@@ -21,7 +21,8 @@ help: ## List the targets
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
 	$(PIP) install --quiet --upgrade pip
-	$(PIP) install --quiet "maturin>=1.9,<2" $$($(PY) -c "$$DEPS_FROM_PYPROJECT")
+	$(PY) -c "$$DEPS_FROM_PYPROJECT" > $(VENV)/requirements.txt
+	$(PIP) install --quiet "maturin>=1.9,<2" -r $(VENV)/requirements.txt
 	touch $(STAMP)
 
 venv: $(STAMP) ## Create .venv with every tool the targets need
