@@ -73,8 +73,8 @@ pub fn chi2_sf(x: f64, dof: u64) -> f64 {
     gamma_q(dof as f64 / 2.0, x / 2.0)
 }
 
-/// ln Γ(x) for x > 0, by the Lanczos approximation (g = 7, nine coefficients; the coefficients
-/// are the widely published ones, written from memory and checked against scipy in the tests).
+/// ln Γ(x) for x > 0, by the classic nine-term rational approximation with g = 7 (the widely
+/// published coefficients, written from memory and checked against scipy in the tests).
 pub fn ln_gamma(x: f64) -> f64 {
     const G: f64 = 7.0;
     const C: [f64; 9] = [
@@ -103,7 +103,7 @@ pub fn ln_gamma(x: f64) -> f64 {
 }
 
 /// The regularized upper incomplete gamma function Q(a, x), by the power series of P below
-/// x < a + 1 and by Lentz's continued fraction above it.
+/// x < a + 1 and by its continued fraction (evaluated with the modified-ratio method) above it.
 pub fn gamma_q(a: f64, x: f64) -> f64 {
     if x <= 0.0 {
         return 1.0;
