@@ -770,3 +770,16 @@ def test_bic_and_aic_follow_their_formulas() -> None:
     assert model.bic(data) == pytest.approx(-2 * log_likelihood + k * math.log(250), rel=1e-12)
     assert model.aic(data) == pytest.approx(-2 * log_likelihood + 2 * k, rel=1e-12)
     assert model.bic(data) > model.aic(data)  # ln(250) > 2
+
+
+def test_criteria_score_the_data_once() -> None:
+    # One scoring pass: an unseen value is reported in one warning, not one per pass.
+    model = treewise.DependencyTree().fit(pa.table({"a": [1, 2, 1, 2], "b": ["x", "y", "x", "y"]}))
+    fresh = pa.table({"a": [1, 3], "b": ["x", "y"]})
+    for criterion in (model.bic, model.aic):
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            criterion(fresh)
+        assert [w.category for w in caught] == [treewise.UnseenCategoryWarning]
+    with pytest.raises(treewise.DataError, match="0 rows"):
+        model.aic(fresh.slice(0, 0))

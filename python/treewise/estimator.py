@@ -559,18 +559,20 @@ class DependencyTree(Params):
 
     def bic(self, data: Any) -> float:
         """Bayesian information criterion on ``data``: -2 ln L + k ln n (lower is better)."""
-        n = self._row_count(data)
-        return -2.0 * self.score(data) + self._fitted().n_parameters * math.log(n)
+        log_likelihood, n = self._log_likelihood(data)
+        return -2.0 * log_likelihood + self._fitted().n_parameters * math.log(n)
 
     def aic(self, data: Any) -> float:
         """Akaike information criterion on ``data``: -2 ln L + 2k (lower is better)."""
-        return -2.0 * self.score(data) + 2.0 * self._fitted().n_parameters
+        log_likelihood, _ = self._log_likelihood(data)
+        return -2.0 * log_likelihood + 2.0 * self._fitted().n_parameters
 
-    def _row_count(self, data: Any) -> int:
-        n = sum(len(s.total) for s in self._scored(data, surprisal=False))
-        if n == 0:
+    def _log_likelihood(self, data: Any) -> tuple[float, int]:
+        """Ln L of ``data`` and its number of rows, from one scoring pass."""
+        scores = self.score_samples(data)
+        if len(scores) == 0:
             raise DataError("the data has 0 rows; the criterion needs at least one")
-        return n
+        return float(scores.sum()), len(scores)
 
     def iter_sample(
         self, n: int, random_state: RandomState = None, batch_rows: int = SAMPLE_BATCH_ROWS
