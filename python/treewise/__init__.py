@@ -12,6 +12,7 @@ from treewise.categories import OTHER, Bin
 from treewise.classifier import TreeAugmentedClassifier
 from treewise.errors import (
     CategoryCapWarning,
+    ColumnKindWarning,
     CorruptModelError,
     DataError,
     ImpossibleEvidenceWarning,
@@ -54,6 +55,7 @@ __all__ = [
     "Bin",
     "CategoryCapWarning",
     "Codebook",
+    "ColumnKindWarning",
     "CorruptModelError",
     "DataError",
     "DependencyTree",

@@ -1,17 +1,18 @@
-"""Codes back to Arrow: the fitted column types by name, and sampled codes as typed arrays."""
+"""Codes back to Arrow: the fitted column types by name, and codes as typed arrays of real values."""
 
 from __future__ import annotations
 
+import re
+from dataclasses import dataclass
 from typing import Any, cast
 
 import numpy as np
 import numpy.typing as npt
 import pyarrow as pa
 
-from treewise.categories import OTHER, Bin
 from treewise.errors import CorruptModelError
 
-__all__ = ["decode_column", "type_from_name", "type_name"]
+__all__ = ["ColumnValues", "decode_column", "type_from_name", "type_name"]
 
 _PLAIN: dict[str, Any] = {
     "bool": pa.bool_(),
@@ -30,17 +31,51 @@ _PLAIN: dict[str, Any] = {
     "string_view": pa.string_view(),
 }
 _NAMES = {t: name for name, t in _PLAIN.items()}
+# pyarrow's own names of the time types: timestamp[us, tz=UTC], date32[day], duration[ms], ...
+_TIME = re.compile(
+    r"^(?:timestamp\[(s|ms|us|ns)(?:, tz=([^\]]+))?\]|date32\[day\]|date64\[ms\]"
+    r"|time32\[(s|ms)\]|time64\[(us|ns)\]|duration\[(s|ms|us|ns)\])$"
+)
+
+
+def _is_time(dtype: pa.DataType) -> bool:
+    return bool(
+        pa.types.is_timestamp(dtype)
+        or pa.types.is_date(dtype)
+        or pa.types.is_time(dtype)
+        or pa.types.is_duration(dtype)
+    )
 
 
 def type_name(dtype: pa.DataType) -> str:
     """Our name for a supported Arrow type, as stored in the model file."""
     if pa.types.is_dictionary(dtype):
         return f"dictionary<{type_name(dtype.index_type)},{type_name(dtype.value_type)}>"
+    if _is_time(dtype):
+        return str(dtype)
     name = _NAMES.get(dtype)
     if name is None:
         # The codebook pass already refused unsupported types; this is a safe fallback.
         return "string"
     return name
+
+
+def _time_type(name: str) -> pa.DataType | None:
+    m = _TIME.match(name)
+    if m is None:
+        return None
+    ts_unit, tz, t32, t64, dur = m.groups()
+    if ts_unit is not None:
+        return pa.timestamp(ts_unit, tz=tz)
+    if name.startswith("date32"):
+        return pa.date32()
+    if name.startswith("date64"):
+        return pa.date64()
+    if t32 is not None:
+        return pa.time32(t32)
+    if t64 is not None:
+        return pa.time64(t64)
+    return pa.duration(dur)
 
 
 def type_from_name(name: str) -> pa.DataType:
@@ -52,29 +87,134 @@ def type_from_name(name: str) -> pa.DataType:
             return cast(pa.DataType, pa.dictionary(index_type, value_type))
     elif name in _PLAIN:
         return cast(pa.DataType, _PLAIN[name])
+    else:
+        time = _time_type(name)
+        if time is not None:
+            return time
     raise CorruptModelError(f"the model file names an unknown column type {name!r}")
+
+
+def _as_time(ints: pa.Array[Any], time_type: pa.DataType) -> pa.Array[Any]:
+    """Counts of units since the epoch as the time type (its storage, reinterpreted)."""
+    storage = pa.int32() if time_type.bit_width == 32 else pa.int64()
+    return ints.cast(storage).view(time_type)
+
+
+def _values_array(values: list[Any], value_type: pa.DataType) -> pa.Array[Any]:
+    """Kept values (as the codebook lists them) as an array of a type that ``take`` supports."""
+    if _is_time(value_type):
+        return _as_time(pa.array(values, type=pa.int64()), value_type)
+    if pa.types.is_string_view(value_type):
+        return pa.array(values, type=pa.string())
+    return pa.array(values, type=value_type)
+
+
+@dataclass(frozen=True)
+class ColumnValues:
+    """What one column's codes stand for, to turn codes into real values of the fitted type.
+
+    A categorical code is its kept value; the "other" code is one of the rare values behind it
+    (``tail``, with counts), never null; a numeric code is a number inside its bin, drawn by the
+    core. Only the null code comes back as null.
+    """
+
+    dtype: pa.DataType
+    numeric: bool
+    kept: pa.Array[Any] | None
+    other: int | None
+    null: int | None
+    tail: pa.Array[Any] | None
+    tail_counts: npt.NDArray[np.float64] | None
+
+    @classmethod
+    def of(cls, codebook: Any, i: int, dtype: pa.DataType) -> ColumnValues:
+        """Column ``i`` of a core codebook, with its fitted Arrow type."""
+        family, values, has_other, has_null = codebook.column(i)
+        kind, _integral, tail, _within = codebook.shape(i)
+        value_type = dtype.value_type if pa.types.is_dictionary(dtype) else dtype
+        numeric = isinstance(values, tuple)
+        n_values = len(values[0]) + 1 + len(values[3]) if numeric else len(values)
+        kept = None if numeric else _values_array(list(values), value_type)
+        tail_values = None if tail is None else _values_array(list(tail[0]), value_type)
+        counts = None if tail is None else np.asarray(tail[1], dtype=np.float64)
+        return cls(
+            dtype=dtype,
+            numeric=numeric,
+            kept=kept,
+            other=n_values if has_other else None,
+            null=n_values + int(has_other) if has_null else None,
+            tail=tail_values,
+            tail_counts=counts,
+        )
+
+    def most_frequent_tail(self) -> int:
+        """The index of the most frequent value behind "other" (ties: the first)."""
+        return int(np.argmax(self.tail_counts)) if self.tail_counts is not None else -1
+
+    def draw_tail(self, rng: np.random.Generator, n: int) -> npt.NDArray[np.int64]:
+        """``n`` indexes into the tail, drawn by the values' counts."""
+        counts = self.tail_counts
+        if counts is None or n == 0:
+            return np.full(n, -1, dtype=np.int64)
+        return rng.choice(len(counts), size=n, p=counts / counts.sum()).astype(np.int64)
 
 
 def decode_column(
     codes: npt.NDArray[np.uint16],
-    categories: list[Any],
-    dtype: pa.DataType,
-    floats: npt.NDArray[np.float64] | None,
+    column: ColumnValues,
+    floats: npt.NDArray[np.float64] | None = None,
+    tails: npt.NDArray[np.int64] | None = None,
+    rng: np.random.Generator | None = None,
 ) -> pa.Array[Any]:
-    """Sampled codes as an array of the fitted type.
+    """Codes as an array of the fitted type.
 
-    A float column takes the number drawn inside its bin; the null code, and the "other" code
-    (which stands for many rare values and no single one), come back as null.
+    A numeric column takes the number the core gave each code (``floats``). At the "other" code
+    a categorical column takes the tail value in ``tails`` (an index per row, -1 elsewhere), or
+    one drawn with ``rng``, or else the most frequent one. Codes past the null code (cells left
+    unfilled) and the null code come back as null.
     """
-    if floats is not None:
-        return pa.array(floats, mask=np.isnan(floats)).cast(dtype)
-    values = [c for c in categories if c is not OTHER and c is not None and not isinstance(c, Bin)]
-    value_type = dtype.value_type if pa.types.is_dictionary(dtype) else dtype
-    dictionary = pa.array(values, type=value_type)
-    indices: Any = pa.array(codes.astype(np.int32), mask=codes >= len(values))
+    codes = np.asarray(codes)
+    null = column.null if column.null is not None else np.iinfo(np.uint16).max
+    missing = codes >= null
+    dtype = column.dtype
+    if column.numeric:
+        if floats is None:
+            raise ValueError("a numeric column needs the numbers its codes stand for")
+        value_type = dtype.value_type if pa.types.is_dictionary(dtype) else dtype
+        if pa.types.is_floating(value_type):
+            out: pa.Array[Any] = pa.array(floats, mask=missing, type=pa.float64())
+        else:
+            # Integer and time columns: the core's numbers are whole (their bins hold integers).
+            whole = np.where(missing, 0, np.nan_to_num(floats)).astype(np.int64)
+            out = pa.array(whole, mask=missing, type=pa.int64())
+            if _is_time(value_type):
+                out = _as_time(out, value_type)
+            elif pa.types.is_unsigned_integer(value_type):
+                out = out.cast(pa.uint64())
+        return out.cast(dtype)
+    assert column.kept is not None
+    n_kept = len(column.kept)
+    index = codes.astype(np.int64)
+    dictionary = column.kept
+    if column.other is not None and column.tail is not None:
+        at_other = codes == column.other
+        if tails is None or len(tails) != len(codes):
+            picked = (
+                column.draw_tail(rng, int(at_other.sum()))
+                if rng is not None
+                else np.full(int(at_other.sum()), column.most_frequent_tail())
+            )
+            tails = np.full(len(codes), -1, dtype=np.int64)
+            tails[at_other] = picked
+        index = np.where(at_other, n_kept + np.asarray(tails, dtype=np.int64), index)
+        missing = missing | (at_other & (np.asarray(tails) < 0))
+        dictionary = pa.concat_arrays([column.kept, column.tail])
+    else:
+        missing = missing | (codes >= n_kept)
+    indices: Any = pa.array(np.where(missing, 0, index).astype(np.int32), mask=missing)
     if pa.types.is_dictionary(dtype):
         return pa.DictionaryArray.from_arrays(indices, dictionary).cast(dtype)
-    return dictionary.take(indices)
+    return dictionary.take(indices).cast(dtype)
 
 
 #: The plain output type of each value family.
@@ -84,6 +224,7 @@ FAMILY_TYPES = {
     "uint": "uint64",
     "str": "string",
     "float": "float64",
+    "time": "timestamp[us]",
 }
 _RANGES = {
     f"{s}int{b}": r
@@ -102,7 +243,7 @@ def _value_name(name: str) -> str:
 
 
 def family(name: str) -> str:
-    """The value family (bool, int, uint, str, float) of a stored type name."""
+    """The value family (bool, int, uint, str, float, time) of a stored type name."""
     value = _value_name(name)
     if value.startswith("uint"):
         return "uint"
@@ -110,28 +251,37 @@ def family(name: str) -> str:
         return "int"
     if value.startswith("float"):
         return "float"
+    if _TIME.match(value):
+        return "time"
     return "bool" if value == "bool" else "str"
 
 
 def widen(first: str, second: str) -> str:
     """One type name for a column seen with two types of one family (e.g. int8 and int64)."""
-    return first if first == second else FAMILY_TYPES[family(first)]
+    if first == second:
+        return first
+    if family(first) == "time":
+        # Two time types (units, zones): the first one seen; the core checks the family.
+        return first
+    return FAMILY_TYPES[family(first)]
 
 
-def fitting_type(name: str, categories: list[Any]) -> str:
-    """The type name to store for a column: ``name`` if it can hold every kept value.
+def fitting_type(name: str, values: list[Any], n_codes: int) -> str:
+    """The type name to store for a column: ``name`` if it can hold every value it gives back.
 
-    Otherwise the family's plain type: a column first seen as int8 may hold 300 by the end of
-    the data, and a dictionary's index type may be too narrow for all the categories.
+    ``values`` are the values that can come back (kept and tail values, or the bins' lowest and
+    highest numbers) and ``n_codes`` how many distinct values a dictionary must index. Otherwise
+    the family's plain type: a column first seen as int8 may hold 300 by the end of the data,
+    and a dictionary's index type may be too narrow for all its values.
     """
-    values = [c for c in categories if c is not OTHER and c is not None and not isinstance(c, Bin)]
     plain = _value_name(name)
-    if plain in _RANGES and values:
+    numbers = [v for v in values if isinstance(v, (int, float)) and not isinstance(v, bool)]
+    if plain in _RANGES and numbers:
         low, high = _RANGES[plain]
-        if min(values) < low or max(values) > high:
+        if min(numbers) < low or max(numbers) > high:
             return FAMILY_TYPES[family(name)]
     if name != plain:
         index = name[len("dictionary<") :].partition(",")[0]
-        if index not in _RANGES or len(categories) - 1 > _RANGES[index][1]:
+        if index not in _RANGES or n_codes - 1 > _RANGES[index][1]:
             return FAMILY_TYPES[family(name)]
     return name

@@ -20,10 +20,11 @@ from treewise.estimator import (
     DependencyTree,
     _check_alpha,
     _check_int,
+    _check_kinds,
     _check_prune,
 )
 from treewise.pairstats import PairStats
-from treewise.passes import warn_caps
+from treewise.passes import warn_caps, warn_notes
 from treewise.sources import BATCH_ROWS, check_columns, expand_paths, open_source
 
 __all__ = ["fit_dask"]
@@ -135,12 +136,18 @@ def fit_dask(data: Any, *, split_every: int = 8, **params: Any) -> DependencyTre
     if not parts:
         raise DataError("the Dask data has no partitions")
     names = check_columns(available, estimator.columns, "the Dask data")
-    root_index = estimator._root_index(names)
+    kinds = _check_kinds(estimator.kinds, names)
 
     tallies = [delayed(_tally, pure=True)(p, names) for p in parts]
     (tally,) = compute(_tree_reduce(tallies, _merge_tallies, split_every))
-    codebook, caps = _core.CodebookBuilder.from_bytes(tally).finish(max_categories, n_bins)
+    codebook, caps, notes = _core.CodebookBuilder.from_bytes(tally).finish(
+        max_categories, n_bins, list(kinds.items())
+    )
     warn_caps(caps, max_categories)
+    warn_notes(notes)
+    # Columns left out of the model (identifiers, all null) are not counted.
+    names = list(codebook.names)
+    root_index = estimator._root_index(names)
     encoded = codebook.to_bytes()
     counts = [delayed(_count, pure=True)(p, names, encoded) for p in parts]
     (merged,) = compute(_tree_reduce(counts, _merge_stats, split_every))

@@ -6,6 +6,7 @@ import warnings
 
 __all__ = [
     "CategoryCapWarning",
+    "ColumnKindWarning",
     "CorruptModelError",
     "DataError",
     "ImpossibleEvidenceWarning",
@@ -45,6 +46,10 @@ class ResourceLimitError(TreewiseError, MemoryError):
 
 class CategoryCapWarning(UserWarning):
     """Some values of a column were merged into its "other" code by ``max_categories``."""
+
+
+class ColumnKindWarning(UserWarning):
+    """A column was left out of the model (only nulls, or an identifier) or holds one value."""
 
 
 class NotFittedError(TreewiseError, ValueError, AttributeError):

@@ -15,7 +15,7 @@ import pyarrow as pa
 
 from treewise import _core, inference
 from treewise.categories import OTHER, Bin
-from treewise.decode import decode_column, type_from_name
+from treewise.decode import ColumnValues, decode_column, type_from_name
 from treewise.errors import (
     DataError,
     NotFittedError,
@@ -45,12 +45,14 @@ MAX_SAMPLE_ROWS = 2**40
 
 
 def _categories(kind: str, values: Any, has_other: bool, has_null: bool) -> list[Any]:
-    """One column's categories in code order: values (or bins), then OTHER, then None."""
-    if kind == "float":
-        edges, low, high = values
+    """One column's categories in code order: values (or bins and non-finite values), then
+    OTHER, then None."""
+    if isinstance(values, tuple):
+        edges, low, high, specials = values
         bounds = [low, *edges, high]
         last = len(bounds) - 2
         cats: list[Any] = [Bin(bounds[k], bounds[k + 1], closed=k == last) for k in range(last + 1)]
+        cats.extend(specials)
     else:
         cats = list(values)
     if has_other:
@@ -85,10 +87,17 @@ class DependencyTree(Params):
         The rarest values beyond it share the "other" code, and a ``CategoryCapWarning`` says
         how many.
     n_bins : int, default 10
-        Float columns are cut into at most this many quantile bins (plus a null code when they
-        hold nulls or NaN); ``max_categories`` does not apply to them.
+        A number or time column with more distinct values than this is numeric: it is cut into
+        at most this many quantile bins (plus a code per non-finite value and a null code), and
+        ``max_categories`` does not apply to it. One with at most this many is categorical.
+    kinds : dict of str to str, optional
+        How to model named columns, overriding the choice made from the data:
+        ``"categorical"``, ``"numeric"``, ``"ignore"`` (leave it out) or ``"auto"``. The rules
+        are in docs/column-kinds.md; identifiers (nearly every value distinct) and all-null
+        columns are left out by default, with a ``ColumnKindWarning``.
     root : str, optional
-        The column the tree is oriented from. Default: the first modelled column.
+        The column the tree is oriented from. Default: the centre of the tree (the column whose
+        longest path to the others is shortest), never a constant column.
     alpha : float, default 0.5
         Dirichlet smoothing of the conditional tables: P(x | a) = (n_ax + alpha) /
         (n_a + alpha * r_x). ``alpha=0`` is the maximum-likelihood estimate; the default 0.5 is
@@ -133,6 +142,7 @@ class DependencyTree(Params):
         columns: Sequence[str] | None = None,
         max_categories: int = 128,
         n_bins: int = 10,
+        kinds: Mapping[str, str] | None = None,
         root: str | None = None,
         alpha: float = 0.5,
         prune: str | float | None = None,
@@ -140,11 +150,12 @@ class DependencyTree(Params):
         self.columns = columns
         self.max_categories = max_categories
         self.n_bins = n_bins
+        self.kinds = kinds
         self.root = root
         self.alpha = alpha
         self.prune = prune
 
-    _PARAMS = ("columns", "max_categories", "n_bins", "root", "alpha", "prune")
+    _PARAMS = ("columns", "max_categories", "n_bins", "kinds", "root", "alpha", "prune")
 
     def __getstate__(self) -> dict[str, Any]:
         """Pickle support: the Rust objects travel as their own validated file bytes."""
@@ -221,19 +232,23 @@ class DependencyTree(Params):
         given = _as_codebook(codebook)
         wanted = self.columns if self.columns is not None or given is None else given.names
         names = check_columns(source.names, wanted, source.description)
-        root = self._root_index(names)
+        kinds = _check_kinds(self.kinds, names)
+        if self.root is not None and self.root not in names:
+            raise SchemaError(f"root={self.root!r} is not one of the modelled columns {names}")
         types = TypeRecorder(names)
         with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
             if given is None:
-                with learn_codebook(source, names, max_categories, n_bins, rows, bar, types) as (
-                    learned,
-                    counting,
-                ):
+                with learn_codebook(
+                    source, names, max_categories, n_bins, rows, bar, types, kinds
+                ) as (learned, counting):
+                    # Columns left out of the model (identifiers, all null) are not counted.
+                    kept = list(learned.names)
                     stats = _core.PairStats(learned)
                     # A spooled stream holds decoded values: its types say nothing new.
                     seen = types if counting is source else TypeRecorder(names)
-                    count_pairs(counting, names, learned, stats, rows, bar, seen)
+                    count_pairs(counting, kept, learned, stats, rows, bar, seen)
                     chosen = learned
+                    types = _select_types(types, kept)
             else:
                 chosen = given.select(names)
                 stats = _core.PairStats(chosen)
@@ -242,6 +257,7 @@ class DependencyTree(Params):
             raise DataError(
                 f"{source.description} has 0 rows; a dependency tree needs at least one"
             )
+        root = self._root_index(list(chosen.names))
         self._set_model(
             _core.TreeModel.fit(chosen, stats, types.type_names(chosen), root, alpha, kind, level)
         )
@@ -285,7 +301,7 @@ class DependencyTree(Params):
         stats = self._stats
         self._set_model(
             _core.TreeModel.fit(
-                model.codebook, stats, model.dtypes, model.root, model.alpha, kind, level
+                model.codebook, stats, model.dtypes, self._root_index(names), model.alpha, kind, level
             )
         )
         self._stats = stats
@@ -314,12 +330,16 @@ class DependencyTree(Params):
         estimator._stats = stats._stats.copy()
         return estimator
 
-    def _root_index(self, names: list[str]) -> int:
+    def _root_index(self, names: list[str]) -> int | None:
+        """The root's index, or None to let the core pick the centre of the tree."""
         if self.root is None:
-            return 0
+            return None
         if self.root in names:
             return names.index(self.root)
-        raise SchemaError(f"root={self.root!r} is not one of the modelled columns {names}")
+        raise SchemaError(
+            f"root={self.root!r} is not one of the modelled columns {names} (a column left out "
+            "of the model, such as an identifier, cannot be the root)"
+        )
 
     def _set_model(self, model: _core.TreeModel) -> None:
         """Set every fitted attribute from a model (after fit, or after load)."""
@@ -343,7 +363,9 @@ class DependencyTree(Params):
             ]
         )
         self.n_parameters_ = model.n_parameters
+        self.kinds_ = {str(name): codebook.shape(i)[0] for i, name in enumerate(codebook.names)}
         self.codebook_ = codebook
+        self._values: list[ColumnValues] | None = None
 
     # -- fitted views ----------------------------------------------------------------------------
 
@@ -589,13 +611,20 @@ class DependencyTree(Params):
         step = max(block, batch_rows // block * block)
         seed = _seed(random_state)
         schema = self._output_schema()
+        columns = self._column_values()
         for start in range(0, n, step):
             count = min(step, n - start)
-            codes, floats = model.sample(start, count, seed)
+            codes, floats, tails = model.sample(start, count, seed)
             matrix = np.frombuffer(codes, "<u2").reshape(self.n_features_in_, count)
             values = [None if f is None else np.frombuffer(f, "<f8") for f in floats]
+            picked = [
+                None if t is None else np.frombuffer(t, "<u4").astype(np.int64) for t in tails
+            ]
+            for p in picked:
+                if p is not None:
+                    p[p == 0xFFFFFFFF] = -1
             arrays = [
-                decode_column(matrix[c], self.categories_[c], schema.field(c).type, values[c])
+                decode_column(matrix[c], columns[c], values[c], picked[c])
                 for c in range(self.n_features_in_)
             ]
             batch = pa.RecordBatch.from_arrays(arrays, schema=schema)
@@ -658,10 +687,11 @@ class DependencyTree(Params):
         Returns
         -------
         pyarrow.Table
-            The fitted column names and types. A float column gets a number drawn uniformly
-            inside the sampled bin ([low, high), the last bin [low, high]). The null code comes
-            back as null, and so does the "other" code, which stands for many rare values and
-            no single one.
+            The fitted column names and types. A numeric column gets a number drawn from the
+            values seen inside the sampled bin (integer and time columns stay whole); the
+            "other" code gives one of the rare values it stands for, drawn by their counts.
+            Only the null code comes back as null. Columns left out of the model (identifiers)
+            are not sampled.
         """
         if given is not None:
             return inference.sample_given(self, n, given, random_state)
@@ -670,6 +700,18 @@ class DependencyTree(Params):
         return pa.Table.from_batches(
             list(self.iter_sample(n, random_state)), schema=self._output_schema()
         )
+
+    def _column_values(self) -> list[ColumnValues]:
+        """What each column's codes stand for, to decode codes into values (built once)."""
+        model = self._fitted()
+        if getattr(self, "_values", None) is None:
+            schema = self._output_schema()
+            self._values = [
+                ColumnValues.of(model.codebook, c, schema.field(c).type)
+                for c in range(self.n_features_in_)
+            ]
+        assert self._values is not None
+        return self._values
 
     def _output_schema(self) -> pa.Schema:
         model = self._fitted()
@@ -734,6 +776,34 @@ def _as_codebook(codebook: object) -> _core.Codebook | None:
     raise TypeError(
         f"codebook= takes a treewise.Codebook or a fitted DependencyTree, got {codebook!r}"
     )
+
+
+_KINDS = ("auto", "categorical", "numeric", "ignore")
+
+
+def _check_kinds(kinds: object, names: list[str]) -> dict[str, str]:
+    """The ``kinds`` parameter, checked against the columns being fitted."""
+    if kinds is None:
+        return {}
+    if not isinstance(kinds, Mapping):
+        raise TypeError(f"kinds must be a dict of column name to kind, got {kinds!r}")
+    out = {}
+    for column, kind in kinds.items():
+        if column not in names:
+            raise SchemaError(f"kinds names {column!r}, which is not one of the columns {names}")
+        if kind not in _KINDS:
+            raise ValueError(f"kinds[{column!r}] is {kind!r}; use one of {_KINDS}")
+        out[str(column)] = str(kind)
+    return out
+
+
+def _select_types(types: TypeRecorder, names: list[str]) -> TypeRecorder:
+    """The recorded types of the columns ``names`` only."""
+    if names == types.names:
+        return types
+    kept = TypeRecorder(names)
+    kept.types = {n: t for n, t in types.types.items() if n in names}
+    return kept
 
 
 def _check_prune(prune: object) -> tuple[str, float]:

@@ -25,13 +25,32 @@ def atomic_path(path: str | os.PathLike[str]) -> Iterator[Path]:
     if not directory.is_dir():
         raise FileNotFoundError(f"the directory {directory} does not exist; create it first")
     fd, name = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=directory)
-    os.close(fd)
     tmp = Path(name)
+    try:
+        # mkstemp creates the file 0600; give it the mode an ordinary write would: the old
+        # file's mode when overwriting, else what the umask allows.
+        os.fchmod(fd, _mode_for(target))
+    finally:
+        os.close(fd)
     try:
         yield tmp
         os.replace(tmp, target)
     finally:
         tmp.unlink(missing_ok=True)
+
+
+def _mode_for(target: Path) -> int:
+    try:
+        return target.stat().st_mode & 0o7777
+    except FileNotFoundError:
+        return 0o666 & ~_umask()
+
+
+def _umask() -> int:
+    # The umask can only be read by setting it; set it straight back.
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def write_atomically(path: str | os.PathLike[str], data: bytes) -> None:

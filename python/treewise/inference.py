@@ -180,9 +180,10 @@ def predict(model: DependencyTree, data: Any, target: str | int) -> pa.Array[Any
     """The most probable value of ``target`` in each row of ``data`` (see :func:`predict_proba`).
 
     Ties go to the first category in ``categories_`` order. The result has the fitted type of
-    ``target``; it is null where the most probable category is the null or "other" category (which
-    stands for many rare values) or where the evidence is impossible. A float column gets the
-    middle of its most probable bin.
+    ``target``; it is null where the most probable category is the null category or where the
+    evidence is impossible. Where it is the "other" category, the result is the most frequent
+    value behind it. A numeric column gets the median of the values seen in its most probable
+    bin.
     """
     t = model._index(target)
     proba = predict_proba(model, data, target)
@@ -194,8 +195,7 @@ def predict(model: DependencyTree, data: Any, target: str | int) -> pa.Array[Any
     if middles is not None:
         table = np.append(np.asarray(middles, dtype=np.float64), np.nan)
         floats = table[np.minimum(codes, len(middles))]
-    dtype = model._output_schema().field(t).type
-    return decode_column(codes, model.categories_[t], dtype, floats)
+    return decode_column(codes, model._column_values()[t], floats)
 
 
 def marginals(
@@ -308,7 +308,8 @@ def impute(
                 _evidence(batch, names), fill, strategy, seed, first
             )
         tally.add(unseen, impossible)
-        filled = _filled(model, codes, floats, batch.num_rows, schema)
+        rng = np.random.default_rng([seed, first]) if strategy == "sample" else None
+        filled = _filled(model, codes, floats, batch.num_rows, schema, rng)
         arrays = [
             _merge(batch.column(i), filled[field.name]) if field.name in filled else batch.column(i)
             for i, field in enumerate(batch.schema)
@@ -327,18 +328,20 @@ def _filled(
     floats: list[bytes | None],
     n: int,
     schema: pa.Schema,
+    rng: np.random.Generator | None = None,
 ) -> dict[str, tuple[npt.NDArray[np.bool_], pa.Array[Any]]]:
-    """Per model column with any filled cell: (filled mask, decoded values of the fitted type)."""
+    """Per model column with any filled cell: (filled mask, decoded values of the fitted type).
+
+    An "other" code takes a value behind it drawn with ``rng``, or else the most frequent one.
+    """
     matrix = np.frombuffer(codes, "<u2").reshape(len(model.categories_), n)
+    columns = model._column_values()
     out = {}
     for c, field in enumerate(schema):
         mask = matrix[c] != _KEPT
         if mask.any():
             values = None if floats[c] is None else _f64(floats[c])  # type: ignore[arg-type]
-            out[field.name] = (
-                mask,
-                decode_column(matrix[c], model.categories_[c], field.type, values),
-            )
+            out[field.name] = (mask, decode_column(matrix[c], columns[c], values, None, rng))
     return out
 
 
@@ -409,7 +412,8 @@ def sample_given(
             if start == 0:
                 tally.add(unseen)
             repeated = fixed.take(np.zeros(count, dtype=np.int64))
-            out.append(_assemble(model, codes, floats, count, schema, repeated))
+            rng = np.random.default_rng([seed, start])
+            out.append(_assemble(model, codes, floats, count, schema, repeated, rng))
     else:
         source = open_source(given)
         if n is not None and source.total_rows is not None and n != source.total_rows:
@@ -423,7 +427,8 @@ def sample_given(
                 )
             tally.add(unseen, impossible)
             given_rows = _as_output(evidence, schema)
-            out.append(_assemble(model, codes, floats, batch.num_rows, schema, given_rows))
+            rng = np.random.default_rng([seed, first])
+            out.append(_assemble(model, codes, floats, batch.num_rows, schema, given_rows, rng))
             first += batch.num_rows
         if n is not None and n != first:
             raise ValueError(f"n={n} but the evidence has {first} rows; give n=None")
@@ -455,9 +460,10 @@ def _assemble(
     n: int,
     schema: pa.Schema,
     given: pa.RecordBatch,
+    rng: np.random.Generator,
 ) -> pa.RecordBatch:
     """Sampled cells over the given ones."""
-    filled = _filled(model, codes, floats, n, schema)
+    filled = _filled(model, codes, floats, n, schema, rng)
     arrays = [
         _merge(given.column(c), filled[f.name]) if f.name in filled else given.column(c)
         for c, f in enumerate(schema)

@@ -12,11 +12,11 @@ import pyarrow as pa
 
 from treewise import _core
 from treewise.decode import FAMILY_TYPES, fitting_type, type_name, widen
-from treewise.errors import CategoryCapWarning, warn
+from treewise.errors import CategoryCapWarning, ColumnKindWarning, warn
 from treewise.progress import PassProgress
 from treewise.sources import Source, located, open_source
 
-__all__ = ["TypeRecorder", "count_pairs", "learn_codebook", "warn_caps"]
+__all__ = ["TypeRecorder", "count_pairs", "learn_codebook", "warn_caps", "warn_notes"]
 
 
 class TypeRecorder:
@@ -47,17 +47,28 @@ class TypeRecorder:
         """
         names = []
         for i, n in enumerate(self.names):
-            kind, values, has_other, has_null = (
+            kind, values, _has_other, _has_null = (
                 ("str", [], False, False) if codebook is None else codebook.column(i)
             )
             if n not in self.types:
                 names.append(FAMILY_TYPES[kind])
             elif codebook is None or kind == "float":
                 names.append(self.types[n])
+            elif isinstance(values, tuple):
+                # Numeric bins: what comes back lies between the lowest and highest value seen.
+                _edges, low, high, _specials = values
+                names.append(fitting_type(self.types[n], [int(low), int(high)], 0))
             else:
-                categories = list(values) + [None] * (int(has_other) + int(has_null))
-                names.append(fitting_type(self.types[n], categories))
+                tail = codebook.shape(i)[2]
+                back = list(values) + ([] if tail is None else list(tail[0]))
+                names.append(fitting_type(self.types[n], back, len(back)))
         return names
+
+
+def warn_notes(notes: list[tuple[str, str, str]]) -> None:
+    """One ColumnKindWarning per column left out of the model or holding a single value."""
+    for _column, _kind, message in notes:
+        warn(message, ColumnKindWarning)
 
 
 def warn_caps(caps: list[tuple[str, int, int]], max_categories: int) -> None:
@@ -79,8 +90,12 @@ def learn_codebook(
     batch_rows: int,
     bar: PassProgress,
     types: TypeRecorder,
+    kinds: dict[str, str] | None = None,
 ) -> Iterator[tuple[_core.Codebook, Source]]:
     """The codebook pass. Yields the codebook and the source to count from next.
+
+    Columns left out of the model (docs/column-kinds.md) are not in the codebook: count the
+    columns ``codebook.names``.
 
     A replayable source is simply read again. A one-shot stream is spooled to temporary Arrow
     IPC files while its codebook is learned, and counted from them; they are removed when the
@@ -99,8 +114,9 @@ def learn_codebook(
                         spool.write(batch)
                     bar.rows(batch.num_rows)
             bar.part_done()
-        codebook, caps = builder.finish(max_categories, n_bins)
+        codebook, caps, notes = builder.finish(max_categories, n_bins, list((kinds or {}).items()))
         warn_caps(caps, max_categories)
+        warn_notes(notes)
         if spool is None:
             yield codebook, source
         else:

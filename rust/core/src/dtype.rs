@@ -2,6 +2,7 @@
 //! column's kept values fit the type it names.
 
 use crate::codebook::{ColumnCode, Values};
+use crate::values::Kind;
 
 fn int_range(name: &str) -> Option<(i128, i128)> {
     Some(match name {
@@ -17,25 +18,47 @@ fn int_range(name: &str) -> Option<(i128, i128)> {
     })
 }
 
-fn value_type_fits(name: &str, values: &Values) -> bool {
+/// Whether `name` is one of Arrow's time types as pyarrow names them (timestamp[us, tz=...],
+/// date32[day], date64[ms], time32[s], time64[ns], duration[ms]).
+fn is_time_name(name: &str) -> bool {
+    [
+        "timestamp[",
+        "date32[",
+        "date64[",
+        "time32[",
+        "time64[",
+        "duration[",
+    ]
+    .iter()
+    .any(|p| name.starts_with(p))
+        && name.ends_with(']')
+}
+
+fn value_type_fits(name: &str, column: &ColumnCode) -> bool {
     let within = |lo: i128, hi: i128, mut it: Box<dyn Iterator<Item = i128> + '_>| {
         it.all(|v| lo <= v && v <= hi)
     };
-    match values {
-        Values::Bool(_) => name == "bool",
-        Values::Str(_) => matches!(name, "string" | "large_string" | "string_view"),
-        Values::Bins { .. } => matches!(name, "float32" | "float64"),
-        Values::Int(v) => {
-            name.starts_with("int")
-                && int_range(name).is_some_and(|(lo, hi)| {
-                    within(lo, hi, Box::new(v.iter().map(|x| i128::from(*x))))
-                })
+    let ints = |it: Box<dyn Iterator<Item = i128> + '_>| {
+        int_range(name).is_some_and(|(lo, hi)| within(lo, hi, it))
+    };
+    match (column.family(), column.values()) {
+        (Kind::Time, _) => is_time_name(name),
+        (_, Values::Bool(_)) => name == "bool",
+        (_, Values::Str(_)) => matches!(name, "string" | "large_string" | "string_view"),
+        (_, Values::Float(_)) => matches!(name, "float32" | "float64"),
+        (Kind::Float, Values::Bins { .. }) => matches!(name, "float32" | "float64"),
+        (Kind::Int, Values::Bins { low, high, .. }) => {
+            name.starts_with("int") && ints(Box::new([*low, *high].into_iter().map(|x| x as i128)))
         }
-        Values::UInt(v) => {
-            name.starts_with("uint")
-                && int_range(name).is_some_and(|(lo, hi)| {
-                    within(lo, hi, Box::new(v.iter().map(|x| i128::from(*x))))
-                })
+        (Kind::UInt, Values::Bins { low, high, .. }) => {
+            name.starts_with("uint") && ints(Box::new([*low, *high].into_iter().map(|x| x as i128)))
+        }
+        (_, Values::Bins { .. }) => false,
+        (_, Values::Int(v)) => {
+            name.starts_with("int") && ints(Box::new(v.iter().map(|x| i128::from(*x))))
+        }
+        (_, Values::UInt(v)) => {
+            name.starts_with("uint") && ints(Box::new(v.iter().map(|x| i128::from(*x))))
         }
     }
 }
@@ -48,13 +71,11 @@ pub fn fits(name: &str, column: &ColumnCode) -> bool {
         .and_then(|r| r.strip_suffix('>'))
     {
         return match inner.split_once(',') {
-            Some((index, value)) => {
-                int_range(index).is_some() && value_type_fits(value, column.values())
-            }
+            Some((index, value)) => int_range(index).is_some() && value_type_fits(value, column),
             None => false,
         };
     }
-    value_type_fits(name, column.values())
+    value_type_fits(name, column)
 }
 
 /// Whether values of this type are narrowed to 32-bit floats on output.

@@ -340,12 +340,7 @@ impl Inference {
             .map(|col| match col.null_code() {
                 Some(null) => Encoder::WithNull(col.clone(), null),
                 None => {
-                    let with_null = ColumnCode::new(
-                        col.name().to_string(),
-                        col.values().clone(),
-                        col.has_other(),
-                        true,
-                    );
+                    let with_null = col.with_null();
                     match with_null.ok().and_then(|w| w.null_code().map(|n| (w, n))) {
                         Some((w, n)) => Encoder::WithNull(w, n),
                         None => Encoder::Plain(col.clone()),

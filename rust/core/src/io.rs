@@ -1,234 +1,125 @@
-//! The model file: our own little-endian binary layout with a version and a CRC-32, read with a
-//! bounds check before every allocation (docs/model-format.md describes it byte by byte).
+//! The four file formats (model, pair statistics, codebook tallies, codebook) written in the
+//! shared byte layout of `bytes` (docs/model-format.md describes them byte by byte).
 
-use crate::codebook::{Codebook, CodebookBuilder, ColumnCode, Values};
+use crate::bytes::{bad, Reader, Writer, KIND_CODEBOOK, KIND_MODEL, KIND_STATS, KIND_TALLIES};
+use crate::codebook::{Codebook, ColumnCode, Shape, Values};
 use crate::error::{Error, Result};
 use crate::model::TreeModel;
+use crate::shape::{Tail, Within};
 use crate::stats::PairStats;
-use crate::values::Kind;
+use crate::tally::{family_code, family_from_code, CodebookBuilder};
 
-/// The first eight bytes of every treewise file.
-pub const MAGIC: &[u8; 8] = b"TREEWISE";
-/// The layout version this build writes and reads.
-pub const FORMAT_VERSION: u32 = 1;
-/// The file holds a fitted model.
-pub const KIND_MODEL: u32 = 1;
-/// The file holds pair statistics with the codebook they were counted with.
-pub const KIND_STATS: u32 = 2;
-/// The file holds the tallies of a codebook pass (to merge across workers).
-pub const KIND_TALLIES: u32 = 3;
-/// The file holds a codebook alone.
-pub const KIND_CODEBOOK: u32 = 4;
-const HEADER_LEN: usize = 8 + 4 + 4 + 8 + 4;
 const NO_PARENT: u32 = u32::MAX;
 
-/// Appends little-endian fields to a byte buffer.
-#[derive(Default)]
-pub struct Writer {
-    buf: Vec<u8>,
-}
-
-impl Writer {
-    pub fn u8(&mut self, v: u8) {
-        self.buf.push(v);
-    }
-    pub fn u32(&mut self, v: u32) {
-        self.buf.extend_from_slice(&v.to_le_bytes());
-    }
-    pub fn u64(&mut self, v: u64) {
-        self.buf.extend_from_slice(&v.to_le_bytes());
-    }
-    pub fn i64(&mut self, v: i64) {
-        self.buf.extend_from_slice(&v.to_le_bytes());
-    }
-    pub fn f64(&mut self, v: f64) {
-        self.buf.extend_from_slice(&v.to_le_bytes());
-    }
-    pub fn len(&mut self, n: usize) {
-        self.u64(n as u64);
-    }
-    pub fn str(&mut self, s: &str) {
-        self.len(s.len());
-        self.buf.extend_from_slice(s.as_bytes());
-    }
-    pub fn u64s(&mut self, v: &[u64]) {
-        self.len(v.len());
-        v.iter().for_each(|x| self.u64(*x));
-    }
-    pub fn f64s(&mut self, v: &[f64]) {
-        self.len(v.len());
-        v.iter().for_each(|x| self.f64(*x));
-    }
-
-    /// The finished file: header (magic, version, kind, payload length, CRC-32) and payload.
-    pub fn finish(self, kind: u32) -> Vec<u8> {
-        let mut out = Vec::with_capacity(HEADER_LEN + self.buf.len());
-        out.extend_from_slice(MAGIC);
-        out.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
-        out.extend_from_slice(&kind.to_le_bytes());
-        out.extend_from_slice(&(self.buf.len() as u64).to_le_bytes());
-        out.extend_from_slice(&crc32fast::hash(&self.buf).to_le_bytes());
-        out.extend_from_slice(&self.buf);
-        out
+fn variant_code(values: &Values) -> u8 {
+    match values {
+        Values::Bool(_) => 0,
+        Values::Int(_) => 1,
+        Values::UInt(_) => 2,
+        Values::Str(_) => 3,
+        Values::Float(_) => 4,
+        Values::Bins { .. } => 5,
     }
 }
 
-/// Reads little-endian fields, refusing any length that the remaining bytes cannot hold.
-pub struct Reader<'a> {
-    buf: &'a [u8],
-    pos: usize,
-}
-
-fn bad(what: impl std::fmt::Display) -> Error {
-    Error::CorruptModel(format!(
-        "{what}; the file is damaged or was not written by treewise"
-    ))
-}
-
-impl<'a> Reader<'a> {
-    /// Checks the header of `file` and returns a reader over its payload.
-    pub fn open(file: &'a [u8], kind: u32) -> Result<Self> {
-        if file.len() < HEADER_LEN || &file[..8] != MAGIC {
-            return Err(bad("this is not a treewise file (no TREEWISE header)"));
+fn write_values(w: &mut Writer, values: &Values) {
+    w.u8(variant_code(values));
+    match values {
+        Values::Bool(v) => {
+            w.len(v.len());
+            v.iter().for_each(|b| w.u8(u8::from(*b)));
         }
-        let word =
-            |at: usize| u32::from_le_bytes([file[at], file[at + 1], file[at + 2], file[at + 3]]);
-        let version = word(8);
-        if version != FORMAT_VERSION {
-            return Err(Error::CorruptModel(format!(
-                "the file has layout version {version}, but this treewise reads version \
-                 {FORMAT_VERSION}; use the treewise release that wrote it"
-            )));
+        Values::Int(v) => {
+            w.len(v.len());
+            v.iter().for_each(|x| w.i64(*x));
         }
-        let found = word(12);
-        if found != kind {
-            return Err(bad(format!("the file holds kind {found}, not kind {kind}")));
+        Values::UInt(v) => w.u64s(v),
+        Values::Str(v) => {
+            w.len(v.len());
+            v.iter().for_each(|s| w.str(s));
         }
-        let mut len_bytes = [0u8; 8];
-        len_bytes.copy_from_slice(&file[16..24]);
-        let declared = u64::from_le_bytes(len_bytes);
-        let payload = &file[HEADER_LEN..];
-        if declared != payload.len() as u64 {
+        Values::Float(v) => w.f64s(v),
+        Values::Bins {
+            edges,
+            low,
+            high,
+            specials,
+        } => {
+            w.f64s(edges);
+            w.f64(*low);
+            w.f64(*high);
+            w.f64s(specials);
+        }
+    }
+}
+
+fn read_values(r: &mut Reader<'_>, name: &str) -> Result<Values> {
+    Ok(match r.u8()? {
+        0 => {
+            let k = r.len(1)?;
+            Values::Bool((0..k).map(|_| flag(r)).collect::<Result<_>>()?)
+        }
+        1 => {
+            let k = r.len(8)?;
+            Values::Int((0..k).map(|_| r.i64()).collect::<Result<_>>()?)
+        }
+        2 => Values::UInt(r.u64s()?),
+        3 => {
+            let k = r.len(8)?;
+            Values::Str(
+                (0..k)
+                    .map(|_| r.str().map(String::into_boxed_str))
+                    .collect::<Result<_>>()?,
+            )
+        }
+        4 => Values::Float(r.f64s()?),
+        5 => Values::Bins {
+            edges: r.f64s()?,
+            low: r.f64()?,
+            high: r.f64()?,
+            specials: r.f64s()?,
+        },
+        other => {
             return Err(bad(format!(
-                "the header declares {declared} bytes of payload but {} follow (truncated?)",
-                payload.len()
-            )));
+                "column '{name}' has unknown values kind {other}"
+            )))
         }
-        if crc32fast::hash(payload) != word(24) {
-            return Err(bad("the checksum does not match the contents"));
-        }
-        Ok(Reader {
-            buf: payload,
-            pos: 0,
-        })
-    }
-
-    fn take(&mut self, n: usize) -> Result<&'a [u8]> {
-        if n > self.buf.len() - self.pos {
-            return Err(bad(format!(
-                "a field at byte {} runs past the end",
-                self.pos
-            )));
-        }
-        let out = &self.buf[self.pos..self.pos + n];
-        self.pos += n;
-        Ok(out)
-    }
-    fn array<const N: usize>(&mut self) -> Result<[u8; N]> {
-        let mut a = [0u8; N];
-        a.copy_from_slice(self.take(N)?);
-        Ok(a)
-    }
-    pub fn u8(&mut self) -> Result<u8> {
-        Ok(self.take(1)?[0])
-    }
-    pub fn u32(&mut self) -> Result<u32> {
-        Ok(u32::from_le_bytes(self.array()?))
-    }
-    pub fn u64(&mut self) -> Result<u64> {
-        Ok(u64::from_le_bytes(self.array()?))
-    }
-    pub fn i64(&mut self) -> Result<i64> {
-        Ok(i64::from_le_bytes(self.array()?))
-    }
-    pub fn f64(&mut self) -> Result<f64> {
-        Ok(f64::from_le_bytes(self.array()?))
-    }
-    /// A count of items of `size` bytes each, checked against what is left before any allocation.
-    pub fn len(&mut self, size: usize) -> Result<usize> {
-        let n = self.u64()?;
-        let left = (self.buf.len() - self.pos) as u64;
-        if n.checked_mul(size.max(1) as u64)
-            .is_none_or(|bytes| bytes > left)
-        {
-            return Err(bad(format!(
-                "a length of {n} at byte {} is larger than the file",
-                self.pos - 8
-            )));
-        }
-        usize::try_from(n).map_err(|_| bad("a length does not fit in memory"))
-    }
-    pub fn str(&mut self) -> Result<String> {
-        let n = self.len(1)?;
-        let bytes = self.take(n)?;
-        String::from_utf8(bytes.to_vec()).map_err(|_| bad("a name is not valid UTF-8"))
-    }
-    pub fn u64s(&mut self) -> Result<Vec<u64>> {
-        let n = self.len(8)?;
-        (0..n).map(|_| self.u64()).collect()
-    }
-    pub fn f64s(&mut self) -> Result<Vec<f64>> {
-        let n = self.len(8)?;
-        (0..n).map(|_| self.f64()).collect()
-    }
-    /// Fails unless every byte was read.
-    pub fn end(&self) -> Result<()> {
-        if self.pos != self.buf.len() {
-            return Err(bad(format!(
-                "{} unread bytes at the end",
-                self.buf.len() - self.pos
-            )));
-        }
-        Ok(())
-    }
+    })
 }
 
-fn kind_code(kind: Kind) -> u8 {
-    match kind {
-        Kind::Bool => 0,
-        Kind::Int => 1,
-        Kind::UInt => 2,
-        Kind::Str => 3,
-        Kind::Float => 4,
-    }
-}
-
-/// Writes a codebook's columns.
+/// Writes a codebook's columns: name, value family, codes, and the shape inside the codes.
 pub fn write_codebook(w: &mut Writer, codebook: &Codebook) {
     w.len(codebook.columns().len());
     for col in codebook.columns() {
         w.str(col.name());
-        w.u8(kind_code(col.values().kind()));
+        w.u8(family_code(col.family()));
         w.u8(u8::from(col.has_other()));
         w.u8(u8::from(col.has_null()));
-        match col.values() {
-            Values::Bool(v) => {
-                w.len(v.len());
-                v.iter().for_each(|b| w.u8(u8::from(*b)));
+        write_values(w, col.values());
+        let shape = col.shape();
+        w.u8(u8::from(shape.integral));
+        match &shape.tail {
+            None => w.u8(0),
+            Some(tail) => {
+                w.u8(1);
+                write_values(w, &tail.values);
+                w.u64s(&tail.counts);
+                w.u64(tail.rest_values);
+                w.u64(tail.rest_rows);
             }
-            Values::Int(v) => {
-                w.len(v.len());
-                v.iter().for_each(|x| w.i64(*x));
-            }
-            Values::UInt(v) => w.u64s(v),
-            Values::Str(v) => {
-                w.len(v.len());
-                v.iter().for_each(|s| w.str(s));
-            }
-            Values::Bins { edges, low, high } => {
-                w.f64s(edges);
-                w.f64(*low);
-                w.f64(*high);
+        }
+        w.len(shape.within.len());
+        for within in &shape.within {
+            match within {
+                Within::Atoms { values, counts } => {
+                    w.u8(0);
+                    w.f64s(values);
+                    w.u64s(counts);
+                }
+                Within::Steps(points) => {
+                    w.u8(1);
+                    w.f64s(points);
+                }
             }
         }
     }
@@ -242,48 +133,53 @@ fn flag(r: &mut Reader<'_>) -> Result<bool> {
     }
 }
 
-/// Reads a codebook, validating each column (sorted, distinct, finite values; sizes).
+/// Reads a codebook, validating each column (sorted, distinct values; bins, tails and the values
+/// inside bins consistent; sizes checked before allocating).
 pub fn read_codebook(r: &mut Reader<'_>) -> Result<Codebook> {
-    // The smallest column takes 8 + 3 + 8 bytes; that bounds the count before allocating.
-    let n = r.len(19)?;
+    // The smallest column takes 8 + 4 + 9 + 1 + 1 + 8 bytes; that bounds the count.
+    let n = r.len(31)?;
     let mut columns = Vec::with_capacity(n);
     for _ in 0..n {
         let name = r.str()?;
-        let kind = r.u8()?;
+        let family = family_from_code(r.u8()?)
+            .ok_or_else(|| bad(format!("column '{name}' has an unknown value family")))?;
         let has_other = flag(r)?;
         let has_null = flag(r)?;
-        let values = match kind {
-            0 => {
-                let k = r.len(1)?;
-                Values::Bool((0..k).map(|_| flag(r)).collect::<Result<_>>()?)
-            }
-            1 => {
-                let k = r.len(8)?;
-                Values::Int((0..k).map(|_| r.i64()).collect::<Result<_>>()?)
-            }
-            2 => Values::UInt(r.u64s()?),
-            3 => {
-                let k = r.len(8)?;
-                Values::Str(
-                    (0..k)
-                        .map(|_| r.str().map(String::into_boxed_str))
-                        .collect::<Result<_>>()?,
-                )
-            }
-            4 => {
-                let edges = r.f64s()?;
-                Values::Bins {
-                    edges,
-                    low: r.f64()?,
-                    high: r.f64()?,
-                }
-            }
-            other => return Err(bad(format!("column '{name}' has unknown kind {other}"))),
+        let values = read_values(r, &name)?;
+        let integral = flag(r)?;
+        let tail = if flag(r)? {
+            Some(Tail {
+                values: read_values(r, &name)?,
+                counts: r.u64s()?,
+                rest_values: r.u64()?,
+                rest_rows: r.u64()?,
+            })
+        } else {
+            None
         };
-        let col = ColumnCode::new(name, values, has_other, has_null).map_err(|e| match e {
-            Error::CorruptModel(m) => Error::CorruptModel(m),
-            other => bad(other),
-        })?;
+        let k = r.len(9)?;
+        let mut within = Vec::with_capacity(k);
+        for _ in 0..k {
+            within.push(match r.u8()? {
+                0 => Within::Atoms {
+                    values: r.f64s()?,
+                    counts: r.u64s()?,
+                },
+                1 => Within::Steps(r.f64s()?),
+                other => return Err(bad(format!("column '{name}' has bin summary kind {other}"))),
+            });
+        }
+        let shape = Shape {
+            tail,
+            within,
+            integral,
+        };
+        let col = ColumnCode::build(name, family, values, has_other, has_null, shape).map_err(
+            |e| match e {
+                Error::CorruptModel(m) => Error::CorruptModel(m),
+                other => bad(other),
+            },
+        )?;
         columns.push(col);
     }
     Codebook::new(columns).map_err(bad)
@@ -415,7 +311,7 @@ pub fn codebook_from_bytes(file: &[u8]) -> Result<Codebook> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::codebook::ColumnCode;
+    use crate::bytes::HEADER_LEN;
 
     fn small_model() -> Result<TreeModel> {
         let a = ColumnCode::new(
@@ -430,6 +326,7 @@ mod tests {
                 edges: vec![1.5],
                 low: 0.0,
                 high: 3.0,
+                specials: vec![],
             },
             false,
             false,
@@ -441,7 +338,7 @@ mod tests {
             codebook,
             vec!["string".into(), "float64".into()],
             &stats,
-            0,
+            Some(0),
             0.5,
             crate::Prune::None,
         )
@@ -485,7 +382,8 @@ mod tests {
         let b = tallies_from_bytes(&tallies_to_bytes(&b))?;
         a.merge(&b)?;
         assert_eq!(tallies_to_bytes(&a), tallies_to_bytes(&whole));
-        let (codebook, _) = whole.finish(128, 10)?;
+        let codebook = whole.finish(128, 2, &[])?.codebook;
+        assert!(codebook.columns()[0].shape().integral);
         assert_eq!(
             codebook_from_bytes(&codebook_to_bytes(&codebook))?,
             codebook

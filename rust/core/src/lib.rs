@@ -1,5 +1,6 @@
 //! treewise-core: codebooks, exact pair counts, mutual information and Kruskal, with no Python.
 
+pub mod bytes;
 pub mod codebook;
 pub mod dtype;
 pub mod error;
@@ -8,14 +9,17 @@ pub mod io;
 pub mod kernels;
 pub mod model;
 pub mod rng;
+pub mod shape;
 pub mod stats;
+pub mod tally;
 pub mod tree;
 pub mod values;
 pub mod weights;
 
-pub use codebook::{CapReport, Codebook, CodebookBuilder, ColumnCode, Values};
+pub use codebook::{Codebook, ColumnCode, Values};
 pub use error::{Error, Result};
 pub use stats::PairStats;
+pub use tally::{CapReport, CodebookBuilder, KindChoice, Learned, Note};
 pub use weights::PairWeight;
 
 /// Which edges of the maximum spanning tree to keep; dropping some turns the tree into a forest.
@@ -76,17 +80,35 @@ pub fn chow_liu(stats: &PairStats, root: usize, prune: Prune) -> Result<Structur
 }
 
 /// Fits the Chow–Liu structure to `stats` and returns it as a model with smoothing `alpha`.
+/// Without a `root`, the root is the centre of the tree among columns that are not constant
+/// (see [`tree::centre`]).
 pub fn fit_model(
     codebook: Codebook,
     dtypes: Vec<String>,
     stats: &PairStats,
-    root: usize,
+    root: Option<usize>,
     alpha: f64,
     prune: Prune,
 ) -> Result<model::TreeModel> {
-    let s = chow_liu(stats, root, prune)?;
+    let s = chow_liu(stats, root.unwrap_or(0), prune)?;
     let mi = s.weights.iter().map(|w| w.mutual_info).collect();
-    model::TreeModel::from_stats(codebook, dtypes, stats, root, s.oriented.parent, mi, alpha)
+    let d = stats.n_columns();
+    let (root, parent) = match root {
+        Some(r) => (r, s.oriented.parent),
+        None => {
+            let edges: Vec<(usize, usize)> = s
+                .oriented
+                .parent
+                .iter()
+                .enumerate()
+                .filter_map(|(c, p)| p.map(|p| (p, c)))
+                .collect();
+            let eligible: Vec<bool> = codebook.cardinalities().iter().map(|r| *r > 1).collect();
+            let r = tree::centre(d, &edges, &eligible);
+            (r, tree::orient(d, &edges, r).parent)
+        }
+    };
+    model::TreeModel::from_stats(codebook, dtypes, stats, root, parent, mi, alpha)
 }
 
 #[cfg(test)]

@@ -4,10 +4,11 @@
 use arrow_array::RecordBatch;
 use rayon::prelude::*;
 
-use crate::codebook::{Codebook, Values, UNSEEN};
+use crate::codebook::{Codebook, ColumnCode, Values, UNSEEN};
 use crate::dtype;
 use crate::error::{Error, Result};
 use crate::rng::Rng;
+use crate::shape::pick;
 use crate::stats::{pair_index, PairStats};
 use crate::weights::{chi2_sf, PairWeight};
 
@@ -120,16 +121,35 @@ impl Cpt {
     }
 }
 
-/// A number in bin `k` of a float column with bin bounds `bound` (low, edges…, high), drawn
-/// uniformly: [lo, hi) for every bin but the last, which is [lo, hi]. NaN for a null code.
+/// The number that code `k` of numeric column `col` stands for at uniform draw `u`: inside a bin,
+/// a value from the bin's observed distribution (uniform in [lo, hi) when the codebook has no
+/// summary of it); a non-finite value's own code gives that value; NaN for "other" and null.
 /// With `narrow`, the value is rounded to the nearest 32-bit float that is still in the bin.
-fn value_in_bin(bound: &[f64], k: usize, u: f64, narrow: bool) -> f64 {
-    if k + 1 >= bound.len() {
+fn number_at(col: &ColumnCode, k: usize, u: f64, narrow: bool) -> f64 {
+    let Values::Bins {
+        edges,
+        low,
+        high,
+        specials,
+    } = col.values()
+    else {
         return f64::NAN;
+    };
+    if k > edges.len() {
+        return specials
+            .get(k - edges.len() - 1)
+            .copied()
+            .unwrap_or(f64::NAN);
     }
-    let (lo, hi) = (bound[k], bound[k + 1]);
-    let last = k + 2 == bound.len();
-    let mut v = (lo + u * (hi - lo)).clamp(lo, hi);
+    let lo = if k == 0 { *low } else { edges[k - 1] };
+    let last = k == edges.len();
+    let hi = if last { *high } else { edges[k] };
+    let shape = col.shape();
+    let v = match shape.within.get(k) {
+        Some(within) => within.value(u, shape.integral),
+        None => lo + u * (hi - lo),
+    };
+    let mut v = v.clamp(lo, hi);
     if narrow {
         // The bounds are data values of a float32 column, so they are exact in f32.
         let mut f = v as f32;
@@ -179,13 +199,17 @@ impl Scored {
     }
 }
 
-/// Sampled rows, as codes, plus the numbers drawn inside the bins of float columns.
+/// Sampled rows, as codes, plus the values drawn inside the codes: numbers inside the bins of
+/// numeric columns, and rare values behind the "other" code of categorical ones.
 #[derive(Clone, Debug, Default)]
 pub struct Sampled {
     /// Codes per column.
     pub codes: Vec<Vec<u16>>,
-    /// Per column: for a float column, the value drawn in its bin (NaN for a null code).
+    /// Per column: for a numeric column, the number each code stands for (NaN for a null code).
     pub floats: Vec<Option<Vec<f64>>>,
+    /// Per column with a tail table: the tail entry drawn where the code is "other", else
+    /// `u32::MAX`.
+    pub tails: Vec<Option<Vec<u32>>>,
 }
 
 impl Sampled {
@@ -200,6 +224,11 @@ impl Sampled {
             .zip(next.codes)
             .for_each(|(a, b)| a.extend(b));
         for (a, b) in self.floats.iter_mut().zip(next.floats) {
+            if let (Some(a), Some(b)) = (a, b) {
+                a.extend(b);
+            }
+        }
+        for (a, b) in self.tails.iter_mut().zip(next.tails) {
             if let (Some(a), Some(b)) = (a, b) {
                 a.extend(b);
             }
@@ -220,6 +249,17 @@ pub struct TreeModel {
     pair_mi: Vec<f64>,
     alpha: f64,
     cpts: Vec<Cpt>,
+    tails: Vec<Option<TailTables>>,
+}
+
+/// A column's tail behind "other", ready for scoring and sampling at the model's smoothing.
+#[derive(Clone, Debug)]
+struct TailTables {
+    /// ln P(value | other) per tail entry.
+    logp: Vec<f64>,
+    /// ln P(value | other) for a value outside the table.
+    outside: f64,
+    cdf: Vec<f64>,
 }
 
 fn corrupt(what: String) -> Error {
@@ -355,6 +395,7 @@ impl TreeModel {
             pair_mi,
             alpha: 0.0,
             cpts: Vec::new(),
+            tails: Vec::new(),
         };
         model.set_alpha(alpha)?;
         Ok(model)
@@ -414,6 +455,21 @@ impl TreeModel {
             .map(|c| {
                 let rows = self.parent[c].map_or(1, |p| cards[p]);
                 Cpt::new(&self.counts[c], rows, cards[c], alpha)
+            })
+            .collect();
+        self.tails = self
+            .codebook
+            .columns()
+            .iter()
+            .map(|col| {
+                col.shape().tail.as_ref().map(|tail| {
+                    let (logp, outside) = tail.log_probs(alpha);
+                    TailTables {
+                        logp,
+                        outside,
+                        cdf: tail.cdf(),
+                    }
+                })
             })
             .collect();
         self.alpha = alpha;
@@ -496,9 +552,11 @@ impl TreeModel {
     }
 
     /// ln P of column c's code at each row given its parent's code (UNSEEN allowed in both).
+    /// `tail` holds ln P(value | other) per row for a column with a tail table (0 elsewhere).
     fn column_log_prob(
         &self,
         codes: &[Vec<u16>],
+        tail: Option<&[f64]>,
         c: usize,
         rows: std::ops::Range<usize>,
         out: &mut [f64],
@@ -508,7 +566,7 @@ impl TreeModel {
         let xs = &codes[c][rows.clone()];
         match self.parent[c] {
             Some(p) => {
-                let ps = &codes[p][rows];
+                let ps = &codes[p][rows.clone()];
                 for ((o, &x), &a) in out.iter_mut().zip(xs).zip(ps) {
                     let l = cpt.log_prob(Some(a), x);
                     *o = if add { *o + l } else { l };
@@ -521,12 +579,47 @@ impl TreeModel {
                 }
             }
         }
+        if let Some(tail) = tail {
+            out.iter_mut().zip(&tail[rows]).for_each(|(o, t)| *o += t);
+        }
+    }
+
+    /// ln P(value | other) per row of each column with a tail table, 0 where the code is not
+    /// "other" (a value outside the table gets the table's share for such values).
+    fn tail_terms(&self, batch: &RecordBatch, codes: &[Vec<u16>]) -> Result<Vec<Option<Vec<f64>>>> {
+        self.codebook
+            .columns()
+            .par_iter()
+            .zip(batch.columns().par_iter())
+            .zip(codes.par_iter())
+            .zip(self.tails.par_iter())
+            .map(|(((col, array), codes), tables)| {
+                let (Some(tables), Some(other)) = (tables, col.other_code()) else {
+                    return Ok(None);
+                };
+                let Some(index) = col.tail_indices(array.as_ref())? else {
+                    return Ok(None);
+                };
+                Ok(Some(
+                    codes
+                        .iter()
+                        .zip(index)
+                        .map(|(&code, i)| match (code == other, i) {
+                            (false, _) => 0.0,
+                            (true, UNSEEN) => tables.outside,
+                            (true, i) => tables.logp[usize::from(i)],
+                        })
+                        .collect(),
+                ))
+            })
+            .collect()
     }
 
     /// Scores one batch with the model's columns (in order). With `surprisal`, also returns
     /// −ln P(x_c | x_parent) for every column.
     pub fn score(&self, batch: &RecordBatch, surprisal: bool) -> Result<Scored> {
         let codes = self.codebook.encode(batch, false)?;
+        let tails = self.tail_terms(batch, &codes)?;
         let n = batch.num_rows();
         let d = codes.len();
         let unseen = codes
@@ -540,7 +633,8 @@ impl TreeModel {
             .for_each(|(k, out)| {
                 let start = k * SCORE_CHUNK;
                 for c in 0..d {
-                    self.column_log_prob(&codes, c, start..start + out.len(), out, true);
+                    let tail = tails[c].as_deref();
+                    self.column_log_prob(&codes, tail, c, start..start + out.len(), out, true);
                 }
             });
         let surprisal = surprisal.then(|| {
@@ -548,7 +642,7 @@ impl TreeModel {
                 .into_par_iter()
                 .map(|c| {
                     let mut col = vec![0.0; n];
-                    self.column_log_prob(&codes, c, 0..n, &mut col, false);
+                    self.column_log_prob(&codes, tails[c].as_deref(), c, 0..n, &mut col, false);
                     col.iter_mut().for_each(|v| *v = -*v);
                     col
                 })
@@ -573,26 +667,21 @@ impl TreeModel {
         let d = self.codebook.columns().len();
         let first_block = start / SAMPLE_BLOCK as u64;
         let n_blocks = count.div_ceil(SAMPLE_BLOCK);
-        let bounds: Vec<Option<Vec<f64>>> = self
-            .codebook
-            .columns()
+        let columns = self.codebook.columns();
+        let numeric: Vec<bool> = columns
             .iter()
-            .map(|col| match col.values() {
-                Values::Bins { edges, low, high } => {
-                    let mut b = Vec::with_capacity(edges.len() + 2);
-                    b.push(*low);
-                    b.extend_from_slice(edges);
-                    b.push(*high);
-                    Some(b)
-                }
-                _ => None,
-            })
+            .map(|col| matches!(col.values(), Values::Bins { .. }))
             .collect();
         let mut out = Sampled {
             codes: vec![vec![0u16; count]; d],
-            floats: bounds
+            floats: numeric
                 .iter()
-                .map(|b| b.as_ref().map(|_| vec![f64::NAN; count]))
+                .map(|&is| is.then(|| vec![f64::NAN; count]))
+                .collect(),
+            tails: self
+                .tails
+                .iter()
+                .map(|t| t.as_ref().map(|_| vec![u32::MAX; count]))
                 .collect(),
         };
         // Each block writes straight into its own slice of every output column.
@@ -603,23 +692,14 @@ impl TreeModel {
                 code_blocks[b].push(chunk);
             }
         }
-        let mut float_blocks: Vec<Vec<Option<&mut [f64]>>> =
-            (0..n_blocks).map(|_| Vec::with_capacity(d)).collect();
-        for column in &mut out.floats {
-            match column {
-                Some(values) => {
-                    for (b, chunk) in values.chunks_mut(SAMPLE_BLOCK).enumerate() {
-                        float_blocks[b].push(Some(chunk));
-                    }
-                }
-                None => float_blocks.iter_mut().for_each(|f| f.push(None)),
-            }
-        }
+        let float_blocks = split_blocks(&mut out.floats, n_blocks);
+        let tail_blocks = split_blocks(&mut out.tails, n_blocks);
         code_blocks
             .into_par_iter()
             .zip(float_blocks.into_par_iter())
+            .zip(tail_blocks.into_par_iter())
             .enumerate()
-            .for_each(|(b, (mut codes, mut floats))| {
+            .for_each(|(b, ((mut codes, mut floats), mut tails))| {
                 let mut rng = Rng::new(seed, first_block + b as u64);
                 // Column by column in breadth-first order, so each parent is drawn before its
                 // children; the draws per block are fixed, so a block's rows depend only on
@@ -637,10 +717,22 @@ impl TreeModel {
                             .iter_mut()
                             .for_each(|x| *x = cpt.draw(0, rng.next_f64())),
                     }
-                    if let (Some(bound), Some(values)) = (&bounds[c], &mut floats[c]) {
+                    // One more draw per row for what the code stands for, used or not.
+                    if let Some(values) = &mut floats[c] {
                         let narrow = dtype::is_float32(&self.dtypes[c]);
                         for (v, &x) in values.iter_mut().zip(column.iter()) {
-                            *v = value_in_bin(bound, usize::from(x), rng.next_f64(), narrow);
+                            let u = rng.next_f64();
+                            *v = number_at(&columns[c], usize::from(x), u, narrow);
+                        }
+                    }
+                    if let (Some(picked), Some(tables), Some(other)) =
+                        (&mut tails[c], &self.tails[c], columns[c].other_code())
+                    {
+                        for (t, &x) in picked.iter_mut().zip(column.iter()) {
+                            let u = rng.next_f64();
+                            if x == other {
+                                *t = u32::try_from(pick(&tables.cdf, u)).unwrap_or(u32::MAX);
+                            }
                         }
                     }
                     codes[c] = column;
@@ -662,25 +754,35 @@ impl TreeModel {
         self.cpts.get(c).map(|t| t.marginal.as_slice())
     }
 
-    /// A number inside bin `k` of float column `c` at fraction `u` of the bin, rounded as
-    /// `sample` rounds (float32 columns stay float32); None when `c` is not a float column or
-    /// `k` is not one of its bins (the null code).
+    /// The number code `k` of numeric column `c` stands for at uniform draw `u`, as `sample`
+    /// draws it (`u = 0.5` gives the bin's median); None when `c` is not numeric or `k` is its
+    /// null code.
     pub fn value_in_bin(&self, c: usize, k: usize, u: f64) -> Option<f64> {
         let column = self.codebook.columns().get(c)?;
-        let Values::Bins { edges, low, high } = column.values() else {
+        if !matches!(column.values(), Values::Bins { .. }) || k >= column.values().len() {
             return None;
-        };
-        let lo = if k == 0 { *low } else { *edges.get(k - 1)? };
+        }
         let narrow = dtype::is_float32(self.dtypes.get(c)?);
-        // value_in_bin reads bin 0 of the bounds it is given: two bounds make the bin closed
-        // on the right (the last bin), three make it half-open.
-        Some(if k == edges.len() {
-            value_in_bin(&[lo, *high], 0, u, narrow)
-        } else {
-            let hi = *edges.get(k)?;
-            value_in_bin(&[lo, hi, hi], 0, u, narrow)
-        })
+        Some(number_at(column, k, u, narrow))
     }
+}
+
+/// Splits optional per-column outputs into per-block slices (None for columns without one).
+fn split_blocks<T>(columns: &mut [Option<Vec<T>>], n_blocks: usize) -> Vec<Vec<Option<&mut [T]>>> {
+    let mut blocks: Vec<Vec<Option<&mut [T]>>> = (0..n_blocks)
+        .map(|_| Vec::with_capacity(columns.len()))
+        .collect();
+    for column in columns.iter_mut() {
+        match column {
+            Some(values) => {
+                for (b, chunk) in values.chunks_mut(SAMPLE_BLOCK).enumerate() {
+                    blocks[b].push(Some(chunk));
+                }
+            }
+            None => blocks.iter_mut().for_each(|f| f.push(None)),
+        }
+    }
+    blocks
 }
 
 #[cfg(test)]
@@ -698,7 +800,7 @@ mod tests {
             codebook,
             vec!["int64".into(), "bool".into()],
             &stats,
-            1,
+            Some(1),
             alpha,
             crate::Prune::None,
         )
@@ -713,8 +815,8 @@ mod tests {
                 .map(|(a, b)| {
                     let codes = vec![vec![a], vec![b]];
                     let mut out = [0.0];
-                    m.column_log_prob(&codes, 0, 0..1, &mut out, true);
-                    m.column_log_prob(&codes, 1, 0..1, &mut out, true);
+                    m.column_log_prob(&codes, None, 0, 0..1, &mut out, true);
+                    m.column_log_prob(&codes, None, 1, 0..1, &mut out, true);
                     out[0].exp()
                 })
                 .sum();

@@ -87,6 +87,66 @@ pub fn orient(d: usize, edges: &[(usize, usize)], root: usize) -> Oriented {
     Oriented { parent, order }
 }
 
+/// The default root: a centre of the largest component (the column whose longest path to the
+/// others is shortest), among the `eligible` columns when any is; ties go to the lower index.
+pub fn centre(d: usize, edges: &[(usize, usize)], eligible: &[bool]) -> usize {
+    let mut neighbours: Vec<Vec<usize>> = vec![Vec::new(); d];
+    for &(i, j) in edges {
+        neighbours[i].push(j);
+        neighbours[j].push(i);
+    }
+    // Distances from `start` to every column of its component (usize::MAX elsewhere).
+    let distances = |start: usize| {
+        let mut dist = vec![usize::MAX; d];
+        dist[start] = 0;
+        let mut queue = VecDeque::from([start]);
+        while let Some(v) = queue.pop_front() {
+            for &w in &neighbours[v] {
+                if dist[w] == usize::MAX {
+                    dist[w] = dist[v] + 1;
+                    queue.push_back(w);
+                }
+            }
+        }
+        dist
+    };
+    // The largest component (ties: the one holding the lowest column).
+    let mut component = vec![usize::MAX; d];
+    let mut best: (usize, usize) = (0, 0);
+    for start in 0..d {
+        if component[start] != usize::MAX {
+            continue;
+        }
+        let dist = distances(start);
+        let members = dist.iter().filter(|x| **x != usize::MAX).count();
+        dist.iter()
+            .enumerate()
+            .filter(|(_, x)| **x != usize::MAX)
+            .for_each(|(c, _)| component[c] = start);
+        if members > best.1 {
+            best = (start, members);
+        }
+    }
+    let members: Vec<usize> = (0..d).filter(|&c| component[c] == best.0).collect();
+    let any_eligible = members
+        .iter()
+        .any(|&c| eligible.get(c).copied().unwrap_or(false));
+    members
+        .iter()
+        .copied()
+        .filter(|&c| !any_eligible || eligible.get(c).copied().unwrap_or(false))
+        .map(|c| {
+            let far = distances(c)
+                .into_iter()
+                .filter(|x| *x != usize::MAX)
+                .max()
+                .unwrap_or(0);
+            (far, c)
+        })
+        .min()
+        .map_or(0, |(_, c)| c)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -107,5 +167,16 @@ mod tests {
         let o = orient(4, &t, 3);
         assert_eq!(o.parent, vec![Some(2), Some(2), Some(3), None]);
         assert_eq!(o.order, vec![3, 2, 0, 1]);
+    }
+
+    #[test]
+    fn the_centre_of_a_path_is_its_middle() {
+        // 0 - 1 - 2 - 3 - 4, plus an isolated column 5.
+        let edges = [(0, 1), (1, 2), (2, 3), (3, 4)];
+        assert_eq!(centre(6, &edges, &[true; 6]), 2);
+        // Not eligible (constant): the next best is the lower of its neighbours.
+        let mut eligible = [true; 6];
+        eligible[2] = false;
+        assert_eq!(centre(6, &edges, &eligible), 1);
     }
 }

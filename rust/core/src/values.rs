@@ -2,11 +2,14 @@
 
 use arrow_array::cast::AsArray;
 use arrow_array::types::{
-    Float32Type, Float64Type, Int16Type, Int32Type, Int64Type, Int8Type, UInt16Type, UInt32Type,
-    UInt64Type, UInt8Type,
+    Date32Type, Date64Type, DurationMicrosecondType, DurationMillisecondType,
+    DurationNanosecondType, DurationSecondType, Float32Type, Float64Type, Int16Type, Int32Type,
+    Int64Type, Int8Type, Time32MillisecondType, Time32SecondType, Time64MicrosecondType,
+    Time64NanosecondType, TimestampMicrosecondType, TimestampMillisecondType,
+    TimestampNanosecondType, TimestampSecondType, UInt16Type, UInt32Type, UInt64Type, UInt8Type,
 };
 use arrow_array::{Array, ArrowPrimitiveType, PrimitiveArray};
-use arrow_schema::DataType;
+use arrow_schema::{DataType, TimeUnit};
 
 use crate::error::{Error, Result};
 
@@ -17,8 +20,10 @@ pub enum Kind {
     Int,
     UInt,
     Str,
-    /// Floats, binned into quantile intervals.
+    /// Floats: kept as values when few are distinct, else binned into quantile intervals.
     Float,
+    /// Timestamps, dates, times of day and durations: integers over their epoch, in their unit.
+    Time,
 }
 
 impl Kind {
@@ -30,6 +35,7 @@ impl Kind {
             Kind::UInt => "uint",
             Kind::Str => "str",
             Kind::Float => "float",
+            Kind::Time => "time",
         }
     }
 
@@ -41,14 +47,15 @@ impl Kind {
             "uint" => Kind::UInt,
             "str" => Kind::Str,
             "float" => Kind::Float,
+            "time" => Kind::Time,
             _ => return None,
         })
     }
 }
 
 pub(crate) const SUPPORTED: &str =
-    "bool, signed and unsigned integers, strings (utf8, large_utf8, \
-     utf8_view), dictionary/categorical of these, and float32/float64 (binned by quantiles)";
+    "bool, signed and unsigned integers, strings (utf8, large_utf8, utf8_view), \
+     dictionary/categorical of these, float32/float64, and timestamps, dates, times and durations";
 
 /// The family of an Arrow type. `Ok(None)` is the `null` type, which fits any family.
 pub fn classify(column: &str, dt: &DataType) -> Result<Option<Kind>> {
@@ -59,6 +66,12 @@ pub fn classify(column: &str, dt: &DataType) -> Result<Option<Kind>> {
         DataType::UInt8 | DataType::UInt16 | DataType::UInt32 | DataType::UInt64 => Kind::UInt,
         DataType::Utf8 | DataType::LargeUtf8 | DataType::Utf8View => Kind::Str,
         DataType::Float32 | DataType::Float64 => Kind::Float,
+        DataType::Timestamp(..)
+        | DataType::Date32
+        | DataType::Date64
+        | DataType::Time32(_)
+        | DataType::Time64(_)
+        | DataType::Duration(_) => Kind::Time,
         DataType::Dictionary(_, value) => return classify(column, value),
         other => {
             let hint = match other {
@@ -67,14 +80,6 @@ pub fn classify(column: &str, dt: &DataType) -> Result<Option<Kind>> {
                 | DataType::Decimal64(..)
                 | DataType::Decimal128(..)
                 | DataType::Decimal256(..) => "cast it to float64 to bin it, or to string",
-                DataType::Timestamp(..)
-                | DataType::Date32
-                | DataType::Date64
-                | DataType::Time32(_)
-                | DataType::Time64(_)
-                | DataType::Duration(_) => {
-                    "cast it to int64 or float64 to bin it, or derive a bucket column (hour, weekday)"
-                }
                 _ => "cast it to a supported type, or leave it out with columns=",
             };
             return Err(Error::Data(format!(
@@ -131,14 +136,48 @@ pub fn each_bool(array: &dyn Array, mut f: impl FnMut(Option<bool>)) -> Result<(
     Ok(())
 }
 
-/// Calls `f` with each row of a signed integer array, widened to i64.
+/// Calls `f` with each row of a signed integer or time array, widened to i64 (a time value is
+/// its count of units since the epoch, as Arrow stores it).
 pub fn each_i64(array: &dyn Array, f: impl FnMut(Option<i64>)) -> Result<()> {
+    use DataType as T;
     match array.data_type() {
-        DataType::Int8 => walk_primitive::<Int8Type, _>(array, i64::from, f),
-        DataType::Int16 => walk_primitive::<Int16Type, _>(array, i64::from, f),
-        DataType::Int32 => walk_primitive::<Int32Type, _>(array, i64::from, f),
-        DataType::Int64 => walk_primitive::<Int64Type, _>(array, |v| v, f),
+        T::Int8 => walk_primitive::<Int8Type, _>(array, i64::from, f),
+        T::Int16 => walk_primitive::<Int16Type, _>(array, i64::from, f),
+        T::Int32 => walk_primitive::<Int32Type, _>(array, i64::from, f),
+        T::Int64 => walk_primitive::<Int64Type, _>(array, |v| v, f),
+        T::Date32 => walk_primitive::<Date32Type, _>(array, i64::from, f),
+        T::Date64 => walk_primitive::<Date64Type, _>(array, |v| v, f),
+        T::Time32(TimeUnit::Second) => walk_primitive::<Time32SecondType, _>(array, i64::from, f),
+        T::Time32(_) => walk_primitive::<Time32MillisecondType, _>(array, i64::from, f),
+        T::Time64(TimeUnit::Nanosecond) => {
+            walk_primitive::<Time64NanosecondType, _>(array, |v| v, f)
+        }
+        T::Time64(_) => walk_primitive::<Time64MicrosecondType, _>(array, |v| v, f),
+        T::Timestamp(unit, _) => match unit {
+            TimeUnit::Second => walk_primitive::<TimestampSecondType, _>(array, |v| v, f),
+            TimeUnit::Millisecond => walk_primitive::<TimestampMillisecondType, _>(array, |v| v, f),
+            TimeUnit::Microsecond => walk_primitive::<TimestampMicrosecondType, _>(array, |v| v, f),
+            TimeUnit::Nanosecond => walk_primitive::<TimestampNanosecondType, _>(array, |v| v, f),
+        },
+        T::Duration(unit) => match unit {
+            TimeUnit::Second => walk_primitive::<DurationSecondType, _>(array, |v| v, f),
+            TimeUnit::Millisecond => walk_primitive::<DurationMillisecondType, _>(array, |v| v, f),
+            TimeUnit::Microsecond => walk_primitive::<DurationMicrosecondType, _>(array, |v| v, f),
+            TimeUnit::Nanosecond => walk_primitive::<DurationNanosecondType, _>(array, |v| v, f),
+        },
         _ => Err(mismatch(array, Kind::Int)),
+    }
+}
+
+/// Calls `f` with each row of any number or time array as an f64 (integers beyond 2^53 round to
+/// the nearest float, which keeps their order). NaN is passed through.
+pub fn each_number(array: &dyn Array, mut f: impl FnMut(Option<f64>)) -> Result<()> {
+    match array.data_type() {
+        DataType::Float32 | DataType::Float64 => each_f64(array, f),
+        DataType::UInt8 | DataType::UInt16 | DataType::UInt32 | DataType::UInt64 => {
+            each_u64(array, |v| f(v.map(|x| x as f64)))
+        }
+        _ => each_i64(array, |v| f(v.map(|x| x as f64))),
     }
 }
 

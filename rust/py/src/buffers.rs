@@ -20,7 +20,7 @@ macro_rules! le_bytes {
         }
     )*};
 }
-le_bytes!(u16, u64, f64);
+le_bytes!(u16, u32, u64, f64);
 
 /// The concatenation of `parts` as one bytes object (numpy reads it with `np.frombuffer`).
 pub fn le_bytes<'py, T: LeBytes>(py: Python<'py>, parts: &[&[T]]) -> PyResult<Bound<'py, PyBytes>> {

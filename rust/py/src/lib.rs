@@ -10,8 +10,9 @@ mod threads;
 use arrow_array::RecordBatch;
 use pyo3::prelude::*;
 use pyo3::types::{PyBytes, PyList, PyTuple};
-use treewise_core::codebook::{CodebookBuilder, Values};
-use treewise_core::{Codebook, PairStats};
+use treewise_core::codebook::Values;
+use treewise_core::shape::Within;
+use treewise_core::{Codebook, CodebookBuilder, KindChoice, PairStats};
 
 use crate::arrow_import::import_batch;
 use crate::buffers::le_bytes;
@@ -35,6 +36,8 @@ pub(crate) fn slices(batch: &RecordBatch) -> Vec<RecordBatch> {
 
 /// What the cap did to one column: (column, values capped, rows capped).
 type CapTuple = (String, usize, u64);
+/// A note on one column: (column, "left out" or "constant", message).
+type NoteTuple = (String, String, String);
 
 /// The codebook pass: tallies every batch, then fixes the codes.
 #[pyclass(name = "CodebookBuilder", module = "treewise._core")]
@@ -93,20 +96,46 @@ impl PyCodebookBuilder {
         Ok(self.inner.as_ref().map_or(0, CodebookBuilder::rows))
     }
 
-    /// Fixes the codes; returns the codebook and a list of (column, values capped, rows capped).
+    /// Fixes the codes; `kinds` maps column names to "auto", "categorical", "numeric" or
+    /// "ignore". Returns the codebook, a list of (column, values capped, rows capped) and notes
+    /// on columns left out or constant.
+    #[pyo3(signature = (max_categories, n_bins, kinds = Vec::new()))]
     fn finish(
         &mut self,
         py: Python<'_>,
         max_categories: usize,
         n_bins: usize,
-    ) -> PyResult<(PyCodebook, Vec<CapTuple>)> {
+        kinds: Vec<(String, String)>,
+    ) -> PyResult<(PyCodebook, Vec<CapTuple>, Vec<NoteTuple>)> {
+        let kinds = kinds
+            .into_iter()
+            .map(|(column, kind)| match KindChoice::from_name(&kind) {
+                Some(k) => Ok((column, k)),
+                None => Err(to_py(treewise_core::Error::Invalid(format!(
+                    "kinds[{column:?}] is {kind:?}; use 'auto', 'categorical', 'numeric' or \
+                     'ignore'"
+                )))),
+            })
+            .collect::<PyResult<Vec<_>>>()?;
         let builder = self.inner.take().ok_or_else(finished_error)?;
-        let (codebook, caps) = detached(py, move || builder.finish(max_categories, n_bins))?;
-        let caps = caps
+        let learned = detached(py, move || builder.finish(max_categories, n_bins, &kinds))?;
+        let caps = learned
+            .caps
             .into_iter()
             .map(|c| (c.column, c.values_capped, c.rows_capped))
             .collect();
-        Ok((PyCodebook { inner: codebook }, caps))
+        let notes = learned
+            .notes
+            .into_iter()
+            .map(|n| (n.column, n.kind.to_string(), n.message))
+            .collect();
+        Ok((
+            PyCodebook {
+                inner: learned.codebook,
+            },
+            caps,
+            notes,
+        ))
     }
 }
 
@@ -154,30 +183,55 @@ impl PyCodebook {
             .columns()
             .get(i)
             .ok_or_else(|| to_py(treewise_core::Error::Invalid(format!("no column {i}"))))?;
-        let values: Py<PyAny> = match col.values() {
-            Values::Bool(v) => PyList::new(py, v)?.into_any().unbind(),
-            Values::Int(v) => PyList::new(py, v)?.into_any().unbind(),
-            Values::UInt(v) => PyList::new(py, v)?.into_any().unbind(),
-            Values::Str(v) => PyList::new(py, v.iter().map(|s| s.as_ref()))?
-                .into_any()
-                .unbind(),
-            Values::Bins { edges, low, high } => PyTuple::new(
-                py,
-                [
-                    PyList::new(py, edges)?.into_any(),
-                    low.into_pyobject(py)?.into_any(),
-                    high.into_pyobject(py)?.into_any(),
-                ],
-            )?
-            .into_any()
-            .unbind(),
-        };
+        let values = values_object(py, col.values())?;
         Ok((
-            col.values().kind().name().to_string(),
+            col.family().name().to_string(),
             values,
             col.has_other(),
             col.has_null(),
         ))
+    }
+
+    /// What column `i`'s codes hold: (kind: "categorical", "numeric" or "constant"; integral;
+    /// the tail behind "other" as (values, counts, rest_values, rest_rows) or None; per bin
+    /// ("atoms", values, counts) or ("steps", points, None)).
+    #[allow(clippy::type_complexity)]
+    fn shape(
+        &self,
+        py: Python<'_>,
+        i: usize,
+    ) -> PyResult<(
+        String,
+        bool,
+        Option<(Py<PyAny>, Vec<u64>, u64, u64)>,
+        Vec<(String, Vec<f64>, Option<Vec<u64>>)>,
+    )> {
+        let col = self
+            .inner
+            .columns()
+            .get(i)
+            .ok_or_else(|| to_py(treewise_core::Error::Invalid(format!("no column {i}"))))?;
+        let shape = col.shape();
+        let tail = match &shape.tail {
+            Some(t) => Some((
+                values_object(py, &t.values)?,
+                t.counts.clone(),
+                t.rest_values,
+                t.rest_rows,
+            )),
+            None => None,
+        };
+        let within = shape
+            .within
+            .iter()
+            .map(|w| match w {
+                Within::Atoms { values, counts } => {
+                    ("atoms".to_string(), values.clone(), Some(counts.clone()))
+                }
+                Within::Steps(points) => ("steps".to_string(), points.clone(), None),
+            })
+            .collect();
+        Ok((col.model_kind().to_string(), shape.integral, tail, within))
     }
 
     fn __len__(&self) -> usize {
@@ -362,4 +416,33 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_function(wrap_pyfunction!(thread_count, m)?)?;
     m.add("DEBUG_BUILD", cfg!(debug_assertions))?;
     Ok(())
+}
+
+/// Kept values as a Python list, or (edges, low, high, specials) for bins.
+fn values_object(py: Python<'_>, values: &Values) -> PyResult<Py<PyAny>> {
+    Ok(match values {
+        Values::Bool(v) => PyList::new(py, v)?.into_any().unbind(),
+        Values::Int(v) => PyList::new(py, v)?.into_any().unbind(),
+        Values::UInt(v) => PyList::new(py, v)?.into_any().unbind(),
+        Values::Str(v) => PyList::new(py, v.iter().map(|s| s.as_ref()))?
+            .into_any()
+            .unbind(),
+        Values::Float(v) => PyList::new(py, v)?.into_any().unbind(),
+        Values::Bins {
+            edges,
+            low,
+            high,
+            specials,
+        } => PyTuple::new(
+            py,
+            [
+                PyList::new(py, edges)?.into_any(),
+                low.into_pyobject(py)?.into_any(),
+                high.into_pyobject(py)?.into_any(),
+                PyList::new(py, specials)?.into_any(),
+            ],
+        )?
+        .into_any()
+        .unbind(),
+    })
 }

@@ -31,7 +31,7 @@ impl PyTreeModel {
         codebook: &PyCodebook,
         stats: &PyPairStats,
         dtypes: Vec<String>,
-        root: usize,
+        root: Option<usize>,
         alpha: f64,
         prune: &str,
         level: f64,
@@ -184,7 +184,8 @@ impl PyTreeModel {
     }
 
     /// Samples `count` rows from row `start` of the stream of `seed`: (u16 codes, column after
-    /// column, as bytes; per column the f64 bytes of values drawn in float bins, or None).
+    /// column, as bytes; per column the f64 bytes of the numbers drawn in numeric bins, or None;
+    /// per column the u32 bytes of the tail entries drawn behind "other", or None).
     #[allow(clippy::type_complexity)]
     fn sample<'py>(
         &self,
@@ -192,7 +193,11 @@ impl PyTreeModel {
         start: u64,
         count: usize,
         seed: u64,
-    ) -> PyResult<(Bound<'py, PyBytes>, Vec<Option<Bound<'py, PyBytes>>>)> {
+    ) -> PyResult<(
+        Bound<'py, PyBytes>,
+        Vec<Option<Bound<'py, PyBytes>>>,
+        Vec<Option<Bound<'py, PyBytes>>>,
+    )> {
         let model = &self.inner;
         // SLICE_ROWS is a multiple of the sampling block, so the rows do not change.
         let mut sampled = Sampled::default();
@@ -209,6 +214,11 @@ impl PyTreeModel {
             .iter()
             .map(|f| f.as_ref().map(|f| le_bytes(py, &[f])).transpose())
             .collect::<PyResult<_>>()?;
-        Ok((le_bytes(py, &parts)?, floats))
+        let tails = sampled
+            .tails
+            .iter()
+            .map(|t| t.as_ref().map(|t| le_bytes(py, &[t])).transpose())
+            .collect::<PyResult<_>>()?;
+        Ok((le_bytes(py, &parts)?, floats, tails))
     }
 }
