@@ -347,12 +347,25 @@ def _prune(ctx: click.Context, param: click.Parameter, value: str | None) -> str
     return level
 
 
+def _kinds(_ctx: click.Context, _param: click.Parameter, value: tuple[str, ...]) -> dict[str, str]:
+    kinds = {}
+    for item in value:
+        column, sep, kind = item.partition("=")
+        if not sep or not column or kind not in ("auto", "categorical", "numeric", "ignore"):
+            raise click.BadParameter(
+                f"give COLUMN=KIND with KIND one of auto, categorical, numeric, ignore; "
+                f"not {item!r}"
+            )
+        kinds[column] = kind
+    return kinds
+
+
 @cli.command(
     epilog="""\b
 Example:
   treewise fit demo-output/sessions -o shop.treewise --exclude session_id,planted_anomaly
   treewise fit 'logs/2026-*.parquet' extra.csv -o logs.treewise \\
-      --columns device,os_family,cart_add,purchase --bins 20"""
+      --columns device,os_family,cart_add,purchase --bins 20 --kind zip_code=categorical"""
 )
 @click.argument("data", nargs=-1, required=True)
 @click.option("-o", "--output", required=True, metavar="MODEL", help="Where to save the model.")
@@ -379,7 +392,17 @@ Example:
     metavar="N",
     default=10,
     show_default=True,
-    help="Quantile bins for float columns.",
+    help="Quantile bins for numeric columns; numbers with at most N distinct values are "
+    "categorical.",
+)
+@click.option(
+    "--kind",
+    "kinds",
+    multiple=True,
+    callback=_kinds,
+    metavar="COL=KIND",
+    help="Model COL as categorical, numeric or auto, or ignore it (repeatable). "
+    "See docs/column-kinds.md.",
 )
 @click.option(
     "--alpha",
@@ -392,7 +415,7 @@ Example:
 @click.option(
     "--root",
     metavar="COL",
-    help="The column the tree hangs from (default: the first modelled one).",
+    help="The column the tree hangs from (default: the centre of the tree).",
 )
 @click.option(
     "--prune",
@@ -411,6 +434,7 @@ def fit(
     exclude: list[str] | None,
     max_categories: int,
     bins: int,
+    kinds: dict[str, str],
     alpha: float,
     root: str | None,
     prune: str | float | None,
@@ -430,6 +454,7 @@ def fit(
         columns=chosen,
         max_categories=max_categories,
         n_bins=bins,
+        kinds=kinds or None,
         root=root,
         alpha=alpha,
         prune=prune,

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import re
 from dataclasses import dataclass
 from typing import Any, cast
@@ -47,10 +48,18 @@ def _is_time(dtype: pa.DataType) -> bool:
     )
 
 
-def type_name(dtype: pa.DataType) -> str:
-    """Our name for a supported Arrow type, as stored in the model file."""
+def type_name(dtype: pa.DataType, levels: pa.Array[Any] | None = None) -> str:
+    """Our name for a supported Arrow type, as stored in the model file.
+
+    An ordered dictionary of strings (an ordered pandas categorical) with its ``levels`` is
+    ``ordered<INDEX>:`` followed by the levels as a JSON list, so that they come back in order,
+    unused ones included.
+    """
     if pa.types.is_dictionary(dtype):
-        return f"dictionary<{type_name(dtype.index_type)},{type_name(dtype.value_type)}>"
+        value = dtype.value_type
+        if dtype.ordered and levels is not None and pa.types.is_string(value):
+            return f"ordered<{type_name(dtype.index_type)}>:" + json.dumps(levels.to_pylist())
+        return f"dictionary<{type_name(dtype.index_type)},{type_name(value)}>"
     if _is_time(dtype):
         return str(dtype)
     name = _NAMES.get(dtype)
@@ -78,9 +87,27 @@ def _time_type(name: str) -> pa.DataType | None:
     return pa.duration(dur)
 
 
+def ordered_levels(name: str) -> list[str] | None:
+    """The levels of an ordered dictionary type name, in order (None for any other name)."""
+    if not name.startswith("ordered<"):
+        return None
+    _, sep, levels = name.partition(">:")
+    try:
+        parsed = json.loads(levels) if sep else None
+    except ValueError:
+        parsed = None
+    if not isinstance(parsed, list) or not all(isinstance(v, str) for v in parsed):
+        raise CorruptModelError(f"the model file names a malformed ordered type {name[:80]!r}")
+    return parsed
+
+
 def type_from_name(name: str) -> pa.DataType:
     """The Arrow type of a stored name; anything else means a damaged or foreign model file."""
-    if name.startswith("dictionary<") and name.endswith(">"):
+    if ordered_levels(name) is not None:
+        index_type = _PLAIN.get(name[len("ordered<") :].partition(">")[0])
+        if index_type is not None and pa.types.is_integer(index_type):
+            return cast(pa.DataType, pa.dictionary(index_type, pa.string(), ordered=True))
+    elif name.startswith("dictionary<") and name.endswith(">"):
         index, _, value = name[len("dictionary<") : -1].partition(",")
         index_type, value_type = _PLAIN.get(index), _PLAIN.get(value)
         if index_type is not None and value_type is not None and pa.types.is_integer(index_type):
@@ -120,6 +147,7 @@ class ColumnValues:
 
     dtype: pa.DataType
     numeric: bool
+    levels: pa.Array[Any] | None
     kept: pa.Array[Any] | None
     other: int | None
     null: int | None
@@ -127,8 +155,8 @@ class ColumnValues:
     tail_counts: npt.NDArray[np.float64] | None
 
     @classmethod
-    def of(cls, codebook: Any, i: int, dtype: pa.DataType) -> ColumnValues:
-        """Column ``i`` of a core codebook, with its fitted Arrow type."""
+    def of(cls, codebook: Any, i: int, dtype: pa.DataType, name: str = "") -> ColumnValues:
+        """Column ``i`` of a core codebook, with its fitted Arrow type (and stored type name)."""
         family, values, has_other, has_null = codebook.column(i)
         kind, _integral, tail, _within = codebook.shape(i)
         value_type = dtype.value_type if pa.types.is_dictionary(dtype) else dtype
@@ -137,9 +165,11 @@ class ColumnValues:
         kept = None if numeric else _values_array(list(values), value_type)
         tail_values = None if tail is None else _values_array(list(tail[0]), value_type)
         counts = None if tail is None else np.asarray(tail[1], dtype=np.float64)
+        levels = ordered_levels(name)
         return cls(
             dtype=dtype,
             numeric=numeric,
+            levels=None if levels is None else pa.array(levels, pa.string()),
             kept=kept,
             other=n_values if has_other else None,
             null=n_values + int(has_other) if has_null else None,
@@ -212,6 +242,14 @@ def decode_column(
     else:
         missing = missing | (codes >= n_kept)
     indices: Any = pa.array(np.where(missing, 0, index).astype(np.int32), mask=missing)
+    if column.levels is not None:
+        # An ordered categorical: index into its own levels, in order, unused ones included.
+        position = {v: k for k, v in enumerate(column.levels.to_pylist())}
+        at = np.array([position.get(v, -1) for v in dictionary.to_pylist()], dtype=np.int32)
+        mapped = at[np.where(missing, 0, index)] if len(at) else np.zeros(len(codes), np.int32)
+        gone = missing | (mapped < 0)
+        keys = pa.array(np.where(gone, 0, mapped).astype(np.int32), mask=gone)
+        return pa.DictionaryArray.from_arrays(keys, column.levels).cast(dtype)
     if pa.types.is_dictionary(dtype):
         return pa.DictionaryArray.from_arrays(indices, dictionary).cast(dtype)
     return dictionary.take(indices).cast(dtype)
@@ -237,6 +275,8 @@ _RANGES = {
 
 
 def _value_name(name: str) -> str:
+    if name.startswith("ordered<"):
+        return "string"
     if name.startswith("dictionary<") and name.endswith(">"):
         return name[len("dictionary<") : -1].partition(",")[2]
     return name
@@ -260,6 +300,9 @@ def widen(first: str, second: str) -> str:
     """One type name for a column seen with two types of one family (e.g. int8 and int64)."""
     if first == second:
         return first
+    if first.startswith("ordered<") or second.startswith("ordered<"):
+        # Two different level lists: their union has no order of its own.
+        return "string"
     if family(first) == "time":
         # Two time types (units, zones): the first one seen; the core checks the family.
         return first
@@ -280,6 +323,13 @@ def fitting_type(name: str, values: list[Any], n_codes: int) -> str:
         low, high = _RANGES[plain]
         if min(numbers) < low or max(numbers) > high:
             return FAMILY_TYPES[family(name)]
+    levels = ordered_levels(name)
+    if levels is not None:
+        index = name[len("ordered<") :].partition(">")[0]
+        missing = {v for v in values if isinstance(v, str)} - set(levels)
+        if missing or index not in _RANGES or len(levels) - 1 > _RANGES[index][1]:
+            return "string"
+        return name
     if name != plain:
         index = name[len("dictionary<") :].partition(",")[0]
         if index not in _RANGES or n_codes - 1 > _RANGES[index][1]:

@@ -55,6 +55,8 @@ def _categories(kind: str, values: Any, has_other: bool, has_null: bool) -> list
         cats.extend(specials)
     else:
         cats = list(values)
+    # One NaN object, so that lists of categories compare equal (NaN != NaN, but `is` holds).
+    cats = [math.nan if isinstance(c, float) and c != c else c for c in cats]
     if has_other:
         cats.append(OTHER)
     if has_null:
@@ -707,7 +709,7 @@ class DependencyTree(Params):
         if getattr(self, "_values", None) is None:
             schema = self._output_schema()
             self._values = [
-                ColumnValues.of(model.codebook, c, schema.field(c).type)
+                ColumnValues.of(model.codebook, c, schema.field(c).type, model.dtypes[c])
                 for c in range(self.n_features_in_)
             ]
         assert self._values is not None

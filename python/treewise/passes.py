@@ -35,7 +35,9 @@ class TypeRecorder:
         for field in batch.schema:
             if pa.types.is_null(field.type):
                 continue
-            name = type_name(field.type)
+            column = batch.column(field.name)
+            levels = column.dictionary if pa.types.is_dictionary(field.type) else None
+            name = type_name(field.type, levels)
             seen = self.types.get(field.name)
             self.types[field.name] = name if seen is None else widen(seen, name)
 

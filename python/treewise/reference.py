@@ -24,7 +24,9 @@ import numpy.typing as npt
 from treewise.categories import OTHER, Bin
 
 __all__ = [
+    "LeftOut",
     "ReferenceTree",
+    "centre",
     "encode_column",
     "encode_like",
     "fit",
@@ -41,17 +43,32 @@ FloatArray = npt.NDArray[np.float64]
 Category = object  # a kept bool/int/str value, a Bin, OTHER, or None (the null code)
 
 
+class LeftOut(ValueError):
+    """A column that is not modelled: it holds only nulls, or looks like an identifier."""
+
+
+#: Rows needed before a column can look like an identifier.
+IDENTIFIER_MIN_ROWS = 20
+
+
+def _looks_like_identifier(n: int, distinct: int) -> bool:
+    """Nearly every value distinct (at least 95%), in enough rows to say so."""
+    return n >= IDENTIFIER_MIN_ROWS and distinct * 20 >= n * 19
+
+
 def encode_column(
     values: npt.NDArray[np.generic], max_categories: int = 128, n_bins: int = 10, name: str = "?"
 ) -> tuple[IntArray, list[Category]]:
-    """Encode one column as integer codes ``0 .. r-1``.
+    """Encode one column as integer codes ``0 .. r-1``, choosing its kind from its values.
 
     Parameters
     ----------
     values : numpy.ndarray
-        A float dtype is numeric (NaN is null) and cut into at most ``n_bins`` quantile bins; any
-        other dtype is categorical (bool, int or str values, ``None`` as null), keeping at most
-        ``max_categories`` codes, counting the "other" and null codes.
+        A float array (NaN is null) or an object array of bool, int or str values (``None`` is
+        null). A column of numbers with more than ``n_bins`` distinct values is numeric: it is
+        cut into at most ``n_bins`` quantile bins, then one code per infinity seen, then null.
+        Any other column is categorical, keeping at most ``max_categories`` codes, counting the
+        "other" and null codes.
     max_categories, n_bins : int
         The caps above.
     name : str
@@ -62,32 +79,58 @@ def encode_column(
     codes : numpy.ndarray of int64
         The code of each row.
     categories : list
-        What each code stands for: kept values (or :class:`Bin`), then OTHER, then None.
+        What each code stands for: kept values (or :class:`Bin` then infinities), then OTHER,
+        then None.
 
     Raises
     ------
+    LeftOut
+        If the column is all null, or looks like an identifier: strings nearly all distinct, or
+        integers nearly all distinct over a range at most twice their number.
     ValueError
-        If the column is not 1-D, is all null, holds an infinity, or mixes value types.
+        If the column is not 1-D or mixes value types.
     """
     if values.ndim != 1:
         raise ValueError(f"column {name!r} is not one-dimensional")
     if np.issubdtype(values.dtype, np.floating):
-        return _encode_numeric(values.astype(np.float64), n_bins, name)
-    if np.issubdtype(values.dtype, np.integer) or values.dtype == np.bool_:
-        return _encode_integers(values, max_categories, name)
+        x = values.astype(np.float64)
+        present = x[~np.isnan(x)]
+        if len(present) == 0:
+            raise LeftOut(f"column {name!r} has no non-null value")
+        if len(np.unique(present)) > n_bins and np.isfinite(present).any():
+            return _encode_numeric(x, n_bins)
+        items: list[object] = [None if math.isnan(v) else float(v) for v in x.tolist()]
+        return _encode_categorical(items, max_categories)
     items = [v.item() if isinstance(v, np.generic) else v for v in values.tolist()]
     counts = Counter(v for v in items if v is not None)
     if not counts:
-        raise ValueError(f"column {name!r} has no non-null value")
+        raise LeftOut(f"column {name!r} has no non-null value")
     kinds = {type(v) for v in items if v is not None}
-    if len(kinds) > 1 or not issubclass(kinds.pop(), (bool, int, str)):
+    kind = kinds.pop()
+    if kinds or not issubclass(kind, (bool, int, str)):
         raise ValueError(f"column {name!r} must hold only bool, only int or only str values")
+    n, distinct = sum(counts.values()), len(counts)
+    if kind is str and _looks_like_identifier(n, distinct):
+        raise LeftOut(f"column {name!r} looks like an identifier")
+    if kind is int and distinct > n_bins:
+        span = max(counts) - min(counts) + 1  # type: ignore[type-var, operator]
+        if _looks_like_identifier(n, distinct) and span <= 2 * distinct:
+            raise LeftOut(f"column {name!r} looks like an identifier")
+        x = np.array([np.nan if v is None else float(v) for v in items], dtype=np.float64)
+        return _encode_numeric(x, n_bins)
+    return _encode_categorical(items, max_categories)
+
+
+def _encode_categorical(items: list[object], max_categories: int) -> tuple[IntArray, list[Category]]:
+    """Kept values in natural order (the most frequent when capped), then OTHER, then None."""
+    counts = Counter(v for v in items if v is not None)
     has_null = None in items
     if len(counts) + has_null <= max_categories:
-        kept = sorted(counts)
+        kept = sorted(counts)  # type: ignore[type-var]
     else:
         m = max(0, max_categories - 1 - has_null)
-        kept = sorted(v for v, _ in sorted(counts.items(), key=lambda vc: (-vc[1], vc[0]))[:m])
+        by_count = sorted(counts.items(), key=lambda vc: (-vc[1], vc[0]))  # type: ignore[index]
+        kept = sorted(v for v, _ in by_count[:m])  # type: ignore[type-var]
     has_other = len(kept) < len(counts)
     index: dict[object, int] = {v: i for i, v in enumerate(kept)}
     other_code, null_code = len(kept), len(kept) + has_other
@@ -96,47 +139,60 @@ def encode_column(
     return np.array(codes, dtype=np.int64), categories
 
 
-def _encode_integers(
-    x: npt.NDArray[np.generic], max_categories: int, name: str
-) -> tuple[IntArray, list[Category]]:
-    """Apply the categorical rule of :func:`encode_column` to a null-free int or bool array."""
-    if len(x) == 0:
-        raise ValueError(f"column {name!r} has no non-null value")
-    uniques, inverse, counts = np.unique(x, return_inverse=True, return_counts=True)
-    keep = np.arange(len(uniques))
-    if len(uniques) > max_categories:
-        # Most frequent first, ties to the smaller value; uniques are already sorted by value.
-        keep = np.sort(np.lexsort((np.arange(len(uniques)), -counts))[: max_categories - 1])
-    code_of = np.full(len(uniques), len(keep), dtype=np.int64)  # "other" unless kept
-    code_of[keep] = np.arange(len(keep))
-    categories: list[Category] = [uniques[k].item() for k in keep]
-    if len(keep) < len(uniques):
-        categories.append(OTHER)
-    return code_of[inverse.ravel()], categories
-
-
-def _encode_numeric(x: FloatArray, n_bins: int, name: str) -> tuple[IntArray, list[Category]]:
+def _encode_numeric(x: FloatArray, n_bins: int) -> tuple[IntArray, list[Category]]:
+    """Quantile bins over the finite values, then a code per infinity seen, then null (NaN)."""
     null = np.isnan(x)
-    s = np.sort(x[~null])
+    finite = np.isfinite(x)
+    s = np.sort(x[finite])
     n = len(s)
-    if n == 0:
-        raise ValueError(f"column {name!r} has no non-null value")
-    if np.isinf(s).any():
-        raise ValueError(f"column {name!r} holds an infinite value")
     edges: list[float] = []
     for k in range(1, n_bins):
         e = float(s[(k * (n - 1)) // n_bins])
         if e > s[0] and (not edges or e > edges[-1]):
             edges.append(e)
     codes = np.searchsorted(np.array(edges, dtype=np.float64), x, side="right").astype(np.int64)
-    codes[null] = len(edges) + 1
     bounds = [float(s[0]), *edges, float(s[-1])]
     categories: list[Category] = [
         Bin(bounds[i], bounds[i + 1], closed=i == len(edges)) for i in range(len(edges) + 1)
     ]
+    for special in (-math.inf, math.inf):
+        if (x == special).any():
+            codes[x == special] = len(categories)
+            categories.append(special)
     if null.any():
+        codes[null] = len(categories)
         categories.append(None)
     return codes, categories
+
+
+def centre(d: int, edges: list[tuple[int, int]], eligible: list[bool]) -> int:
+    """The default root: in the largest component (ties: the one with the lowest column), the
+    eligible column whose longest path to the others is shortest; ties go to the lower index."""
+    neighbours: list[list[int]] = [[] for _ in range(d)]
+    for i, j in edges:
+        neighbours[i].append(j)
+        neighbours[j].append(i)
+
+    def distances(start: int) -> dict[int, int]:
+        dist, queue = {start: 0}, [start]
+        while queue:
+            u = queue.pop(0)
+            for v in neighbours[u]:
+                if v not in dist:
+                    dist[v] = dist[u] + 1
+                    queue.append(v)
+        return dist
+
+    components: list[list[int]] = []
+    seen: set[int] = set()
+    for start in range(d):
+        if start not in seen:
+            members = sorted(distances(start))
+            seen.update(members)
+            components.append(members)
+    largest = max(components, key=len)  # the first of the largest: the lowest column
+    pool = [c for c in largest if eligible[c]] or largest
+    return min(pool, key=lambda c: (max(distances(c).values()), c))
 
 
 def pair_table(codes_i: IntArray, codes_j: IntArray, r_i: int, r_j: int) -> IntArray:
@@ -276,7 +332,8 @@ def fit(
     max_categories, n_bins : int
         Passed to :func:`encode_column`.
     root : str, optional
-        Name of the root column; the first column by default.
+        Name of the root column; by default the centre of the tree (:func:`centre`) among the
+        columns with more than one code.
     prune : {None, "bic"}
         With ``"bic"``, an edge may join only while G > dof · ln N.
 
@@ -287,7 +344,8 @@ def fit(
     Raises
     ------
     ValueError
-        On no rows, no columns, unequal lengths, an all-null column or an unknown root.
+        On no rows, no columns, unequal lengths, no column left to model (all null or
+        identifiers) or an unknown root.
     """
     names = list(columns)
     if not names:
@@ -298,9 +356,16 @@ def fit(
             raise ValueError(f"column {name!r} has {len(columns[name])} rows, expected {n_rows}")
     if n_rows == 0:
         raise ValueError(f"column {names[0]!r} has no rows")
+    encoded = []
+    for name in list(names):
+        try:
+            encoded.append(encode_column(np.asarray(columns[name]), max_categories, n_bins, name))
+        except LeftOut:
+            names.remove(name)
+    if not names:
+        raise ValueError("no column is left to model")
     if root is not None and root not in names:
-        raise ValueError(f"root {root!r} is not a column")
-    encoded = [encode_column(np.asarray(columns[k]), max_categories, n_bins, k) for k in names]
+        raise ValueError(f"root {root!r} is not a modelled column")
     codes = [c for c, _ in encoded]
     cards = [len(cats) for _, cats in encoded]
     d = len(names)
@@ -318,7 +383,9 @@ def fit(
     def pays(i: int, j: int) -> bool:
         return prune is None or bool(g[i, j] > dof[i, j] * math.log(n_rows))
 
-    parent, order = orient(d, spanning_tree(mi, pays), 0 if root is None else names.index(root))
+    edges = spanning_tree(mi, pays)
+    start = centre(d, edges, [r > 1 for r in cards]) if root is None else names.index(root)
+    parent, order = orient(d, edges, start)
     return ReferenceTree(
         names=names,
         categories=[cats for _, cats in encoded],
@@ -350,16 +417,20 @@ def encode_like(tree: ReferenceTree, column: int, values: npt.NDArray[np.generic
     """
     cats = tree.categories[column]
     null_code = len(cats) - 1 if cats[-1] is None else -1
+    raw = [v.item() if isinstance(v, np.generic) else v for v in values.tolist()]
+    items = [None if isinstance(v, float) and math.isnan(v) else v for v in raw]
     if isinstance(cats[0], Bin):
-        x = values.astype(np.float64)
+        x = np.array([np.nan if v is None else float(v) for v in items], dtype=np.float64)
         edges = np.array([b.low for b in cats[1:] if isinstance(b, Bin)], dtype=np.float64)
         codes = np.searchsorted(edges, x, side="right").astype(np.int64)
+        for k, c in enumerate(cats):
+            if isinstance(c, float) and math.isinf(c):
+                codes[x == c] = k
         codes[np.isnan(x)] = null_code
         return codes
     kept = [c for c in cats if c is not OTHER and c is not None]
     index: dict[object, int] = {v: i for i, v in enumerate(kept)}
     other = len(kept) if any(c is OTHER for c in cats) else -1
-    items = [v.item() if isinstance(v, np.generic) else v for v in values.tolist()]
     return np.array([null_code if v is None else index.get(v, other) for v in items], np.int64)
 
 

@@ -64,8 +64,19 @@ fn value_type_fits(name: &str, column: &ColumnCode) -> bool {
 }
 
 /// Whether `name` is a type name treewise writes and can hold every kept value of `column`:
-/// a plain type, or `dictionary<INDEX,VALUE>` with a signed or unsigned integer index.
+/// a plain type, `dictionary<INDEX,VALUE>` with a signed or unsigned integer index, or an
+/// ordered dictionary of strings with its levels.
 pub fn fits(name: &str, column: &ColumnCode) -> bool {
+    // An ordered dictionary of strings with its levels: `ordered<INDEX>:["a","b"]`.
+    if let Some((index, levels)) = name
+        .strip_prefix("ordered<")
+        .and_then(|r| r.split_once(">:"))
+    {
+        return int_range(index).is_some()
+            && levels.starts_with('[')
+            && levels.ends_with(']')
+            && value_type_fits("string", column);
+    }
     if let Some(inner) = name
         .strip_prefix("dictionary<")
         .and_then(|r| r.strip_suffix('>'))
