@@ -98,6 +98,8 @@ class TreeModel:
 
 class TreeInference:
     @staticmethod
+    def from_model(model: TreeModel, backoff: float = 0.0) -> TreeInference: ...
+    @staticmethod
     def from_bytes(data: bytes, backoff: float = 0.0) -> TreeInference: ...
     @staticmethod
     def from_weights(

@@ -67,7 +67,7 @@ def _engine(model: DependencyTree) -> _core.TreeInference:
     hit = _ENGINES.get(model)
     if hit is not None and hit[0] is core and hit[1] == core.alpha:
         return hit[2]
-    engine = _core.TreeInference.from_bytes(core.to_bytes())
+    engine = _core.TreeInference.from_model(core)
     _ENGINES[model] = (core, core.alpha, engine)
     return engine
 

@@ -9,8 +9,9 @@ use crate::dtype;
 use crate::error::{Error, Result};
 use crate::rng::Rng;
 use crate::shape::pick;
-use crate::stats::{pair_index, PairStats};
-use crate::weights::{chi2_sf, PairWeight};
+use crate::stats::{pair_count, pair_index, PairStats};
+use crate::tree::forest_order;
+use crate::weights::PairWeight;
 
 /// Rows per sampling block: each block draws from its own random stream, so the rows do not
 /// depend on how many threads run or how the caller chunks the request.
@@ -266,36 +267,6 @@ fn corrupt(what: String) -> Error {
     Error::CorruptModel(format!("the model is inconsistent: {what}"))
 }
 
-/// The breadth-first order of a forest given by parent links, from `root` first and then from the
-/// other roots in index order; children are visited in index order. None if it is not a forest.
-fn forest_order(parent: &[Option<usize>], root: usize) -> Option<Vec<usize>> {
-    let d = parent.len();
-    let mut children = vec![Vec::new(); d];
-    for (c, p) in parent.iter().enumerate() {
-        if let Some(p) = *p {
-            children.get_mut(p)?.push(c);
-        }
-    }
-    let mut order = Vec::with_capacity(d);
-    let roots = std::iter::once(root).chain((0..d).filter(|&c| c != root));
-    for r in roots {
-        if parent.get(r)?.is_some() {
-            continue;
-        }
-        let mut head = order.len();
-        order.push(r);
-        while head < order.len() {
-            let v = order[head];
-            head += 1;
-            order.extend(children[v].iter().copied());
-            if order.len() > d {
-                return None;
-            }
-        }
-    }
-    (order.len() == d).then_some(order)
-}
-
 impl TreeModel {
     /// Builds a model from its parts, checking every length, link and count, so that a model
     /// read from an untrusted file can never index out of bounds.
@@ -323,7 +294,7 @@ impl TreeModel {
                 counts.len()
             )));
         }
-        if pair_mi.len() != d * (d - 1) / 2 || pair_mi.iter().any(|m| !m.is_finite() || *m < 0.0) {
+        if pair_mi.len() != pair_count(d) || pair_mi.iter().any(|m| !m.is_finite() || *m < 0.0) {
             return Err(corrupt(
                 "the pairwise mutual information is malformed".into(),
             ));
@@ -541,14 +512,12 @@ impl TreeModel {
             .chunks_exact(card)
             .filter(|row| row.iter().any(|n| *n > 0))
             .count() as u64;
-        let dof = occurring_parent.saturating_sub(1) * occurring_child.saturating_sub(1);
-        let g = 2.0 * self.n_rows as f64 * mi;
-        Some(PairWeight {
-            mutual_info: mi,
-            g_statistic: g,
-            dof,
-            p_value: chi2_sf(g, dof),
-        })
+        Some(PairWeight::new(
+            mi,
+            self.n_rows,
+            occurring_parent,
+            occurring_child,
+        ))
     }
 
     /// ln P of column c's code at each row given its parent's code (UNSEEN allowed in both).
@@ -632,8 +601,8 @@ impl TreeModel {
             .enumerate()
             .for_each(|(k, out)| {
                 let start = k * SCORE_CHUNK;
-                for c in 0..d {
-                    let tail = tails[c].as_deref();
+                for (c, tail) in tails.iter().enumerate() {
+                    let tail = tail.as_deref();
                     self.column_log_prob(&codes, tail, c, start..start + out.len(), out, true);
                 }
             });

@@ -26,6 +26,11 @@ pub fn pair_index(d: usize, i: usize, j: usize) -> usize {
     i * d - i * (i + 1) / 2 + (j - i - 1)
 }
 
+/// The number of pairs of `d` columns.
+pub fn pair_count(d: usize) -> usize {
+    d * d.saturating_sub(1) / 2
+}
+
 /// Every pair (i, j) with i < j, in pair-index order.
 pub fn pairs(d: usize) -> Vec<(usize, usize)> {
     (0..d)
@@ -55,7 +60,7 @@ impl PairStats {
             )));
         }
         let d = cards.len();
-        let mut offsets = Vec::with_capacity(d * d.saturating_sub(1) / 2 + 1);
+        let mut offsets = Vec::with_capacity(pair_count(d) + 1);
         offsets.push(0);
         for (i, j) in pairs(d) {
             let last = offsets.last().copied().unwrap_or(0);

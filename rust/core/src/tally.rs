@@ -708,7 +708,7 @@ impl ColumnTally {
         };
         let has_other = cap.is_some();
         let column = ColumnCode::build(name, family, values, has_other, has_null, shape)?;
-        Ok(Finished::Kept(column, cap))
+        Ok(Finished::Kept(Box::new(column), cap))
     }
 }
 
@@ -749,7 +749,7 @@ pub struct Note {
 
 /// A column's fate at the end of the codebook pass.
 enum Finished {
-    Kept(ColumnCode, Option<CapReport>),
+    Kept(Box<ColumnCode>, Option<CapReport>),
     Left(Note),
 }
 
@@ -997,7 +997,7 @@ impl CodebookBuilder {
                             ),
                         });
                     }
-                    columns.push(column);
+                    columns.push(*column);
                     caps.extend(cap);
                 }
                 Finished::Left(note) => notes.push(note),

@@ -55,6 +55,49 @@ pub struct Oriented {
     pub order: Vec<usize>,
 }
 
+/// Each column's children under parent links, in index order (a link outside the columns is
+/// left out).
+pub fn children(parent: &[Option<usize>]) -> Vec<Vec<usize>> {
+    let mut children = vec![Vec::new(); parent.len()];
+    for (c, p) in parent.iter().enumerate() {
+        if let Some(list) = p.and_then(|p| children.get_mut(p)) {
+            list.push(c);
+        }
+    }
+    children
+}
+
+/// The breadth-first walk over `next` (where each column leads, in visiting order): from `root`,
+/// then from each other column in index order that `start` accepts and no walk has reached yet.
+/// Returns where each column was reached from and the order of the visits.
+fn breadth_first(next: &[Vec<usize>], root: usize, start: impl Fn(usize) -> bool) -> Oriented {
+    let d = next.len();
+    let mut parent = vec![None; d];
+    let mut seen = vec![false; d];
+    let mut order = Vec::with_capacity(d);
+    for s in std::iter::once(root).chain((0..d).filter(|&c| c != root)) {
+        if s >= d || seen[s] || !start(s) {
+            continue;
+        }
+        seen[s] = true;
+        // `order` doubles as the queue: the visits from `head` on are still to expand.
+        let mut head = order.len();
+        order.push(s);
+        while head < order.len() {
+            let v = order[head];
+            head += 1;
+            for &w in &next[v] {
+                if !seen[w] {
+                    seen[w] = true;
+                    parent[w] = Some(v);
+                    order.push(w);
+                }
+            }
+        }
+    }
+    Oriented { parent, order }
+}
+
 /// Orients undirected edges away from `root`; any other component is walked from its lowest column.
 pub fn orient(d: usize, edges: &[(usize, usize)], root: usize) -> Oriented {
     let mut neighbours: Vec<Vec<usize>> = vec![Vec::new(); d];
@@ -63,28 +106,16 @@ pub fn orient(d: usize, edges: &[(usize, usize)], root: usize) -> Oriented {
         neighbours[j].push(i);
     }
     neighbours.iter_mut().for_each(|n| n.sort_unstable());
-    let mut parent = vec![None; d];
-    let mut seen = vec![false; d];
-    let mut order = Vec::with_capacity(d);
-    let starts = std::iter::once(root).chain((0..d).filter(|&c| c != root));
-    for start in starts {
-        if start >= d || seen[start] {
-            continue;
-        }
-        seen[start] = true;
-        let mut queue = VecDeque::from([start]);
-        while let Some(v) = queue.pop_front() {
-            order.push(v);
-            for &w in &neighbours[v] {
-                if !seen[w] {
-                    seen[w] = true;
-                    parent[w] = Some(v);
-                    queue.push_back(w);
-                }
-            }
-        }
-    }
-    Oriented { parent, order }
+    breadth_first(&neighbours, root, |_| true)
+}
+
+/// The breadth-first order of a forest given by parent links, from `root` first and then from the
+/// other roots in index order; children are visited in index order. None if `root` is not a
+/// column or the links do not form a forest (a cycle, or a link outside the columns).
+pub fn forest_order(parent: &[Option<usize>], root: usize) -> Option<Vec<usize>> {
+    parent.get(root)?;
+    let walk = breadth_first(&children(parent), root, |c| parent[c].is_none());
+    (walk.order.len() == parent.len()).then_some(walk.order)
 }
 
 /// The default root: a centre of the largest component (the column whose longest path to the
@@ -167,6 +198,23 @@ mod tests {
         let o = orient(4, &t, 3);
         assert_eq!(o.parent, vec![Some(2), Some(2), Some(3), None]);
         assert_eq!(o.order, vec![3, 2, 0, 1]);
+        assert_eq!(forest_order(&o.parent, 3), Some(o.order));
+    }
+
+    #[test]
+    fn forest_order_walks_every_root_and_refuses_cycles() {
+        // 0 <- 2 -> 1 and a second tree 3 -> 4: the root first, then the other root.
+        let parent = vec![Some(2), Some(2), None, None, Some(3)];
+        assert_eq!(forest_order(&parent, 3), Some(vec![3, 4, 2, 0, 1]));
+        assert_eq!(forest_order(&parent, 2), Some(vec![2, 0, 1, 3, 4]));
+        assert_eq!(forest_order(&parent, 7), None);
+        // 0 -> 1 -> 0 is a cycle; 1 -> 9 points outside the columns.
+        assert_eq!(forest_order(&[Some(1), Some(0), None], 2), None);
+        assert_eq!(forest_order(&[None, Some(9)], 0), None);
+        assert_eq!(
+            children(&[None, Some(9), Some(0)]),
+            vec![vec![2], vec![], vec![]]
+        );
     }
 
     #[test]

@@ -18,6 +18,22 @@ pub struct PairWeight {
     pub p_value: f64,
 }
 
+impl PairWeight {
+    /// The weight of a pair with mutual information `mi` (nats) over `n` rows, where
+    /// `occurring_a` and `occurring_b` codes of the two columns occur: G = 2·N·MI with
+    /// (r_a' − 1)(r_b' − 1) degrees of freedom.
+    pub fn new(mi: f64, n: u64, occurring_a: u64, occurring_b: u64) -> Self {
+        let dof = occurring_a.saturating_sub(1) * occurring_b.saturating_sub(1);
+        let g = 2.0 * n as f64 * mi;
+        PairWeight {
+            mutual_info: mi,
+            g_statistic: g,
+            dof,
+            p_value: chi2_sf(g, dof),
+        }
+    }
+}
+
 /// Mutual information of a row-major `ra x rb` table with marginals `ma`, `mb` over `n` rows.
 ///
 /// Each cell gives the term `(c/n)·ln(c·n / (ma·mb))`. The terms are sorted and summed in that
@@ -47,14 +63,7 @@ pub fn pair_weight(stats: &PairStats, i: usize, j: usize) -> PairWeight {
     let n = stats.n_rows();
     let mi = mutual_info(stats.table(i, j), ma, mb, n);
     let occurring = |m: &[u64]| m.iter().filter(|c| **c > 0).count() as u64;
-    let dof = occurring(ma).saturating_sub(1) * occurring(mb).saturating_sub(1);
-    let g = 2.0 * n as f64 * mi;
-    PairWeight {
-        mutual_info: mi,
-        g_statistic: g,
-        dof,
-        p_value: chi2_sf(g, dof),
-    }
+    PairWeight::new(mi, n, occurring(ma), occurring(mb))
 }
 
 /// The weights of every pair, in pair-index order.
@@ -169,6 +178,43 @@ mod tests {
         let t = [5, 0, 0, 5];
         let mi = mutual_info(&t, &[5, 5], &[5, 5], 10);
         assert!((mi - std::f64::consts::LN_2).abs() < 1e-15);
+    }
+
+    #[test]
+    fn g_dof_and_p_value_follow_the_g_test() -> crate::Result<()> {
+        // Column b has 4 codes, of which code 3 never occurs.
+        let a: Vec<u16> = vec![0, 0, 0, 0, 1, 1, 1, 1, 1, 1];
+        let b: Vec<u16> = vec![0, 0, 1, 2, 0, 1, 1, 2, 2, 2];
+        let mut stats = PairStats::new(vec![2, 4])?;
+        stats.add_codes(&[a.clone(), b.clone()])?;
+        let w = pair_weight(&stats, 0, 1);
+        // The G-test of independence (textbook definition, from memory): G = 2 Σ O ln(O / E)
+        // with E = row total x column total / N, and (r − 1)(c − 1) degrees of freedom over
+        // the levels that occur: (2 − 1)(3 − 1) = 2.
+        let (rows, cols) = ([4.0, 6.0], [3.0, 3.0, 4.0]);
+        let mut g = 0.0;
+        for (x, row) in rows.iter().enumerate() {
+            for (y, col) in cols.iter().enumerate() {
+                let o = a
+                    .iter()
+                    .zip(&b)
+                    .filter(|(p, q)| **p == x as u16 && **q == y as u16);
+                let o = o.count() as f64;
+                if o > 0.0 {
+                    g += 2.0 * o * (o / (row * col / 10.0)).ln();
+                }
+            }
+        }
+        assert_eq!(w.dof, 2);
+        assert!(
+            (w.g_statistic - g).abs() < 1e-12,
+            "{} vs {g}",
+            w.g_statistic
+        );
+        // Chi-square with 2 dof: P(X >= x) = exp(-x/2) (a textbook identity).
+        assert!((w.p_value - (-g / 2.0).exp()).abs() < 1e-14);
+        assert_eq!(PairWeight::new(w.mutual_info, 10, 2, 3), w);
+        Ok(())
     }
 
     #[test]

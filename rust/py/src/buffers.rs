@@ -37,3 +37,21 @@ pub fn le_bytes<'py, T: LeBytes>(py: Python<'py>, parts: &[&[T]]) -> PyResult<Bo
         Ok(())
     })
 }
+
+/// Rows of codes (u16, column after column, as one bytes object) with, per column, the f64 bytes
+/// of the numbers placed in float bins, or None.
+pub type CodesAndFloats<'py> = (Bound<'py, PyBytes>, Vec<Option<Bound<'py, PyBytes>>>);
+
+/// Codes and float numbers, column by column, as [`CodesAndFloats`].
+pub fn codes_and_floats<'py>(
+    py: Python<'py>,
+    codes: &[Vec<u16>],
+    floats: &[Option<Vec<f64>>],
+) -> PyResult<CodesAndFloats<'py>> {
+    let parts: Vec<&[u16]> = codes.iter().map(Vec::as_slice).collect();
+    let floats = floats
+        .iter()
+        .map(|v| v.as_ref().map(|v| le_bytes(py, &[v])).transpose())
+        .collect::<PyResult<_>>()?;
+    Ok((le_bytes(py, &parts)?, floats))
+}

@@ -3,13 +3,16 @@
 
 use pyo3::prelude::*;
 use pyo3::types::PyBytes;
-use treewise_core::infer::{self, Filled, Inference, Strategy};
+use treewise_core::fit;
+use treewise_core::infer::{Filled, Inference, Strategy};
 use treewise_core::{io, Error};
 
 use crate::arrow_import::import_batch;
-use crate::buffers::le_bytes;
+use crate::buffers::{codes_and_floats, le_bytes};
+use crate::codebook::PyCodebook;
 use crate::errors::{detached, to_py};
-use crate::{PyCodebook, PyPairStats};
+use crate::model::PyTreeModel;
+use crate::pair_stats::PyPairStats;
 
 /// Filled cells: (u16 codes column after column, 65535 where a cell was left as it was; per
 /// column the f64 bytes of numbers placed in float bins, or None; values without a code per
@@ -28,17 +31,22 @@ pub struct PyTreeInference {
 }
 
 fn filled<'py>(py: Python<'py>, f: &Filled, unseen: Vec<u64>) -> PyResult<FilledTuple<'py>> {
-    let parts: Vec<&[u16]> = f.codes.iter().map(Vec::as_slice).collect();
-    let floats = f
-        .floats
-        .iter()
-        .map(|v| v.as_ref().map(|v| le_bytes(py, &[v])).transpose())
-        .collect::<PyResult<_>>()?;
-    Ok((le_bytes(py, &parts)?, floats, unseen, f.impossible))
+    let (codes, floats) = codes_and_floats(py, &f.codes, &f.floats)?;
+    Ok((codes, floats, unseen, f.impossible))
 }
 
 #[pymethods]
 impl PyTreeInference {
+    /// A fitted model prepared for inference; `backoff` pulls each child's table toward its
+    /// marginal by that many pseudo-rows (0: the model's own tables).
+    #[staticmethod]
+    #[pyo3(signature = (model, backoff = 0.0))]
+    fn from_model(py: Python<'_>, model: &PyTreeModel, backoff: f64) -> PyResult<Self> {
+        let model = model.inner.clone();
+        let inner = detached(py, move || Inference::with_backoff(model, backoff))?;
+        Ok(PyTreeInference { inner })
+    }
+
     /// From a model file's bytes (validated before use); `backoff` pulls each child's table
     /// toward its marginal by that many pseudo-rows (0: the model's own tables).
     #[staticmethod]
@@ -68,7 +76,7 @@ impl PyTreeInference {
         let codebook = codebook.inner.clone();
         let stats = &stats.inner;
         let inner = detached(py, move || {
-            let model = infer::model_from_weights(codebook, dtypes, stats, weights, root, alpha)?;
+            let model = fit::model_from_weights(codebook, dtypes, stats, weights, root, alpha)?;
             Inference::with_backoff(model, backoff)
         })?;
         Ok(PyTreeInference { inner })
@@ -91,7 +99,7 @@ impl PyTreeInference {
             .map(|&p| usize::try_from(p).ok())
             .collect::<Vec<_>>();
         let inner = detached(py, move || {
-            Inference::new(infer::model_from_parents(
+            Inference::new(fit::model_from_parents(
                 codebook, dtypes, stats, parent, alpha,
             )?)
         })?;

@@ -2,13 +2,24 @@
 
 use pyo3::prelude::*;
 use pyo3::types::PyBytes;
+use treewise_core::fit::{self, Prune};
 use treewise_core::model::{Sampled, Scored, TreeModel};
-use treewise_core::{io, Error, Prune};
+use treewise_core::{io, Error};
 
 use crate::arrow_import::import_batch;
-use crate::buffers::le_bytes;
+use crate::buffers::{codes_and_floats, le_bytes};
+use crate::codebook::PyCodebook;
 use crate::errors::{detached, to_py};
-use crate::{slices, PyCodebook, PyPairStats, SLICE_ROWS};
+use crate::pair_stats::PyPairStats;
+use crate::{slices, SLICE_ROWS};
+
+/// Sampled rows as bytes: codes, the numbers drawn in numeric bins and the tail entries drawn
+/// behind "other" (see `sample`).
+type SampledBytes<'py> = (
+    Bound<'py, PyBytes>,
+    Vec<Option<Bound<'py, PyBytes>>>,
+    Vec<Option<Bound<'py, PyBytes>>>,
+);
 
 /// One edge: (parent, child, mutual_info, g_statistic, dof, p_value).
 type EdgeTuple = (usize, usize, f64, f64, u64, f64);
@@ -16,7 +27,7 @@ type EdgeTuple = (usize, usize, f64, f64, u64, f64);
 /// A fitted dependency tree.
 #[pyclass(name = "TreeModel", module = "treewise._core")]
 pub struct PyTreeModel {
-    inner: TreeModel,
+    pub(crate) inner: TreeModel,
 }
 
 #[pymethods]
@@ -49,7 +60,7 @@ impl PyTreeModel {
         let codebook = codebook.inner.clone();
         let stats = &stats.inner;
         let inner = detached(py, move || {
-            treewise_core::fit_model(codebook, dtypes, stats, root, alpha, prune)
+            fit::fit_model(codebook, dtypes, stats, root, alpha, prune)
         })?;
         Ok(PyTreeModel { inner })
     }
@@ -186,18 +197,13 @@ impl PyTreeModel {
     /// Samples `count` rows from row `start` of the stream of `seed`: (u16 codes, column after
     /// column, as bytes; per column the f64 bytes of the numbers drawn in numeric bins, or None;
     /// per column the u32 bytes of the tail entries drawn behind "other", or None).
-    #[allow(clippy::type_complexity)]
     fn sample<'py>(
         &self,
         py: Python<'py>,
         start: u64,
         count: usize,
         seed: u64,
-    ) -> PyResult<(
-        Bound<'py, PyBytes>,
-        Vec<Option<Bound<'py, PyBytes>>>,
-        Vec<Option<Bound<'py, PyBytes>>>,
-    )> {
+    ) -> PyResult<SampledBytes<'py>> {
         let model = &self.inner;
         // SLICE_ROWS is a multiple of the sampling block, so the rows do not change.
         let mut sampled = Sampled::default();
@@ -208,17 +214,12 @@ impl PyTreeModel {
             sampled.append(part);
             py.check_signals()?;
         }
-        let parts: Vec<&[u16]> = sampled.codes.iter().map(Vec::as_slice).collect();
-        let floats = sampled
-            .floats
-            .iter()
-            .map(|f| f.as_ref().map(|f| le_bytes(py, &[f])).transpose())
-            .collect::<PyResult<_>>()?;
+        let (codes, floats) = codes_and_floats(py, &sampled.codes, &sampled.floats)?;
         let tails = sampled
             .tails
             .iter()
             .map(|t| t.as_ref().map(|t| le_bytes(py, &[t])).transpose())
             .collect::<PyResult<_>>()?;
-        Ok((le_bytes(py, &parts)?, floats, tails))
+        Ok((codes, floats, tails))
     }
 }

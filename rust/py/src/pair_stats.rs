@@ -1,0 +1,126 @@
+//! The PairStats class: exact pair counts, updated batch by batch, merged, and as bytes.
+
+use pyo3::prelude::*;
+use pyo3::types::PyBytes;
+use treewise_core::PairStats;
+
+use crate::arrow_import::import_batch;
+use crate::buffers::le_bytes;
+use crate::codebook::PyCodebook;
+use crate::errors::{detached, to_py};
+use crate::slices;
+
+/// Exact pair counts over one codebook's codes.
+#[pyclass(name = "PairStats", module = "treewise._core")]
+pub(crate) struct PyPairStats {
+    pub(crate) inner: PairStats,
+}
+
+#[pymethods]
+impl PyPairStats {
+    #[new]
+    fn new(codebook: &PyCodebook) -> PyResult<Self> {
+        let inner = PairStats::new(codebook.inner.cardinalities()).map_err(to_py)?;
+        Ok(PyPairStats { inner })
+    }
+
+    /// Encodes one Arrow record batch with `codebook` and adds its counts.
+    fn update(
+        &mut self,
+        py: Python<'_>,
+        codebook: &PyCodebook,
+        batch: &Bound<'_, PyAny>,
+    ) -> PyResult<()> {
+        let batch = import_batch(batch)?;
+        let stats = &mut self.inner;
+        let codebook = &codebook.inner;
+        for slice in slices(&batch) {
+            detached(py, || {
+                let codes = codebook.encode(&slice, true)?;
+                stats.add_codes(&codes)
+            })?;
+            py.check_signals()?;
+        }
+        Ok(())
+    }
+
+    /// These counts with the codebook they were counted with and each column's output type
+    /// name, as a pair-statistics file.
+    fn to_bytes<'py>(
+        &self,
+        py: Python<'py>,
+        codebook: &PyCodebook,
+        dtypes: Vec<String>,
+    ) -> PyResult<Bound<'py, PyBytes>> {
+        if codebook.inner.cardinalities() != self.inner.cardinalities() {
+            return Err(to_py(treewise_core::Error::Schema(
+                "these statistics were not counted with this codebook".into(),
+            )));
+        }
+        let bytes = treewise_core::io::stats_to_bytes(&codebook.inner, &dtypes, &self.inner);
+        Ok(PyBytes::new(py, &bytes))
+    }
+
+    /// Reads a pair-statistics file: (codebook, type names, statistics), validated before use.
+    #[staticmethod]
+    fn from_bytes(py: Python<'_>, data: &[u8]) -> PyResult<(PyCodebook, Vec<String>, PyPairStats)> {
+        let (codebook, dtypes, stats) = detached(py, || treewise_core::io::stats_from_bytes(data))?;
+        Ok((
+            PyCodebook { inner: codebook },
+            dtypes,
+            PyPairStats { inner: stats },
+        ))
+    }
+
+    /// An independent copy of these counts.
+    fn copy(&self) -> PyPairStats {
+        PyPairStats {
+            inner: self.inner.clone(),
+        }
+    }
+
+    fn __eq__(&self, other: &PyPairStats) -> bool {
+        self.inner == other.inner
+    }
+
+    /// Adds another PairStats' counts to these.
+    fn merge(&mut self, py: Python<'_>, other: &PyPairStats) -> PyResult<()> {
+        let stats = &mut self.inner;
+        let other = &other.inner;
+        detached(py, || stats.merge(other))
+    }
+
+    /// Rows counted.
+    #[getter]
+    fn n_rows(&self) -> u64 {
+        self.inner.n_rows()
+    }
+
+    /// Each column's number of codes.
+    #[getter]
+    fn cardinalities(&self) -> Vec<usize> {
+        self.inner.cardinalities().to_vec()
+    }
+
+    /// Column `i`'s counts, as little-endian u64 bytes.
+    fn marginal<'py>(&self, py: Python<'py>, i: usize) -> PyResult<Bound<'py, PyBytes>> {
+        let d = self.inner.n_columns();
+        if i >= d {
+            return Err(to_py(treewise_core::Error::Invalid(format!(
+                "no column {i} of {d}"
+            ))));
+        }
+        le_bytes(py, &[self.inner.marginal(i)])
+    }
+
+    /// The table of columns i < j (row-major r_i x r_j), as little-endian u64 bytes.
+    fn table<'py>(&self, py: Python<'py>, i: usize, j: usize) -> PyResult<Bound<'py, PyBytes>> {
+        let d = self.inner.n_columns();
+        if i >= j || j >= d {
+            return Err(to_py(treewise_core::Error::Invalid(format!(
+                "a table needs columns i < j < {d}, got ({i}, {j})"
+            ))));
+        }
+        le_bytes(py, &[self.inner.table(i, j)])
+    }
+}
