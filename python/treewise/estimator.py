@@ -683,14 +683,14 @@ class DependencyTree(Params):
     # -- views -------------------------------------------------------------------------------------
 
     def plot(self, **options: Any) -> Figure:
-        """A matplotlib figure of the tree; see :func:`treewise.plot.plot_tree` for options."""
-        from treewise.plot import plot_tree  # matplotlib loads only when a picture is asked for
+        """A matplotlib figure of the tree; see :func:`treewise.views.plot.plot_tree` for options."""
+        from treewise.views.plot import plot_tree  # matplotlib loads only when a picture is asked for
 
         return plot_tree(self, **options)
 
     def _repr_html_(self) -> str:
         """The notebook view: a compact summary with the picture."""
-        from treewise.notebook import model_html
+        from treewise.views.notebook import model_html
 
         return model_html(self)
 

@@ -27,7 +27,7 @@ from matplotlib.ticker import FuncFormatter
 from treewise.categories import OTHER, Bin
 from treewise.errors import DataError, UnseenCategoryWarning
 from treewise.files import write_atomically
-from treewise.plot import MUTED, conditional_svg, figure_svg, plot_tree, shorten
+from treewise.views.plot import MUTED, conditional_svg, figure_svg, plot_tree, shorten
 from treewise.sources import BATCH_ROWS, Source, check_columns, open_source
 
 if TYPE_CHECKING:
@@ -270,7 +270,7 @@ def _tree(model: DependencyTree, n_edges: int, tree_edges: int | None) -> str:
         note += (
             f" Only the {tree_edges} strongest of the {n_edges} edges are drawn; a dashed box is "
             "a column whose parent is not drawn. The edge table below lists them all, and "
-            "<code>treewise.plot.plot_tree(model, subtree=...)</code> draws any branch."
+            "<code>treewise.views.plot.plot_tree(model, subtree=...)</code> draws any branch."
         )
     if model.n_features_in_ - n_edges > 1:
         note += " Pruning left a forest: every tree hangs from its own root."

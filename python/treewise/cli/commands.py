@@ -652,7 +652,7 @@ def report(
     surprising rows and why, and how rows sampled from MODEL compare with DATA. It has no
     scripts and fetches nothing: open it in any browser, offline.
     """
-    from treewise.report import write_report  # matplotlib loads only for this command
+    from treewise.views.report import write_report  # matplotlib loads only for this command
 
     model = _load(model_path)
     _check_output(output)
@@ -712,7 +712,7 @@ def demo(rows: int, directory: str, seed: int, no_progress: bool) -> None:
     streaming, compares it with the hidden one, scores the sessions against planted anomalies,
     checks that synthetic rows keep the dependencies, and writes an HTML report.
     """
-    from treewise import demo as story  # the demo renders with this module's helpers
+    from treewise.cli import demo as story  # the demo renders with this module's helpers
 
     story.run(rows=rows, directory=Path(directory), seed=seed, progress=_progress(no_progress))
 
