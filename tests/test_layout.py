@@ -160,7 +160,9 @@ def test_a_circle_through_a_function_level_import_is_found(tmp_path: Path) -> No
             "__init__.py": "",
             "a.py": "from treewise import b\n",
             "b.py": "def f():\n    from treewise.a import g\n",
-            "c.py": "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from treewise import a\n",
+            "c.py": (
+                "from typing import TYPE_CHECKING\nif TYPE_CHECKING:\n    from treewise import a\n"
+            ),
             "views/__init__.py": "",
             "views/d.py": "from . import e\n",
             "views/e.py": "from .d import x\n",

@@ -1,12 +1,12 @@
-"""Markers used in ``categories_``: the "other" code and the interval of a numeric bin."""
+"""The entries of ``categories_``: values, the "other" marker, numeric bins and the null code."""
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Final
+from typing import Any, Final
 
-__all__ = ["OTHER", "Bin"]
+__all__ = ["OTHER", "Bin", "column_categories"]
 
 
 class _Other:
@@ -48,3 +48,22 @@ class Bin:
 
     def __repr__(self) -> str:
         return f"[{self.low!r}, {self.high!r}{']' if self.closed else ')'}"
+
+
+def column_categories(kind: str, values: Any, has_other: bool, has_null: bool) -> list[Any]:
+    """One column's categories in code order: values (or bins), then OTHER, then None.
+
+    The arguments are what ``Codebook.column`` returns.
+    """
+    if kind == "float":
+        edges, low, high = values
+        bounds = [low, *edges, high]
+        last = len(bounds) - 2
+        cats: list[Any] = [Bin(bounds[k], bounds[k + 1], closed=k == last) for k in range(last + 1)]
+    else:
+        cats = list(values)
+    if has_other:
+        cats.append(OTHER)
+    if has_null:
+        cats.append(None)
+    return cats

@@ -14,7 +14,7 @@ from treewise import _core
 from treewise.decode import FAMILY_TYPES, fitting_type, type_name, widen
 from treewise.errors import CategoryCapWarning, warn
 from treewise.progress import PassProgress
-from treewise.sources import Source, located, open_source
+from treewise.sources import BatchLoop, Source, open_source
 
 __all__ = ["TypeRecorder", "count_pairs", "learn_codebook", "warn_caps"]
 
@@ -87,18 +87,14 @@ def learn_codebook(
     block ends: one pass over the stream, exact counts, memory near one batch.
     """
     builder = _core.CodebookBuilder(names)
-    bar.start("learning codes")
     spool = None if source.replayable else _Spool()
     try:
-        for part in source.parts(names, batch_rows):
-            with located(part.label):
-                for batch in part.batches:
-                    types.see(batch)
-                    builder.observe(batch)
-                    if spool is not None:
-                        spool.write(batch)
-                    bar.rows(batch.num_rows)
-            bar.part_done()
+        with BatchLoop(source, names, batch_rows, bar, "learning codes") as batches:
+            for batch in batches:
+                types.see(batch)
+                builder.observe(batch)
+                if spool is not None:
+                    spool.write(batch)
         codebook, caps = builder.finish(max_categories, n_bins)
         warn_caps(caps, max_categories)
         if spool is None:
@@ -162,11 +158,7 @@ def count_pairs(
     types: TypeRecorder,
 ) -> None:
     """The counting pass: encode each batch with ``codebook`` and add its pair counts."""
-    bar.start("counting pairs")
-    for part in source.parts(names, batch_rows):
-        with located(part.label):
-            for batch in part.batches:
-                types.see(batch)
-                stats.update(codebook, batch)
-                bar.rows(batch.num_rows)
-        bar.part_done()
+    with BatchLoop(source, names, batch_rows, bar, "counting pairs") as batches:
+        for batch in batches:
+            types.see(batch)
+            stats.update(codebook, batch)

@@ -23,14 +23,14 @@ from rich.table import Table
 from rich.text import Text
 
 import treewise
-from treewise.cli.commands import (
+from treewise.datasets import hidden_edges, model_columns, shop_sessions
+from treewise.views.terminal import (
     SAMPLE_CAUTION,
     SCORE_CAUTION,
     explain_rows,
     surprising_table,
     tree_view,
 )
-from treewise.datasets import hidden_edges, model_columns, shop_sessions
 
 __all__ = ["run"]
 
