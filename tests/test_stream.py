@@ -433,6 +433,24 @@ def test_from_stats_takes_root_and_alpha(
     assert np.array_equal(model.score_samples(TRUTH), want.score_samples(TRUTH))
 
 
+def test_fit_stats_keeps_the_estimators_parameters_and_its_own_copy(
+    reference: DependencyTree, thirds: list[PairStats]
+) -> None:
+    total = sum(thirds)
+    estimator = DependencyTree(prune="bic", max_categories=99)
+    assert estimator.fit_stats(total) is estimator
+    assert_same_model(estimator, DependencyTree(prune="bic").fit(TRUTH))
+    assert estimator.get_params()["max_categories"] == 99
+    # The model counts on from a copy: more data leaves the caller's statistics alone.
+    estimator.partial_fit(TRUTH.slice(0, 10))
+    assert estimator.n_rows_ == N_ROWS + 10
+    assert total.n_rows == N_ROWS
+    with pytest.raises(SchemaError, match="columns="):
+        DependencyTree(columns=NAMES[::-1]).fit_stats(total)
+    with pytest.raises(TypeError, match="PairStats"):
+        DependencyTree().fit_stats(reference)  # type: ignore[arg-type]
+
+
 def test_pair_stats_with_different_codebooks_do_not_add(thirds: list[PairStats]) -> None:
     other = DependencyTree(n_bins=3).fit(TRUTH)
     foreign = PairStats.from_source(TRUTH, other.codebook_)
