@@ -34,7 +34,7 @@ build-dev: $(STAMP) ## Build the extension in debug mode (fast to compile, slow 
 	$(VENV)/bin/maturin develop --quiet
 
 demo: build ## Run the demo: fit a tree to built-in example data and print it
-	$(PY) -m treewise.demo
+	$(PY) -m treewise.cli demo
 
 test: build ## Run the Python test suite (the README's test command; CI runs it too)
 	$(PY) -m pytest -q

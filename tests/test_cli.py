@@ -420,9 +420,10 @@ def test_demo_refuses_a_folder_with_other_files(tmp_path: Path) -> None:
     assert "mine.parquet" in line
 
 
-def test_python_m_treewise_demo_is_the_same_command(tmp_path: Path) -> None:
+def test_make_demo_runs_the_demo_command(tmp_path: Path) -> None:
+    # The Makefile's demo target runs `python -m treewise.cli demo`.
     result = subprocess.run(
-        [sys.executable, "-m", "treewise.demo", "--rows", "300", "--dir", str(tmp_path)],
+        [sys.executable, "-m", "treewise.cli", "demo", "--rows", "300", "--dir", str(tmp_path)],
         capture_output=True,
         text=True,
         check=False,

@@ -10,7 +10,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pytest
 import treewise
-from treewise import demo
+from treewise.cli import main
 from treewise.datasets import SHOP_HIDDEN_EDGES, hidden_edges, model_columns, shop_sessions
 
 N = 20_000
@@ -120,7 +120,7 @@ def test_fit_recovers_the_hidden_tree() -> None:
 
 
 def test_demo_runs_and_reports_recovery(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    assert demo.main(["--rows", "20000", "--dir", str(tmp_path), "--no-progress"]) == 0
+    assert main(["demo", "--rows", "20000", "--dir", str(tmp_path), "--no-progress"]) == 0
     out = " ".join(capsys.readouterr().out.split())
     match = re.search(r"Recovered (\d+) of (\d+) hidden edges", out)
     assert match is not None

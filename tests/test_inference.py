@@ -22,13 +22,13 @@ from treewise import _core
 from treewise.categories import Bin
 from treewise.errors import DataError, ImpossibleEvidenceWarning, UnseenCategoryWarning
 from treewise.inference import (
-    edge_stability,
     impute,
     marginals,
     predict,
     predict_proba,
     sample_given,
 )
+from treewise.stability import edge_stability
 
 #: Significance level of the goodness-of-fit tests on samples (common practice).
 LEVEL = 0.001

@@ -15,7 +15,7 @@ import treewise
 from matplotlib.collections import LineCollection
 from matplotlib.figure import Figure
 from treewise.datasets import model_columns, shop_sessions
-from treewise.plot import conditional_svg, figure_svg, plot_tree, select_edges
+from treewise.views.plot import conditional_svg, figure_svg, plot_tree, select_edges
 
 SVG = "{http://www.w3.org/2000/svg}"
 

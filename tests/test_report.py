@@ -17,8 +17,8 @@ import pyarrow.parquet as pq
 import pytest
 import treewise
 from treewise.datasets import model_columns, shop_sessions
-from treewise.notebook import model_html
-from treewise.report import render_report, write_report
+from treewise.views.notebook import model_html
+from treewise.views.report import render_report, write_report
 
 N = 4000
 TOP = 7

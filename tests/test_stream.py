@@ -433,6 +433,24 @@ def test_from_stats_takes_root_and_alpha(
     assert np.array_equal(model.score_samples(TRUTH), want.score_samples(TRUTH))
 
 
+def test_fit_stats_keeps_the_estimators_parameters_and_its_own_copy(
+    reference: DependencyTree, thirds: list[PairStats]
+) -> None:
+    total = sum(thirds)
+    estimator = DependencyTree(prune="bic", max_categories=99)
+    assert estimator.fit_stats(total) is estimator
+    assert_same_model(estimator, DependencyTree(prune="bic").fit(TRUTH))
+    assert estimator.get_params()["max_categories"] == 99
+    # The model counts on from a copy: more data leaves the caller's statistics alone.
+    estimator.partial_fit(TRUTH.slice(0, 10))
+    assert estimator.n_rows_ == N_ROWS + 10
+    assert total.n_rows == N_ROWS
+    with pytest.raises(SchemaError, match="columns="):
+        DependencyTree(columns=NAMES[::-1]).fit_stats(total)
+    with pytest.raises(TypeError, match="PairStats"):
+        DependencyTree().fit_stats(reference)  # type: ignore[arg-type]
+
+
 def test_pair_stats_with_different_codebooks_do_not_add(thirds: list[PairStats]) -> None:
     other = DependencyTree(n_bins=3).fit(TRUTH)
     foreign = PairStats.from_source(TRUTH, other.codebook_)
@@ -572,6 +590,27 @@ def test_a_column_missing_from_a_later_file_names_that_file(tmp_path: Path, good
     with pytest.raises(SchemaError, match=re.escape(str(second))) as info:
         DependencyTree().fit([good, second])
     assert "flag" in str(info.value)
+
+
+def test_an_error_in_a_later_batch_names_the_file_and_its_rows(tmp_path: Path) -> None:
+    # A value the codebook has no code for, in the second batch of 100 rows of the second file:
+    # the error names that file and the batch's rows within it (row 50 of the batch is 150).
+    names = ["a", "b"]
+    first = pa.table({"a": ["x", "y"] * 100, "b": [1, 2] * 100})
+    model = DependencyTree(columns=names, max_categories=2).fit(first)
+    second = first.set_column(0, "a", pa.array(["x"] * 150 + ["new"] + ["y"] * 49))
+    paths = [tmp_path / "first.parquet", tmp_path / "second.parquet"]
+    pq.write_table(first, paths[0])
+    pq.write_table(second, paths[1])
+    with pytest.raises(DataError) as info:
+        DependencyTree(columns=names).fit(paths, codebook=model, batch_rows=100)
+    message = str(info.value)
+    assert message.startswith(f"{paths[1]}, rows 100-199: "), message
+    assert "row 50 of this batch" in message
+    # In memory, the first batch keeps the message as it was (its rows are the data's).
+    with pytest.raises(DataError) as info:
+        DependencyTree(columns=names).fit(second.slice(100), codebook=model)
+    assert str(info.value).startswith("column 'a'"), str(info.value)
 
 
 def test_a_column_changing_family_names_the_file(tmp_path: Path, good: Path) -> None:

@@ -19,8 +19,8 @@ class CodebookBuilder:
     @property
     def rows(self) -> int: ...
     def finish(
-        self, max_categories: int, n_bins: int
-    ) -> tuple[Codebook, list[tuple[str, int, int]]]: ...
+        self, max_categories: int, n_bins: int, kinds: list[tuple[str, str]] = ...
+    ) -> tuple[Codebook, list[tuple[str, int, int]], list[tuple[str, str, str]]]: ...
 
 class Codebook:
     @property
@@ -28,6 +28,14 @@ class Codebook:
     @property
     def cardinalities(self) -> list[int]: ...
     def column(self, i: int) -> tuple[str, Any, bool, bool]: ...
+    def shape(
+        self, i: int
+    ) -> tuple[
+        str,
+        bool,
+        tuple[Any, list[int], int, int] | None,
+        list[tuple[str, list[float], list[int] | None]],
+    ]: ...
     def __len__(self) -> int: ...
     def to_bytes(self) -> bytes: ...
     @staticmethod
@@ -62,7 +70,7 @@ class TreeModel:
         codebook: Codebook,
         stats: PairStats,
         dtypes: list[str],
-        root: int,
+        root: int | None,
         alpha: float,
         prune: str = "none",
         level: float = 0.0,
@@ -94,7 +102,9 @@ class TreeModel:
     def score(
         self, batch: ArrowArrayExportable, surprisal: bool
     ) -> tuple[bytes, list[bytes] | None, list[int]]: ...
-    def sample(self, start: int, count: int, seed: int) -> tuple[bytes, list[bytes | None]]: ...
+    def sample(
+        self, start: int, count: int, seed: int
+    ) -> tuple[bytes, list[bytes | None], list[bytes | None]]: ...
 
 class TreeInference:
     @staticmethod

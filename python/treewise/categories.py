@@ -1,12 +1,12 @@
-"""Markers used in ``categories_``: the "other" code and the interval of a numeric bin."""
+"""The entries of ``categories_``: values, the "other" marker, numeric bins and the null code."""
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Final
+from typing import Any, Final
 
-__all__ = ["OTHER", "Bin"]
+__all__ = ["OTHER", "Bin", "column_categories"]
 
 
 class _Other:
@@ -48,3 +48,26 @@ class Bin:
 
     def __repr__(self) -> str:
         return f"[{self.low!r}, {self.high!r}{']' if self.closed else ')'}"
+
+
+def column_categories(kind: str, values: Any, has_other: bool, has_null: bool) -> list[Any]:
+    """One column's categories in code order: values or bins (and non-finite values), OTHER, None.
+
+    The arguments are what ``Codebook.column`` returns.
+    """
+    if isinstance(values, tuple):
+        # Numeric: bins, then the non-finite values seen.
+        edges, low, high, specials = values
+        bounds = [low, *edges, high]
+        last = len(bounds) - 2
+        cats: list[Any] = [Bin(bounds[k], bounds[k + 1], closed=k == last) for k in range(last + 1)]
+        cats.extend(specials)
+    else:
+        cats = list(values)
+    # One NaN object, so that lists of categories compare equal (NaN != NaN, but `is` holds).
+    cats = [math.nan if isinstance(c, float) and c != c else c for c in cats]
+    if has_other:
+        cats.append(OTHER)
+    if has_null:
+        cats.append(None)
+    return cats

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import math
-import numbers
 from collections.abc import Sequence
 from typing import Any
 
@@ -12,17 +11,20 @@ import numpy.typing as npt
 import pyarrow as pa
 
 from treewise import _core
-from treewise.errors import DataError, NotFittedError, SchemaError
-from treewise.inference import (
-    _evidence,
-    _read,
-    _Tally,
-    read_table,
+from treewise.categories import column_categories
+from treewise.checks import (
+    MAX_CATEGORIES,
+    check_alpha,
+    check_int,
+    check_nonnegative,
+    check_root,
 )
+from treewise.errors import DataError, NotFittedError
+from treewise.inference import EvidenceTally, as_evidence, evidence_batches
 from treewise.params import Params
 from treewise.passes import TypeRecorder, learn_codebook
 from treewise.progress import PassProgress
-from treewise.sources import BATCH_ROWS, check_columns, iter_batches, located, open_source
+from treewise.sources import BATCH_ROWS, BatchLoop, check_columns, open_source, read_table
 
 __all__ = ["TreeAugmentedClassifier"]
 
@@ -151,17 +153,10 @@ class TreeAugmentedClassifier(Params):
         TreeAugmentedClassifier
             The fitted classifier.
         """
-        from treewise.estimator import MAX_CATEGORIES, _categories, _check_alpha, _check_int
-
-        max_categories = _check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
-        n_bins = _check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
-        alpha = _check_alpha(self.alpha)
-        backoff = self.backoff
-        if isinstance(backoff, bool) or not isinstance(backoff, numbers.Real):
-            raise TypeError(f"backoff must be a number, got {backoff!r}")
-        if not (math.isfinite(backoff) and backoff >= 0):
-            raise ValueError(f"backoff must be a finite number >= 0, got {backoff!r}")
-        backoff = float(backoff)
+        max_categories = check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
+        n_bins = check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
+        alpha = check_alpha(self.alpha)
+        backoff = check_nonnegative("backoff", self.backoff)
         labels = _labels(y)
         source = open_source(X)
         names = check_columns(source.names, self.columns, source.description)
@@ -170,9 +165,7 @@ class TreeAugmentedClassifier(Params):
             raise DataError("X has 0 rows; a classifier needs at least one")
         if len(labels) != table.num_rows:
             raise ValueError(f"X has {table.num_rows} rows but y has {len(labels)} labels")
-        if self.root is not None and self.root not in names:
-            raise SchemaError(f"root={self.root!r} is not one of the features {names}")
-        root = 0 if self.root is None else names.index(self.root)
+        root = check_root(self.root, names, "the features")
         types = TypeRecorder(names)
         # The codebook pass only: the tables are counted class by class below.
         with (
@@ -187,8 +180,9 @@ class TreeAugmentedClassifier(Params):
         per_class = []
         for k in range(len(classes)):
             stats = _core.PairStats(codebook)
-            for batch in iter_batches(table.filter(pa.array(index == k))):
-                stats.update(codebook, batch)
+            with BatchLoop(open_source(table.filter(pa.array(index == k))), names) as batches:
+                for batch in batches:
+                    stats.update(codebook, batch)
             per_class.append(stats)
         counts = np.array([s.n_rows for s in per_class], dtype=np.int64)
         # I(X_i; X_j | C) = sum_c P(c) I_c: each I_c by the Chow-Liu fit's own recipe.
@@ -209,7 +203,7 @@ class TreeAugmentedClassifier(Params):
         self.class_count_ = counts
         self.feature_names_in_ = np.array(names, dtype=object)
         self.n_features_in_ = d
-        self.categories_ = [_categories(*codebook.column(i)) for i in range(d)]
+        self.categories_ = [column_categories(*codebook.column(i)) for i in range(d)]
         self.parent_ = np.array(self._engines[0].parent, dtype=np.intp)
         square = np.zeros((d, d))
         square[np.triu_indices(d, k=1)] = cmi
@@ -242,22 +236,22 @@ class TreeAugmentedClassifier(Params):
         engines = self._fitted()
         names = [str(n) for n in self.feature_names_in_]
         prior = self._log_prior()
-        tally = _Tally(names)
+        tally = EvidenceTally(names)
         parts = []
-        for label, batch in _read(open_source(X), names):
-            evidence = _evidence(batch, names)
-            with located(label):
+        with evidence_batches(open_source(X), names) as batches:
+            for batch in batches:
+                evidence = as_evidence(batch, names)
                 scored = [engine.log_evidence(evidence) for engine in engines]
-            tally.add(scored[0][1])
-            joint = np.column_stack([np.frombuffer(s[0], "<f8") for s in scored]) + prior
-            top = joint.max(axis=1, keepdims=True)
-            impossible = ~np.isfinite(top[:, 0])
-            if impossible.any():
-                tally.add([0] * len(names), int(impossible.sum()))
-                joint[impossible] = prior
-                top[impossible] = prior.max()
-            total = top + np.log(np.exp(joint - top).sum(axis=1, keepdims=True))
-            parts.append(joint - total)
+                tally.add(scored[0][1])
+                joint = np.column_stack([np.frombuffer(s[0], "<f8") for s in scored]) + prior
+                top = joint.max(axis=1, keepdims=True)
+                impossible = ~np.isfinite(top[:, 0])
+                if impossible.any():
+                    tally.add([0] * len(names), int(impossible.sum()))
+                    joint[impossible] = prior
+                    top[impossible] = prior.max()
+                total = top + np.log(np.exp(joint - top).sum(axis=1, keepdims=True))
+                parts.append(joint - total)
         tally.warn("they get the class prior")
         k = len(self.classes_)
         return np.concatenate(parts) if parts else np.zeros((0, k))

@@ -1,4 +1,4 @@
-"""Codes back to Arrow: the fitted column types by name, and codes as typed arrays of real values."""
+"""Codes back to Arrow: the fitted column types by name, and codes as arrays of real values."""
 
 from __future__ import annotations
 
@@ -73,7 +73,7 @@ def _time_type(name: str) -> pa.DataType | None:
     m = _TIME.match(name)
     if m is None:
         return None
-    ts_unit, tz, t32, t64, dur = m.groups()
+    ts_unit, tz, t32, t64, dur = cast(tuple[Any, Any, Any, Any, Any], m.groups())
     if ts_unit is not None:
         return pa.timestamp(ts_unit, tz=tz)
     if name.startswith("date32"):
@@ -157,8 +157,8 @@ class ColumnValues:
     @classmethod
     def of(cls, codebook: Any, i: int, dtype: pa.DataType, name: str = "") -> ColumnValues:
         """Column ``i`` of a core codebook, with its fitted Arrow type (and stored type name)."""
-        family, values, has_other, has_null = codebook.column(i)
-        kind, _integral, tail, _within = codebook.shape(i)
+        _family, values, has_other, has_null = codebook.column(i)
+        _kind, _integral, tail, _within = codebook.shape(i)
         value_type = dtype.value_type if pa.types.is_dictionary(dtype) else dtype
         numeric = isinstance(values, tuple)
         n_values = len(values[0]) + 1 + len(values[3]) if numeric else len(values)
@@ -248,7 +248,7 @@ def decode_column(
         at = np.array([position.get(v, -1) for v in dictionary.to_pylist()], dtype=np.int32)
         mapped = at[np.where(missing, 0, index)] if len(at) else np.zeros(len(codes), np.int32)
         gone = missing | (mapped < 0)
-        keys = pa.array(np.where(gone, 0, mapped).astype(np.int32), mask=gone)
+        keys: Any = pa.array(np.where(gone, 0, mapped).astype(np.int32), mask=gone)
         return pa.DictionaryArray.from_arrays(keys, column.levels).cast(dtype)
     if pa.types.is_dictionary(dtype):
         return pa.DictionaryArray.from_arrays(indices, dictionary).cast(dtype)

@@ -14,34 +14,34 @@ from collections.abc import Callable
 from typing import Any
 
 from treewise import _core
-from treewise.errors import DataError
-from treewise.estimator import (
+from treewise.checks import (
     MAX_CATEGORIES,
-    DependencyTree,
-    _check_alpha,
-    _check_int,
-    _check_kinds,
-    _check_prune,
+    check_alpha,
+    check_int,
+    check_kinds,
+    check_prune,
 )
+from treewise.errors import DataError
+from treewise.estimator import DependencyTree
 from treewise.pairstats import PairStats
 from treewise.passes import warn_caps, warn_notes
-from treewise.sources import BATCH_ROWS, check_columns, expand_paths, open_source
+from treewise.sources import BatchLoop, check_columns, expand_paths, open_source
 
 __all__ = ["fit_dask"]
 
 
-def _batches(part: Any, names: list[str]) -> Any:
+def _batches(part: Any, names: list[str]) -> BatchLoop:
     source = open_source(part)
     check_columns(source.names, names, source.description)
-    for piece in source.parts(names, BATCH_ROWS):
-        yield from piece.batches
+    return BatchLoop(source, names)
 
 
 def _tally(part: Any, names: list[str]) -> bytes:
     """Worker task: the codebook tally of one partition or file."""
     builder = _core.CodebookBuilder(names)
-    for batch in _batches(part, names):
-        builder.observe(batch)
+    with _batches(part, names) as batches:
+        for batch in batches:
+            builder.observe(batch)
     return builder.to_bytes()
 
 
@@ -54,8 +54,9 @@ def _merge_tallies(a: bytes, b: bytes) -> bytes:
 def _count(part: Any, names: list[str], codebook: bytes) -> bytes:
     """Worker task: the pair statistics of one partition or file."""
     stats = PairStats(_core.Codebook.from_bytes(codebook))
-    for batch in _batches(part, names):
-        stats.update(batch)
+    with _batches(part, names) as batches:
+        for batch in batches:
+            stats.update(batch)
     return stats.to_bytes()
 
 
@@ -127,16 +128,16 @@ def fit_dask(data: Any, *, split_every: int = 8, **params: Any) -> DependencyTre
     from dask.delayed import delayed
 
     estimator = DependencyTree(**params)
-    max_categories = _check_int("max_categories", estimator.max_categories, 2, MAX_CATEGORIES)
-    n_bins = _check_int("n_bins", estimator.n_bins, 1, MAX_CATEGORIES - 1)
-    alpha = _check_alpha(estimator.alpha)
-    kind, level = _check_prune(estimator.prune)
-    split_every = _check_int("split_every", split_every, 2, 1024)
+    max_categories = check_int("max_categories", estimator.max_categories, 2, MAX_CATEGORIES)
+    n_bins = check_int("n_bins", estimator.n_bins, 1, MAX_CATEGORIES - 1)
+    check_alpha(estimator.alpha)
+    check_prune(estimator.prune)
+    split_every = check_int("split_every", split_every, 2, 1024)
     parts, available = _parts(data)
     if not parts:
         raise DataError("the Dask data has no partitions")
     names = check_columns(available, estimator.columns, "the Dask data")
-    kinds = _check_kinds(estimator.kinds, names)
+    kinds = check_kinds(estimator.kinds, names)
 
     tallies = [delayed(_tally, pure=True)(p, names) for p in parts]
     (tally,) = compute(_tree_reduce(tallies, _merge_tallies, split_every))
@@ -147,14 +148,7 @@ def fit_dask(data: Any, *, split_every: int = 8, **params: Any) -> DependencyTre
     warn_notes(notes)
     # Columns left out of the model (identifiers, all null) are not counted.
     names = list(codebook.names)
-    root_index = estimator._root_index(names)
     encoded = codebook.to_bytes()
     counts = [delayed(_count, pure=True)(p, names, encoded) for p in parts]
     (merged,) = compute(_tree_reduce(counts, _merge_stats, split_every))
-    stats = PairStats.from_bytes(merged)
-    model = _core.TreeModel.fit(
-        stats.codebook, stats._stats, stats.dtypes, root_index, alpha, kind, level
-    )
-    estimator._set_model(model)
-    estimator._stats = stats._stats
-    return estimator
+    return estimator.fit_stats(PairStats.from_bytes(merged), copy=False)

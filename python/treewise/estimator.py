@@ -6,7 +6,6 @@ import math
 import numbers
 import os
 from collections.abc import Iterator, Mapping, Sequence
-from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -14,62 +13,40 @@ import numpy.typing as npt
 import pyarrow as pa
 
 from treewise import _core, inference
-from treewise.categories import OTHER, Bin
-from treewise.decode import ColumnValues, decode_column, type_from_name
-from treewise.errors import (
-    DataError,
-    NotFittedError,
-    SchemaError,
-    UnseenCategoryWarning,
-    warn,
+from treewise.categories import column_categories
+from treewise.checks import (
+    MAX_CATEGORIES,
+    MAX_SAMPLE_ROWS,
+    RandomState,
+    check_alpha,
+    check_int,
+    check_kinds,
+    check_prune,
+    seed_of,
 )
+from treewise.decode import ColumnValues, decode_column, type_from_name
+from treewise.errors import DataError, NotFittedError, SchemaError
 from treewise.files import read_model_file, write_atomically
 from treewise.pairstats import PairStats
 from treewise.params import Params
 from treewise.passes import TypeRecorder, count_pairs, learn_codebook
 from treewise.progress import PassProgress, wants_progress
-from treewise.sources import BATCH_ROWS, check_columns, located, open_source
-from treewise.stream import atomic_parquet, write_scores
+from treewise.sources import (
+    BATCH_ROWS,
+    BatchLoop,
+    check_columns,
+    generated_source,
+    open_source,
+)
+from treewise.stream import Scored, atomic_parquet, score_batches, write_scores
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
 
 __all__ = ["DependencyTree"]
 
-#: The most codes a column may have (codes are 16-bit, with one value reserved).
-MAX_CATEGORIES = 65_535
 #: Rows per sampled batch by default.
 SAMPLE_BATCH_ROWS = 262_144
-#: The most rows one sampling call accepts (2**40, about a trillion).
-MAX_SAMPLE_ROWS = 2**40
-
-
-def _categories(kind: str, values: Any, has_other: bool, has_null: bool) -> list[Any]:
-    """One column's categories in code order: values (or bins and non-finite values), then
-    OTHER, then None."""
-    if isinstance(values, tuple):
-        edges, low, high, specials = values
-        bounds = [low, *edges, high]
-        last = len(bounds) - 2
-        cats: list[Any] = [Bin(bounds[k], bounds[k + 1], closed=k == last) for k in range(last + 1)]
-        cats.extend(specials)
-    else:
-        cats = list(values)
-    # One NaN object, so that lists of categories compare equal (NaN != NaN, but `is` holds).
-    cats = [math.nan if isinstance(c, float) and c != c else c for c in cats]
-    if has_other:
-        cats.append(OTHER)
-    if has_null:
-        cats.append(None)
-    return cats
-
-
-def _check_int(name: str, value: object, low: int, high: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, numbers.Integral):
-        raise TypeError(f"{name} must be an integer, got {value!r}")
-    if not low <= int(value) <= high:
-        raise ValueError(f"{name} must be between {low} and {high}, got {value}")
-    return int(value)
 
 
 class DependencyTree(Params):
@@ -225,16 +202,16 @@ class DependencyTree(Params):
         codes, once to count. A one-shot stream is read once and spooled to a temporary Arrow
         file (in the system's temporary directory) for the counting pass.
         """
-        max_categories = _check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
-        n_bins = _check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
-        alpha = _check_alpha(self.alpha)
-        kind, level = _check_prune(self.prune)
-        rows = _check_int("batch_rows", BATCH_ROWS if batch_rows is None else batch_rows, 1, 2**31)
+        max_categories = check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
+        n_bins = check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
+        alpha = check_alpha(self.alpha)
+        check_prune(self.prune)
+        rows = check_int("batch_rows", BATCH_ROWS if batch_rows is None else batch_rows, 1, 2**31)
         source = open_source(data)
         given = _as_codebook(codebook)
         wanted = self.columns if self.columns is not None or given is None else given.names
         names = check_columns(source.names, wanted, source.description)
-        kinds = _check_kinds(self.kinds, names)
+        kinds = check_kinds(self.kinds, names)
         if self.root is not None and self.root not in names:
             raise SchemaError(f"root={self.root!r} is not one of the modelled columns {names}")
         types = TypeRecorder(names)
@@ -250,7 +227,7 @@ class DependencyTree(Params):
                     seen = types if counting is source else TypeRecorder(names)
                     count_pairs(counting, kept, learned, stats, rows, bar, seen)
                     chosen = learned
-                    types = _select_types(types, kept)
+                    types = types.select(kept)
             else:
                 chosen = given.select(names)
                 stats = _core.PairStats(chosen)
@@ -259,12 +236,9 @@ class DependencyTree(Params):
             raise DataError(
                 f"{source.description} has 0 rows; a dependency tree needs at least one"
             )
-        root = self._root_index(list(chosen.names))
-        self._set_model(
-            _core.TreeModel.fit(chosen, stats, types.type_names(chosen), root, alpha, kind, level)
+        return self._adopt(
+            stats, chosen, types.type_names(chosen), self._root_index(list(chosen.names)), alpha
         )
-        self._stats = stats
-        return self
 
     def partial_fit(
         self, data: Any, y: None = None, *, codebook: _core.Codebook | DependencyTree | None = None
@@ -299,15 +273,9 @@ class DependencyTree(Params):
                 bar,
                 types,
             )
-        kind, level = _check_prune(self.prune)
-        stats = self._stats
-        self._set_model(
-            _core.TreeModel.fit(
-                model.codebook, stats, model.dtypes, self._root_index(names), model.alpha, kind, level
-            )
+        return self._adopt(
+            self._stats, model.codebook, model.dtypes, self._root_index(names), model.alpha
         )
-        self._stats = stats
-        return self
 
     @classmethod
     def from_stats(
@@ -322,15 +290,41 @@ class DependencyTree(Params):
         if stats.n_rows == 0:
             raise DataError("these PairStats have counted 0 rows; a model needs at least one")
         estimator = cls(columns=list(stats.columns), root=root, alpha=alpha, prune=prune)
-        names = list(stats.columns)
-        index = estimator._root_index(names)
-        kind, level = _check_prune(prune)
-        model = _core.TreeModel.fit(
-            stats.codebook, stats._stats, stats.dtypes, index, _check_alpha(alpha), kind, level
-        )
-        estimator._set_model(model)
-        estimator._stats = stats._stats.copy()
-        return estimator
+        return estimator.fit_stats(stats)
+
+    def fit_stats(self, stats: PairStats, *, copy: bool = True) -> DependencyTree:
+        """Fit the tree to counted pair statistics, with this estimator's parameters.
+
+        ``stats`` must count the estimator's ``columns`` (all of its columns when None), in
+        order. The model keeps the statistics (a copy unless ``copy=False``), so ``partial_fit``
+        and ``joint_counts`` work as after ``fit``. ``from_stats`` and the Dask fit end here.
+        """
+        if not isinstance(stats, PairStats):
+            raise TypeError(f"fit_stats takes treewise.PairStats, got {stats!r}")
+        if stats.n_rows == 0:
+            raise DataError("these PairStats have counted 0 rows; a model needs at least one")
+        names = check_columns(stats.columns, self.columns, "the PairStats")
+        if names != stats.columns:
+            raise SchemaError(
+                f"the PairStats count the columns {stats.columns}, but columns={names}"
+            )
+        counts = stats._stats.copy() if copy else stats._stats
+        root = self._root_index(names)
+        return self._adopt(counts, stats.codebook, stats.dtypes, root, check_alpha(self.alpha))
+
+    def _adopt(
+        self,
+        stats: _core.PairStats,
+        codebook: _core.Codebook,
+        dtypes: list[str],
+        root: int | None,
+        alpha: float,
+    ) -> DependencyTree:
+        """The end of every fit: build the tree from the counts and adopt it with its counts."""
+        kind, level = check_prune(self.prune)
+        self._set_model(_core.TreeModel.fit(codebook, stats, dtypes, root, alpha, kind, level))
+        self._stats = stats
+        return self
 
     def _root_index(self, names: list[str]) -> int | None:
         """The root's index, or None to let the core pick the centre of the tree."""
@@ -352,7 +346,7 @@ class DependencyTree(Params):
         self.feature_names_in_ = np.array(codebook.names, dtype=object)
         self.n_features_in_ = d
         self.n_rows_ = model.n_rows
-        self.categories_ = [_categories(*codebook.column(i)) for i in range(d)]
+        self.categories_ = [column_categories(*codebook.column(i)) for i in range(d)]
         self.parent_ = np.array(model.parent, dtype=np.intp)
         pairwise = np.zeros((d, d))
         upper = np.triu_indices(d, k=1)
@@ -376,7 +370,7 @@ class DependencyTree(Params):
         if model is None:
             raise NotFittedError("this DependencyTree is not fitted yet; call fit(data) first")
         if model.alpha != self.alpha:
-            model.set_alpha(_check_alpha(self.alpha))
+            model.set_alpha(check_alpha(self.alpha))
         return model
 
     def _index(self, column: str | int) -> int:
@@ -456,31 +450,7 @@ class DependencyTree(Params):
         """Score ``data`` batch by batch (any source), then warn once about unseen values."""
         model = self._fitted()
         names = [str(n) for n in self.feature_names_in_]
-        source = open_source(data)
-        check_columns(source.names, names, source.description)
-        extra = [k for k in keys if k not in names]
-        wanted = names + check_columns(source.names, extra, source.description) if extra else names
-        unseen = np.zeros(len(names), dtype=np.int64)
-        with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
-            bar.start("scoring")
-            for part in source.parts(wanted, batch_rows):
-                with located(part.label):
-                    for batch in part.batches:
-                        total, columns, missing = model.score(batch.select(names), surprisal)
-                        unseen += missing
-                        per_column = (
-                            None if columns is None else [np.frombuffer(c, "<f8") for c in columns]
-                        )
-                        yield Scored(batch, np.frombuffer(total, "<f8"), per_column)
-                        bar.rows(batch.num_rows)
-                bar.part_done()
-        if unseen.any():
-            report = ", ".join(f"{names[c]!r}: {k}" for c, k in enumerate(unseen) if k)
-            warn(
-                f"values never seen in fitting (scored with the smoothing mass, alpha="
-                f"{self.alpha}): {report}",
-                UnseenCategoryWarning,
-            )
+        return score_batches(model, names, self.alpha, data, surprisal, keys, batch_rows, progress)
 
     def score_samples(self, data: Any) -> npt.NDArray[np.float64]:
         """The log-probability of each row under the model, in nats.
@@ -546,7 +516,7 @@ class DependencyTree(Params):
             (position in the source), the keys, ``score``, and ``surprisal_<column>`` for each
             modelled column.
         """
-        top = _check_int("top", top, 0, 1_000_000)
+        top = check_int("top", top, 0, 1_000_000)
         if isinstance(keys, str) or not all(isinstance(k, str) for k in keys):
             raise TypeError(f"keys= must be a list of column names, got {keys!r}")
         keys = list(keys)
@@ -570,15 +540,14 @@ class DependencyTree(Params):
         """
         schema = self._output_schema()
         rows = SAMPLE_BATCH_ROWS if batch_rows is None else batch_rows
-        batches = self.iter_sample(n, random_state, rows)
+        sampled = generated_source(self.iter_sample(n, random_state, rows), schema.names, n, "")
         with (
             PassProgress(wants_progress(progress), int(n), 1) as bar,
             atomic_parquet(path, schema) as writer,
         ):
-            bar.start("sampling")
-            for batch in batches:
+            # No `with`: an error of the writer is not one of reading the sampled rows.
+            for batch in BatchLoop(sampled, schema.names, rows, bar, "sampling"):
                 writer.write_batch(batch)
-                bar.rows(batch.num_rows)
         return int(n)
 
     def bic(self, data: Any) -> float:
@@ -607,11 +576,11 @@ class DependencyTree(Params):
         of threads. See :meth:`sample` for how values come back.
         """
         model = self._fitted()
-        n = _check_int("n", n, 0, MAX_SAMPLE_ROWS)
+        n = check_int("n", n, 0, MAX_SAMPLE_ROWS)
         block = _core.SAMPLE_BLOCK
-        batch_rows = _check_int("batch_rows", batch_rows, 1, MAX_SAMPLE_ROWS)
+        batch_rows = check_int("batch_rows", batch_rows, 1, MAX_SAMPLE_ROWS)
         step = max(block, batch_rows // block * block)
-        seed = _seed(random_state)
+        seed = seed_of(random_state)
         schema = self._output_schema()
         columns = self._column_values()
         for start in range(0, n, step):
@@ -727,14 +696,14 @@ class DependencyTree(Params):
     # -- views -------------------------------------------------------------------------------------
 
     def plot(self, **options: Any) -> Figure:
-        """A matplotlib figure of the tree; see :func:`treewise.plot.plot_tree` for options."""
-        from treewise.plot import plot_tree  # matplotlib loads only when a picture is asked for
+        """A matplotlib figure of the tree; see :func:`treewise.views.plot.plot_tree`."""
+        from treewise.views.plot import plot_tree  # matplotlib loads only for a picture
 
         return plot_tree(self, **options)
 
     def _repr_html_(self) -> str:
         """The notebook view: a compact summary with the picture."""
-        from treewise.notebook import model_html
+        from treewise.views.notebook import model_html
 
         return model_html(self)
 
@@ -760,15 +729,6 @@ class DependencyTree(Params):
         return estimator
 
 
-@dataclass
-class Scored:
-    """One scored batch: the batch read, ln p per row, and per-column surprisal if asked."""
-
-    batch: pa.RecordBatch
-    total: npt.NDArray[np.float64]
-    surprisal: list[npt.NDArray[np.float64]] | None
-
-
 def _as_codebook(codebook: object) -> _core.Codebook | None:
     """A codebook given as such, or taken from a fitted model."""
     if codebook is None or isinstance(codebook, _core.Codebook):
@@ -780,76 +740,5 @@ def _as_codebook(codebook: object) -> _core.Codebook | None:
     )
 
 
-_KINDS = ("auto", "categorical", "numeric", "ignore")
-
-
-def _check_kinds(kinds: object, names: list[str]) -> dict[str, str]:
-    """The ``kinds`` parameter, checked against the columns being fitted."""
-    if kinds is None:
-        return {}
-    if not isinstance(kinds, Mapping):
-        raise TypeError(f"kinds must be a dict of column name to kind, got {kinds!r}")
-    out = {}
-    for column, kind in kinds.items():
-        if column not in names:
-            raise SchemaError(f"kinds names {column!r}, which is not one of the columns {names}")
-        if kind not in _KINDS:
-            raise ValueError(f"kinds[{column!r}] is {kind!r}; use one of {_KINDS}")
-        out[str(column)] = str(kind)
-    return out
-
-
-def _select_types(types: TypeRecorder, names: list[str]) -> TypeRecorder:
-    """The recorded types of the columns ``names`` only."""
-    if names == types.names:
-        return types
-    kept = TypeRecorder(names)
-    kept.types = {n: t for n, t in types.types.items() if n in names}
-    return kept
-
-
-def _check_prune(prune: object) -> tuple[str, float]:
-    """The core's (kind, level) for a ``prune`` parameter."""
-    if prune is None:
-        return "none", 0.0
-    if prune == "bic":
-        return "bic", 0.0
-    if isinstance(prune, numbers.Real) and not isinstance(prune, bool):
-        level = float(prune)
-        if 0.0 < level < 1.0:
-            return "level", level
-        raise ValueError(f"a pruning significance level must be between 0 and 1, got {prune}")
-    raise ValueError(f"prune must be None, 'bic' or a significance level in (0, 1); got {prune!r}")
-
-
 def _u64(data: bytes) -> npt.NDArray[np.uint64]:
     return np.frombuffer(data, dtype="<u8").astype(np.uint64)
-
-
-def _check_alpha(alpha: object) -> float:
-    if isinstance(alpha, bool) or not isinstance(alpha, numbers.Real):
-        raise TypeError(f"alpha must be a number, got {alpha!r}")
-    value = float(alpha)
-    if not (math.isfinite(value) and value >= 0):
-        raise ValueError(f"alpha must be a finite number >= 0, got {alpha!r}")
-    return value
-
-
-RandomState = int | np.random.Generator | np.random.RandomState | None
-
-
-def _seed(random_state: RandomState) -> int:
-    """A 64-bit seed for the core's generator from scikit-learn-style ``random_state``."""
-    if random_state is None:
-        return int.from_bytes(os.urandom(8), "little")
-    if isinstance(random_state, np.random.Generator):
-        return int(random_state.integers(0, 2**64, dtype=np.uint64))
-    if isinstance(random_state, np.random.RandomState):
-        return int(random_state.randint(0, 2**63, dtype=np.int64))
-    if isinstance(random_state, numbers.Integral) and not isinstance(random_state, bool):
-        if 0 <= int(random_state) < 2**64:
-            return int(random_state)
-        raise ValueError(f"random_state must be between 0 and 2**64 - 1, got {random_state}")
-    raise TypeError(
-        f"random_state must be None, an int, or a numpy Generator/RandomState, got {random_state!r}"
-    )

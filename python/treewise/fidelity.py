@@ -1,4 +1,4 @@
-"""Synthetic rows against real ones in real units: per-column distances next to a bootstrap floor."""
+"""Synthetic rows against real ones in real units: column distances next to a bootstrap floor."""
 
 from __future__ import annotations
 
@@ -14,8 +14,11 @@ __all__ = ["compare_columns", "ks_distance", "rank_correlation", "tv_distance"]
 
 
 def ks_distance(a: npt.NDArray[np.float64], b: npt.NDArray[np.float64]) -> float:
-    """The two-sample Kolmogorov-Smirnov statistic: the largest gap between the two empirical
-    distribution functions (0: the same, 1: disjoint). NaN when either side is empty."""
+    """The two-sample Kolmogorov-Smirnov statistic (0: the same, 1: disjoint).
+
+    It is the largest gap between the two empirical distribution functions; NaN when either side
+    is empty.
+    """
     if len(a) == 0 or len(b) == 0:
         return float("nan")
     a, b = np.sort(a), np.sort(b)
@@ -26,8 +29,10 @@ def ks_distance(a: npt.NDArray[np.float64], b: npt.NDArray[np.float64]) -> float
 
 
 def tv_distance(a: pa.Array[Any], b: pa.Array[Any]) -> float:
-    """Total variation distance between the shares of the values of two arrays (nulls left out):
-    half the sum of the absolute differences (0: the same, 1: disjoint)."""
+    """Total variation distance between the value shares of two arrays (0: the same, 1: disjoint).
+
+    Half the sum of the absolute differences of the shares; nulls are left out.
+    """
     shares = []
     for side in (a, b):
         counts = pc.value_counts(side.drop_null())
@@ -39,7 +44,7 @@ def tv_distance(a: pa.Array[Any], b: pa.Array[Any]) -> float:
             }
         )
     keys = set(shares[0]) | set(shares[1])
-    return 0.5 * sum(abs(shares[0].get(k, 0.0) - shares[1].get(k, 0.0)) for k in keys)
+    return float(0.5 * sum(abs(shares[0].get(k, 0.0) - shares[1].get(k, 0.0)) for k in keys))
 
 
 def _key(value: pa.Scalar[Any]) -> object:
@@ -67,15 +72,18 @@ def _ranks(x: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
     return ranks
 
 
-def numbers(column: pa.Array[Any] | pa.ChunkedArray[Any]) -> npt.NDArray[np.float64]:
+def numbers(column: Any) -> npt.NDArray[np.float64]:
     """The non-null values of a number or time column as floats (times in their own unit)."""
     if isinstance(column, pa.ChunkedArray):
         column = column.combine_chunks()
     if pa.types.is_dictionary(column.type):
         column = column.dictionary_decode()
     t = column.type
-    if pa.types.is_timestamp(t) or pa.types.is_date(t) or pa.types.is_time(t) or (
-        pa.types.is_duration(t)
+    if (
+        pa.types.is_timestamp(t)
+        or pa.types.is_date(t)
+        or pa.types.is_time(t)
+        or pa.types.is_duration(t)
     ):
         column = column.view(pa.int32() if t.bit_width == 32 else pa.int64())
     values: npt.NDArray[np.float64] = (
@@ -84,7 +92,7 @@ def numbers(column: pa.Array[Any] | pa.ChunkedArray[Any]) -> npt.NDArray[np.floa
     return values
 
 
-def _plain(column: pa.Array[Any] | pa.ChunkedArray[Any]) -> pa.Array[Any]:
+def _plain(column: Any) -> Any:
     if isinstance(column, pa.ChunkedArray):
         column = column.combine_chunks()
     if pa.types.is_dictionary(column.type):

@@ -1,4 +1,4 @@
-"""Questions to a fitted tree: exact posteriors, imputation, conditional sampling, edge stability.
+"""Questions to a fitted tree: exact posteriors, imputation and conditional sampling.
 
 Every function takes a fitted :class:`~treewise.DependencyTree` first. The work is exact
 message passing on the tree (or forest) in the Rust core, one row per query, in parallel and
@@ -10,9 +10,8 @@ unobserved in every row. See docs/inference.md.
 
 from __future__ import annotations
 
-import numbers
 import weakref
-from collections.abc import Collection, Iterator, Mapping
+from collections.abc import Collection, Mapping
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -21,6 +20,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from treewise import _core
+from treewise.checks import MAX_SAMPLE_ROWS, RandomState, check_int, seed_of
 from treewise.decode import decode_column
 from treewise.errors import (
     DataError,
@@ -28,14 +28,16 @@ from treewise.errors import (
     UnseenCategoryWarning,
     warn,
 )
-from treewise.sources import BATCH_ROWS, Source, check_columns, located, open_source
+from treewise.sources import BatchLoop, Source, open_source, read_table
 
 if TYPE_CHECKING:
-    from treewise.estimator import DependencyTree, RandomState
+    from treewise.estimator import DependencyTree
 
 __all__ = [
+    "EvidenceTally",
     "ImpossibleEvidenceWarning",
-    "edge_stability",
+    "as_evidence",
+    "evidence_batches",
     "impute",
     "marginals",
     "predict",
@@ -48,8 +50,6 @@ __all__ = [
 SAMPLE_ROWS = 262_144
 #: The imputation strategies.
 STRATEGIES = ("joint", "marginal", "sample")
-#: The resampling methods of edge_stability.
-METHODS = ("bootstrap", "subsample")
 #: The code the core writes for a cell it left as it was.
 _KEPT = 0xFFFF
 
@@ -80,21 +80,14 @@ def _names(model: DependencyTree) -> list[str]:
 # -- reading evidence ----------------------------------------------------------------------------
 
 
-def _read(source: Source, wanted: list[str] | None) -> Iterator[tuple[str, pa.RecordBatch]]:
-    """(label, batch) of a source, holding the ``wanted`` columns it has (None: all of them)."""
+def evidence_batches(source: Source, wanted: list[str] | None) -> BatchLoop:
+    """The loop over a source's batches, holding the ``wanted`` columns it has (None: all)."""
     present = list(source.names) if wanted is None else [n for n in wanted if n in source.names]
     # With none of the wanted columns, read one column anyway: the rows still count.
-    for part in source.parts(present or list(source.names[:1]), BATCH_ROWS):
-        batches = iter(part.batches)
-        while True:
-            with located(part.label):
-                batch = next(batches, None)
-            if batch is None:
-                break
-            yield part.label, batch
+    return BatchLoop(source, present or list(source.names[:1]))
 
 
-def _evidence(batch: pa.RecordBatch, names: list[str], blank: Collection[str] = ()) -> Any:
+def as_evidence(batch: pa.RecordBatch, names: list[str], blank: Collection[str] = ()) -> Any:
     """The batch as the model's columns in order; absent and ``blank`` columns are all null."""
     n = batch.num_rows
     have = set(batch.schema.names)
@@ -104,7 +97,7 @@ def _evidence(batch: pa.RecordBatch, names: list[str], blank: Collection[str] = 
     return pa.RecordBatch.from_arrays(arrays, names=names)
 
 
-class _Tally:
+class EvidenceTally:
     """Values without a code and impossible rows over a whole call, warned about once."""
 
     def __init__(self, names: list[str]) -> None:
@@ -113,10 +106,12 @@ class _Tally:
         self.impossible = 0
 
     def add(self, unseen: list[int], impossible: int = 0) -> None:
+        """Count a batch's values without a code (per column) and its impossible rows."""
         self.unseen += np.asarray(unseen, dtype=np.int64)
         self.impossible += impossible
 
     def warn(self, impossible: str) -> None:
+        """Warn once about what was counted; ``impossible`` says what became of such rows."""
         if self.unseen.any():
             report = ", ".join(f"{self.names[c]!r}: {k}" for c, k in enumerate(self.unseen) if k)
             warn(
@@ -162,15 +157,15 @@ def predict_proba(model: DependencyTree, data: Any, target: str | int) -> npt.ND
     t = model._index(target)
     engine = _engine(model)
     names = _names(model)
-    tally = _Tally(names)
+    tally = EvidenceTally(names)
     parts: list[npt.NDArray[np.float64]] = []
-    for label, batch in _read(open_source(data), names):
-        with located(label):
+    with evidence_batches(open_source(data), names) as batches:
+        for batch in batches:
             (table,), unseen, impossible = engine.posterior(
-                _evidence(batch, names, {names[t]}), [t]
+                as_evidence(batch, names, {names[t]}), [t]
             )
-        tally.add(unseen, impossible)
-        parts.append(_f64(table))
+            tally.add(unseen, impossible)
+            parts.append(_f64(table))
     tally.warn("their probabilities are NaN")
     width = len(model.categories_[t])
     return np.concatenate(parts).reshape(-1, width) if parts else np.zeros((0, width))
@@ -220,7 +215,7 @@ def marginals(
     names = _names(model)
     batch = _one_row(model, evidence or {})
     tables, unseen, impossible = _engine(model).posterior(batch, list(range(len(names))))
-    tally = _Tally(names)
+    tally = EvidenceTally(names)
     tally.add(unseen)
     tally.warn("")
     if impossible:
@@ -288,34 +283,32 @@ def impute(
         whose evidence is impossible (alpha=0 only) keep their nulls, with an
         ``ImpossibleEvidenceWarning``.
     """
-    from treewise.estimator import _seed
-
     if strategy not in STRATEGIES:
         raise ValueError(f"strategy must be one of {STRATEGIES}, got {strategy!r}")
     engine = _engine(model)
     names = _names(model)
-    seed = _seed(random_state) if strategy == "sample" else 0
-    tally = _Tally(names)
+    seed = seed_of(random_state) if strategy == "sample" else 0
+    tally = EvidenceTally(names)
     schema = model._output_schema()
     out: list[pa.RecordBatch] = []
     first = 0
     source = open_source(data)
-    for label, batch in _read(source, None):
-        with located(label):
+    with evidence_batches(source, None) as batches:
+        for batch in batches:
             present = set(batch.schema.names)
             fill = [c for c, name in enumerate(names) if name in present]
             codes, floats, unseen, impossible = engine.impute(
-                _evidence(batch, names), fill, strategy, seed, first
+                as_evidence(batch, names), fill, strategy, seed, first
             )
-        tally.add(unseen, impossible)
-        rng = np.random.default_rng([seed, first]) if strategy == "sample" else None
-        filled = _filled(model, codes, floats, batch.num_rows, schema, rng)
-        arrays = [
-            _merge(batch.column(i), filled[field.name]) if field.name in filled else batch.column(i)
-            for i, field in enumerate(batch.schema)
-        ]
-        out.append(pa.RecordBatch.from_arrays(arrays, names=batch.schema.names))
-        first += batch.num_rows
+            tally.add(unseen, impossible)
+            rng = np.random.default_rng([seed, first]) if strategy == "sample" else None
+            filled = _filled(model, codes, floats, batch.num_rows, schema, rng)
+            arrays = [
+                _merge(batch.column(i), filled[f.name]) if f.name in filled else batch.column(i)
+                for i, f in enumerate(batch.schema)
+            ]
+            out.append(pa.RecordBatch.from_arrays(arrays, names=batch.schema.names))
+            first += batch.num_rows
     tally.warn("their nulls are left as they were")
     if not out:
         return pa.table({n: pa.nulls(0) for n in source.names})
@@ -390,18 +383,16 @@ def sample_given(
         Impossible fixed evidence raises ``DataError``; impossible rows of a table stay null,
         with an ``ImpossibleEvidenceWarning``.
     """
-    from treewise.estimator import MAX_SAMPLE_ROWS, _check_int, _seed
-
     engine = _engine(model)
     names = _names(model)
-    seed = _seed(random_state)
+    seed = seed_of(random_state)
     schema = model._output_schema()
-    tally = _Tally(names)
+    tally = EvidenceTally(names)
     out: list[pa.RecordBatch] = []
     if isinstance(given, Mapping):
         if n is None:
             raise TypeError("sample_given needs n, the number of rows, with a dict of evidence")
-        n = _check_int("n", n, 0, MAX_SAMPLE_ROWS)
+        n = check_int("n", n, 0, MAX_SAMPLE_ROWS)
         row = _one_row(model, given)
         fixed = _as_output(row, schema)
         for start in range(0, n, SAMPLE_ROWS):
@@ -419,17 +410,17 @@ def sample_given(
         if n is not None and source.total_rows is not None and n != source.total_rows:
             raise ValueError(f"n={n} but the evidence has {source.total_rows} rows; give n=None")
         first = 0
-        for label, batch in _read(source, names):
-            evidence = _evidence(batch, names)
-            with located(label):
+        with evidence_batches(source, names) as batches:
+            for batch in batches:
+                evidence = as_evidence(batch, names)
                 codes, floats, unseen, impossible = engine.sample_given(
                     evidence, batch.num_rows, first, seed
                 )
-            tally.add(unseen, impossible)
-            given_rows = _as_output(evidence, schema)
-            rng = np.random.default_rng([seed, first])
-            out.append(_assemble(model, codes, floats, batch.num_rows, schema, given_rows, rng))
-            first += batch.num_rows
+                tally.add(unseen, impossible)
+                given_rows = _as_output(evidence, schema)
+                rng = np.random.default_rng([seed, first])
+                out.append(_assemble(model, codes, floats, batch.num_rows, schema, given_rows, rng))
+                first += batch.num_rows
         if n is not None and n != first:
             raise ValueError(f"n={n} but the evidence has {first} rows; give n=None")
     tally.warn("their unobserved cells are left null")
@@ -469,102 +460,3 @@ def _assemble(
         for c, f in enumerate(schema)
     ]
     return pa.RecordBatch.from_arrays(arrays, schema=schema)
-
-
-# -- edge stability ------------------------------------------------------------------------------
-
-
-def edge_stability(
-    model: DependencyTree | Mapping[str, Any],
-    data: Any,
-    *,
-    n_resamples: int = 100,
-    method: str = "bootstrap",
-    min_frequency: float = 0.1,
-    random_state: RandomState = None,
-) -> pa.Table:
-    """How often each edge of the tree comes back when the rows are resampled and refitted.
-
-    Parameters
-    ----------
-    model : DependencyTree or dict
-        A DependencyTree (its parameters are used; it need not be fitted) or a dict of
-        DependencyTree parameters.
-    data : table, path or stream
-        The data, read into memory (resampling needs every row).
-    n_resamples : int, default 100
-        Refits.
-    method : {"bootstrap", "subsample"}, default "bootstrap"
-        ``"bootstrap"``: n rows drawn with replacement, so each refit sees as many rows as the
-        full fit. ``"subsample"``: half the rows, drawn without replacement. See
-        docs/inference.md for the choice.
-    min_frequency : float, default 0.1
-        Besides the full-data tree's edges, report every edge found in at least this share of
-        the refits.
-    random_state : None, int, numpy.random.Generator or RandomState
-        The resampling seed.
-
-    Returns
-    -------
-    pyarrow.Table
-        One row per edge, most stable first: ``column_a`` and ``column_b`` (in column order),
-        ``frequency`` (share of refits whose tree has the edge), ``in_full_tree`` and
-        ``mutual_info`` (on the full data, nats). Every refit uses the full fit's codebook, so
-        codes mean the same thing in all of them.
-    """
-    from treewise.estimator import DependencyTree, _check_int, _seed
-
-    if isinstance(model, DependencyTree):
-        params, make = model.get_params(), type(model)
-    elif isinstance(model, Mapping):
-        params, make = dict(model), DependencyTree
-    else:
-        raise TypeError(
-            f"model must be a DependencyTree or a dict of its parameters, got {model!r}"
-        )
-    n_resamples = _check_int("n_resamples", n_resamples, 1, 1_000_000)
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {METHODS}, got {method!r}")
-    if not (isinstance(min_frequency, numbers.Real) and 0.0 <= float(min_frequency) <= 1.0):
-        raise ValueError(f"min_frequency must be between 0 and 1, got {min_frequency!r}")
-    table = read_table(data)
-    full = make(**params).fit(table)
-    n = table.num_rows
-    names = _names(full)
-    d = len(names)
-    rng = np.random.default_rng(_seed(random_state))
-    size = n if method == "bootstrap" else max(1, n // 2)
-    found = np.zeros((d, d), dtype=np.int64)
-    for _ in range(n_resamples):
-        rows = rng.integers(0, n, size) if method == "bootstrap" else rng.choice(n, size, False)
-        refit = make(**params).fit(table.take(pa.array(rows)), codebook=full.codebook_)
-        for child, parent in enumerate(refit.parent_):
-            if parent >= 0:
-                found[min(child, parent), max(child, parent)] += 1
-    frequency = found / n_resamples
-    tree = {(min(c, int(p)), max(c, int(p))) for c, p in enumerate(full.parent_) if p >= 0}
-    often = {(int(i), int(j)) for i, j in zip(*np.nonzero(frequency >= min_frequency), strict=True)}
-    edges = sorted(tree | {e for e in often if e[0] < e[1]}, key=lambda e: (-frequency[e], e))
-    return pa.table(
-        {
-            "column_a": pa.array([names[i] for i, _ in edges], pa.string()),
-            "column_b": pa.array([names[j] for _, j in edges], pa.string()),
-            "frequency": pa.array([float(frequency[e]) for e in edges], pa.float64()),
-            "in_full_tree": pa.array([e in tree for e in edges], pa.bool_()),
-            "mutual_info": pa.array(
-                [float(full.pairwise_mutual_info_[e]) for e in edges], pa.float64()
-            ),
-        }
-    )
-
-
-def read_table(data: Any, columns: list[str] | None = None) -> pa.Table:
-    """Any source (or an opened ``Source``) as one in-memory table; ``columns``: only these."""
-    source = data if isinstance(data, Source) else open_source(data)
-    if columns is not None:
-        columns = check_columns(source.names, columns, source.description)
-    batches = [batch for _, batch in _read(source, columns)]
-    if not batches:
-        return pa.table({c: pa.nulls(0) for c in (columns or source.names)})
-    tables = [pa.Table.from_batches([b]) for b in batches]
-    return pa.concat_tables(tables, promote_options="default")

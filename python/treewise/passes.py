@@ -7,6 +7,7 @@ import tempfile
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
+from typing import Any
 
 import pyarrow as pa
 
@@ -14,7 +15,7 @@ from treewise import _core
 from treewise.decode import FAMILY_TYPES, fitting_type, type_name, widen
 from treewise.errors import CategoryCapWarning, ColumnKindWarning, warn
 from treewise.progress import PassProgress
-from treewise.sources import Source, located, open_source
+from treewise.sources import BatchLoop, Source, open_source
 
 __all__ = ["TypeRecorder", "count_pairs", "learn_codebook", "warn_caps", "warn_notes"]
 
@@ -35,11 +36,19 @@ class TypeRecorder:
         for field in batch.schema:
             if pa.types.is_null(field.type):
                 continue
-            column = batch.column(field.name)
+            column: Any = batch.column(field.name)
             levels = column.dictionary if pa.types.is_dictionary(field.type) else None
             name = type_name(field.type, levels)
             seen = self.types.get(field.name)
             self.types[field.name] = name if seen is None else widen(seen, name)
+
+    def select(self, names: list[str]) -> TypeRecorder:
+        """The recorded types of the columns ``names`` only."""
+        if names == self.names:
+            return self
+        kept = TypeRecorder(names)
+        kept.types = {n: t for n, t in self.types.items() if n in names}
+        return kept
 
     def type_names(self, codebook: _core.Codebook | None = None) -> list[str]:
         """Our stored name of each column's type, able to hold every code of ``codebook``.
@@ -104,18 +113,14 @@ def learn_codebook(
     block ends: one pass over the stream, exact counts, memory near one batch.
     """
     builder = _core.CodebookBuilder(names)
-    bar.start("learning codes")
     spool = None if source.replayable else _Spool()
     try:
-        for part in source.parts(names, batch_rows):
-            with located(part.label):
-                for batch in part.batches:
-                    types.see(batch)
-                    builder.observe(batch)
-                    if spool is not None:
-                        spool.write(batch)
-                    bar.rows(batch.num_rows)
-            bar.part_done()
+        with BatchLoop(source, names, batch_rows, bar, "learning codes") as batches:
+            for batch in batches:
+                types.see(batch)
+                builder.observe(batch)
+                if spool is not None:
+                    spool.write(batch)
         codebook, caps, notes = builder.finish(max_categories, n_bins, list((kinds or {}).items()))
         warn_caps(caps, max_categories)
         warn_notes(notes)
@@ -180,11 +185,7 @@ def count_pairs(
     types: TypeRecorder,
 ) -> None:
     """The counting pass: encode each batch with ``codebook`` and add its pair counts."""
-    bar.start("counting pairs")
-    for part in source.parts(names, batch_rows):
-        with located(part.label):
-            for batch in part.batches:
-                types.see(batch)
-                stats.update(codebook, batch)
-                bar.rows(batch.num_rows)
-        bar.part_done()
+    with BatchLoop(source, names, batch_rows, bar, "counting pairs") as batches:
+        for batch in batches:
+            types.see(batch)
+            stats.update(codebook, batch)

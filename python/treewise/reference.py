@@ -116,12 +116,14 @@ def encode_column(
         span = max(counts) - min(counts) + 1  # type: ignore[type-var, operator]
         if _looks_like_identifier(n, distinct) and span <= 2 * distinct:
             raise LeftOut(f"column {name!r} looks like an identifier")
-        x = np.array([np.nan if v is None else float(v) for v in items], dtype=np.float64)
+        x = np.array([np.nan if v is None else v for v in items], dtype=np.float64)
         return _encode_numeric(x, n_bins)
     return _encode_categorical(items, max_categories)
 
 
-def _encode_categorical(items: list[object], max_categories: int) -> tuple[IntArray, list[Category]]:
+def _encode_categorical(
+    items: list[object], max_categories: int
+) -> tuple[IntArray, list[Category]]:
     """Kept values in natural order (the most frequent when capped), then OTHER, then None."""
     counts = Counter(v for v in items if v is not None)
     has_null = None in items
@@ -129,7 +131,7 @@ def _encode_categorical(items: list[object], max_categories: int) -> tuple[IntAr
         kept = sorted(counts)  # type: ignore[type-var]
     else:
         m = max(0, max_categories - 1 - has_null)
-        by_count = sorted(counts.items(), key=lambda vc: (-vc[1], vc[0]))  # type: ignore[index]
+        by_count = sorted(counts.items(), key=lambda vc: (-vc[1], vc[0]))
         kept = sorted(v for v, _ in by_count[:m])  # type: ignore[type-var]
     has_other = len(kept) < len(counts)
     index: dict[object, int] = {v: i for i, v in enumerate(kept)}
@@ -166,8 +168,11 @@ def _encode_numeric(x: FloatArray, n_bins: int) -> tuple[IntArray, list[Category
 
 
 def centre(d: int, edges: list[tuple[int, int]], eligible: list[bool]) -> int:
-    """The default root: in the largest component (ties: the one with the lowest column), the
-    eligible column whose longest path to the others is shortest; ties go to the lower index."""
+    """The default root: the centre of the largest component among the eligible columns.
+
+    In the largest component (ties: the one with the lowest column), the eligible column whose
+    longest path to the others is shortest; ties go to the lower index.
+    """
     neighbours: list[list[int]] = [[] for _ in range(d)]
     for i, j in edges:
         neighbours[i].append(j)

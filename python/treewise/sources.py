@@ -19,6 +19,7 @@ from collections.abc import Callable, Iterable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import TracebackType
 from typing import Any
 
 import pyarrow as pa
@@ -27,15 +28,19 @@ import pyarrow.dataset as pads
 import pyarrow.parquet as pq
 
 from treewise.errors import DataError, SchemaError, TreewiseError, warn
+from treewise.progress import PassProgress
 
 __all__ = [
     "BATCH_ROWS",
+    "BatchLoop",
     "Part",
     "SkippedFileWarning",
     "Source",
     "as_table",
+    "generated_source",
     "iter_batches",
     "open_source",
+    "read_table",
     "select_columns",
 ]
 
@@ -220,23 +225,38 @@ class Part:
     batches: Iterator[pa.RecordBatch]
 
 
+#: Errors of reading a file that become a DataError naming it (missing files stay as they are).
+_READ_ERRORS = (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError, OSError)
+
+
+def _relocated(error: Exception, label: str, rows: str = "") -> Exception | None:
+    """``error`` with the part (file) and rows named in it, or None to re-raise it unchanged."""
+    where = ", ".join(text for text in (label, rows) if text)
+    if isinstance(error, TreewiseError):
+        if where and not (label and label in str(error)):
+            return type(error)(f"{where}: {error}")
+        return None
+    if isinstance(error, _READ_ERRORS):
+        if isinstance(error, (FileNotFoundError, IsADirectoryError, PermissionError)):
+            return None
+        return DataError(f"{where or 'the data'}: cannot read it: {error}")
+    return None
+
+
 @contextmanager
-def located(label: str) -> Iterator[None]:
+def _located(label: str) -> Iterator[None]:
     """Re-raise an error while reading ``label`` with the file (or source) named in it."""
     try:
         yield
-    except TreewiseError as e:
-        if label and label not in str(e):
-            raise type(e)(f"{label}: {e}") from e
-        raise
-    except (pa.ArrowInvalid, pa.ArrowTypeError, pa.ArrowNotImplementedError, OSError) as e:
-        if isinstance(e, (FileNotFoundError, IsADirectoryError, PermissionError)):
+    except Exception as e:
+        relocated = _relocated(e, label)
+        if relocated is None:
             raise
-        raise DataError(f"{label}: cannot read it: {e}") from e
+        raise relocated from e
 
 
 def _file_columns(path: Path, fmt: str) -> list[str]:
-    with located(str(path)):
+    with _located(str(path)):
         if fmt == "parquet":
             return list(pq.ParquetFile(path).schema_arrow.names)
         if fmt == "ipc":
@@ -284,7 +304,7 @@ def _file_batches(
 
 def _file_rows(path: Path, fmt: str) -> int | None:
     if fmt == "parquet":
-        with located(str(path)):
+        with _located(str(path)):
             return int(pq.ParquetFile(path).metadata.num_rows)
     return None
 
@@ -415,3 +435,102 @@ def open_source(data: Any) -> Source:
     if isinstance(data, Iterator):
         return _stream_source(data, None)
     return _memory_source(as_table(data))
+
+
+def generated_source(
+    batches: Iterator[pa.RecordBatch], names: list[str], total_rows: int | None, description: str
+) -> Source:
+    """Batches made as they are read (sampled rows) as a one-part source that is read once."""
+
+    def parts(wanted: list[str], batch_rows: int) -> Iterator[Part]:
+        yield Part("", batches)
+
+    return Source(names, False, parts, 1, total_rows, description)
+
+
+# -- the one loop over a source's batches --------------------------------------------------------
+
+
+class BatchLoop:
+    """One pass over a source's batches, part (file) by part, that knows where it is.
+
+    Iterate over it for the batches of ``names``, at most ``batch_rows`` rows each. With a
+    ``bar``, the pass starts a bar titled ``title`` and counts rows after each batch has been
+    handled and files after each part. Used as a context manager around the loop, any error
+    raised inside the block (reading a batch, or handling it) is re-raised with the file and the
+    batch's rows named in it: ``data/part-3.parquet, rows 262,144-524,287: ...``. Ctrl-C
+    (KeyboardInterrupt) passes through unchanged: Python notices it between batches, the core
+    within a batch.
+
+    Examples
+    --------
+    >>> with BatchLoop(source, names, bar=bar, title="counting pairs") as batches:  # doctest: +SKIP
+    ...     for batch in batches:
+    ...         stats.update(codebook, batch)
+    """
+
+    def __init__(
+        self,
+        source: Source,
+        names: list[str],
+        batch_rows: int = BATCH_ROWS,
+        bar: PassProgress | None = None,
+        title: str = "",
+    ) -> None:
+        self.source = source
+        self.names = names
+        self.batch_rows = batch_rows
+        self.bar = bar
+        self.title = title
+        #: The part being read ("" for in-memory data), the batch's first row in it, its rows.
+        self.label = ""
+        self.first_row = 0
+        self.n_rows = 0
+
+    def __iter__(self) -> Iterator[pa.RecordBatch]:
+        if self.bar is not None and self.title:
+            self.bar.start(self.title)
+        for part in self.source.parts(self.names, self.batch_rows):
+            self.label, self.first_row, self.n_rows = part.label, 0, 0
+            for batch in part.batches:
+                self.first_row += self.n_rows
+                self.n_rows = batch.num_rows
+                yield batch
+                if self.bar is not None:
+                    self.bar.rows(batch.num_rows)
+            if self.bar is not None:
+                self.bar.part_done()
+        # Past the last batch, an error belongs to no file.
+        self.label, self.first_row, self.n_rows = "", 0, 0
+
+    def rows(self) -> str:
+        """The current batch's rows within its part, as text ("" before the first batch)."""
+        if self.n_rows == 0 or (not self.label and self.first_row == 0):
+            return ""  # the first batch of in-memory data: its rows are the data's
+        return f"rows {self.first_row:,}-{self.first_row + self.n_rows - 1:,}"
+
+    def __enter__(self) -> BatchLoop:
+        return self
+
+    def __exit__(
+        self,
+        kind: type[BaseException] | None,
+        value: BaseException | None,
+        trace: TracebackType | None,
+    ) -> None:
+        if isinstance(value, Exception):
+            relocated = _relocated(value, self.label, self.rows())
+            if relocated is not None:
+                raise relocated from value
+
+
+def read_table(data: Any, columns: list[str] | None = None) -> pa.Table:
+    """Any source (or an opened ``Source``) as one in-memory table; ``columns``: only these."""
+    source = data if isinstance(data, Source) else open_source(data)
+    if columns is not None:
+        columns = check_columns(source.names, columns, source.description)
+    with BatchLoop(source, columns or list(source.names)) as batches:
+        tables = [pa.Table.from_batches([batch]) for batch in batches]
+    if not tables:
+        return pa.table({c: pa.nulls(0) for c in (columns or source.names)})
+    return pa.concat_tables(tables, promote_options="default")

@@ -6,19 +6,68 @@ import itertools
 import os
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
-from typing import TYPE_CHECKING, Any
+from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from treewise.errors import DataError, SchemaError
+from treewise import _core
+from treewise.errors import DataError, SchemaError, UnseenCategoryWarning, warn
 from treewise.files import atomic_path
+from treewise.progress import PassProgress, wants_progress
+from treewise.sources import BATCH_ROWS, BatchLoop, check_columns, open_source
 
-if TYPE_CHECKING:
-    from treewise.estimator import Scored
+__all__ = ["Scored", "TopRows", "atomic_parquet", "score_batches", "write_scores"]
 
-__all__ = ["TopRows", "atomic_parquet", "write_scores"]
+
+@dataclass
+class Scored:
+    """One scored batch: the batch read, ln p per row, and per-column surprisal if asked."""
+
+    batch: pa.RecordBatch
+    total: npt.NDArray[np.float64]
+    surprisal: list[npt.NDArray[np.float64]] | None
+
+
+def score_batches(
+    model: _core.TreeModel,
+    names: list[str],
+    alpha: float,
+    data: Any,
+    surprisal: bool,
+    keys: Sequence[str] = (),
+    batch_rows: int = BATCH_ROWS,
+    progress: bool | None = False,
+) -> Iterator[Scored]:
+    """Score ``data`` batch by batch (any source), then warn once about unseen values.
+
+    ``names`` are the model's columns; ``keys`` are further columns of the data read along
+    (into ``Scored.batch``); ``alpha`` is named in the warning.
+    """
+    source = open_source(data)
+    check_columns(source.names, names, source.description)
+    extra = [k for k in keys if k not in names]
+    wanted = names + check_columns(source.names, extra, source.description) if extra else names
+    unseen = np.zeros(len(names), dtype=np.int64)
+    with (
+        PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar,
+        BatchLoop(source, wanted, batch_rows, bar, "scoring") as batches,
+    ):
+        for batch in batches:
+            total, columns, missing = model.score(batch.select(names), surprisal)
+            unseen += missing
+            per_column = None if columns is None else [np.frombuffer(c, "<f8") for c in columns]
+            yield Scored(batch, np.frombuffer(total, "<f8"), per_column)
+    if unseen.any():
+        report = ", ".join(f"{names[c]!r}: {k}" for c, k in enumerate(unseen) if k)
+        warn(
+            f"values never seen in fitting (scored with the smoothing mass, alpha={alpha}): "
+            f"{report}",
+            UnseenCategoryWarning,
+        )
 
 
 @contextmanager

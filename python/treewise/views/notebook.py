@@ -10,7 +10,7 @@ from __future__ import annotations
 import html
 from typing import TYPE_CHECKING
 
-from treewise.plot import INK, MUTED, figure_svg, plot_tree
+from treewise.views.plot import INK, MUTED, figure_svg, plot_tree
 
 if TYPE_CHECKING:
     from treewise.estimator import DependencyTree
@@ -27,7 +27,7 @@ def model_html(model: DependencyTree) -> str:
     """A compact HTML summary of ``model``: one line of facts, the tree, the strongest edges.
 
     An unfitted model shows its ``repr``. Wide models draw only their strongest
-    ``NOTEBOOK_EDGES`` edges; ``treewise.plot.plot_tree`` draws any part of the tree.
+    ``NOTEBOOK_EDGES`` edges; ``treewise.views.plot.plot_tree`` draws any part of the tree.
     """
     if getattr(model, "_model", None) is None:
         return f"<pre>{html.escape(repr(model))}</pre>"

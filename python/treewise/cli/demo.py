@@ -1,17 +1,16 @@
 """The demo: an invented shop's sessions, fitted, checked, scored, sampled and reported on.
 
-Run it as ``treewise demo [--rows N] [--dir PATH] [--seed S]`` or ``python -m treewise.demo``
-(the same command). The data comes from :func:`treewise.datasets.shop_sessions`, which draws
-every session from a tree we wrote down, so the demo can say how many of the true edges the fit
-found and how many planted anomalies the scores catch.
+Run it as ``treewise demo [--rows N] [--dir PATH] [--seed S]`` or ``make demo`` (the same
+command). The data comes from :func:`treewise.datasets.shop_sessions`, which draws every session
+from a tree we wrote down, so the demo can say how many of the true edges the fit found and how
+many planted anomalies the scores catch.
 """
 
 from __future__ import annotations
 
 import math
-import sys
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -24,17 +23,16 @@ from rich.table import Table
 from rich.text import Text
 
 import treewise
-from treewise.cli import (
+from treewise.datasets import hidden_edges, model_columns, shop_sessions
+from treewise.views.terminal import (
     SAMPLE_CAUTION,
     SCORE_CAUTION,
     explain_rows,
     surprising_table,
     tree_view,
 )
-from treewise.cli import main as cli_main
-from treewise.datasets import hidden_edges, model_columns, shop_sessions
 
-__all__ = ["main", "run"]
+__all__ = ["run"]
 
 #: How many Parquet files the sessions are split into.
 N_FILES = 8
@@ -226,7 +224,7 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
         console.print(SAMPLE_CAUTION)
 
     with _step(console, 7, "Write an HTML report"):
-        from treewise.report import write_report  # matplotlib loads only here
+        from treewise.views.report import write_report  # matplotlib loads only here
 
         write_report(
             model,
@@ -256,12 +254,3 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     )
     console.print(f"  treewise sample {model_path} -n 10000 -o more-sessions.parquet --seed 1")
     console.print(f"  treewise report {model_path} -o shop-report.html")
-
-
-def main(argv: Sequence[str] | None = None) -> int:
-    """Run ``treewise demo`` with ``argv`` (default ``sys.argv[1:]``); returns the exit status."""
-    return cli_main(["demo", *(sys.argv[1:] if argv is None else argv)])
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())

@@ -1,0 +1,187 @@
+"""The terminal views: the tree, its strongest edges and surprising rows as rich renderables.
+
+The ``treewise`` commands and the demo print these; ``model_json`` is the model's structure as
+plain JSON types.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pyarrow as pa
+from rich.table import Table
+from rich.text import Text
+from rich.tree import Tree
+
+if TYPE_CHECKING:
+    from treewise.estimator import DependencyTree
+
+__all__ = [
+    "SAMPLE_CAUTION",
+    "SCORE_CAUTION",
+    "explain_rows",
+    "model_json",
+    "strongest_table",
+    "surprising_table",
+    "tree_view",
+]
+
+#: Printed once wherever scores are shown.
+SCORE_CAUTION = (
+    "A score is evidence, not a verdict: a surprising row is worth a look, but no decision "
+    "about a person should rest on a score alone."
+)
+#: Printed once wherever synthetic rows are written.
+SAMPLE_CAUTION = (
+    "Rows sampled from a model fitted on personal data can reveal rare records; local privacy "
+    "law and your organisation's policy come first."
+)
+
+
+def tree_view(model: DependencyTree, name: str) -> Tree:
+    """The fitted tree as a rich Tree, indented from the root.
+
+    Each node shows the column's name and cardinality (its number of codes, counting the "other"
+    and null codes) and, below the root, its mutual information with its parent in nats.
+    Children are listed strongest first, so the main chains read top to bottom.
+
+    Parameters
+    ----------
+    model : DependencyTree
+        A fitted model.
+    name : str
+        What to call the model in the top line (its file name).
+
+    Returns
+    -------
+    rich.tree.Tree
+        Ready for ``Console.print``.
+    """
+    names = [str(name) for name in model.feature_names_in_]
+    children: dict[int, list[int]] = {i: [] for i in range(len(names))}
+    roots: list[int] = []
+    for child, parent in enumerate(model.parent_):
+        if parent < 0:
+            roots.append(child)
+        else:
+            children[int(parent)].append(child)
+
+    def label(node: int, is_root: bool) -> Text:
+        cardinality = len(model.categories_[node])
+        link = "root" if is_root else f"MI {model.mutual_info_[node]:.4f}"
+        return Text.assemble((names[node], "bold"), f"  {cardinality} categories, {link}")
+
+    top = Tree(Text(f"{name}: {len(names)} columns, {model.n_rows_:,} rows (MI in nats)"))
+    stack: list[tuple[int, Tree]] = [(root, top) for root in reversed(roots)]
+    while stack:
+        node, under = stack.pop()
+        branch = under.add(label(node, is_root=model.parent_[node] < 0))
+        ordered = sorted(children[node], key=lambda c: (-model.mutual_info_[c], c))
+        stack.extend((c, branch) for c in reversed(ordered))
+    return top
+
+
+def strongest_table(model: DependencyTree, k: int = 5) -> Table:
+    """The ``k`` edges with the highest mutual information, strongest first."""
+    edges = model.edges()
+    mutual_info = np.asarray(edges["mutual_info"])
+    order = np.argsort(-mutual_info, kind="stable")[:k]
+    table = Table(title=f"Strongest dependencies (top {len(order)} of {edges.num_rows} edges)")
+    table.add_column("parent")
+    table.add_column("child")
+    table.add_column("MI (nats)", justify="right")
+    table.add_column("G", justify="right")
+    parents, children = edges["parent"].to_pylist(), edges["child"].to_pylist()
+    g_statistic = edges["g_statistic"].to_pylist()
+    for e in order:
+        table.add_row(parents[e], children[e], f"{mutual_info[e]:.4f}", f"{g_statistic[e]:,.0f}")
+    return table
+
+
+def explain_rows(top: pa.Table, names: Sequence[str], k: int = 3) -> list[list[tuple[str, float]]]:
+    """For each row of ``top``, the ``k`` columns with the highest surprisal, highest first.
+
+    Parameters
+    ----------
+    top : pyarrow.Table
+        Rows as returned by ``DependencyTree.score_to_parquet``: one ``surprisal_<column>``
+        (in nats) per modelled column.
+    names : sequence of str
+        The modelled columns.
+    k : int, default 3
+        How many columns per row.
+
+    Returns
+    -------
+    list of list of (str, float)
+        Per row, ``(column, surprisal)`` pairs; ties keep the column order.
+    """
+    if top.num_rows == 0 or not names:
+        return [[] for _ in range(top.num_rows)]
+    matrix = np.column_stack(
+        [np.asarray(top[f"surprisal_{name}"], dtype=np.float64) for name in names]
+    )
+    order = np.argsort(-matrix, axis=1, kind="stable")[:, :k]
+    return [[(names[c], float(matrix[r, c])) for c in order[r]] for r in range(top.num_rows)]
+
+
+def surprising_table(top: pa.Table, names: Sequence[str], keys: Sequence[str], title: str) -> Table:
+    """The most surprising rows with the three columns that made each one so.
+
+    Parameters
+    ----------
+    top : pyarrow.Table
+        Rows as returned by ``DependencyTree.score_to_parquet``, most surprising first.
+    names : sequence of str
+        The modelled columns (surprisal columns of ``top``).
+    keys : sequence of str
+        Key columns of ``top`` to show beside the row number.
+    title : str
+        The table's title.
+
+    Returns
+    -------
+    rich.table.Table
+        One line per row: row number, keys, ln p(row) and the top three columns with their
+        surprisal -ln P(value | parent value) in nats.
+    """
+    table = Table(title=title)
+    table.add_column("row", justify="right")
+    for key in keys:
+        table.add_column(key)
+    table.add_column("ln p", justify="right")
+    table.add_column("most surprising columns (surprisal in nats)")
+    key_values = {key: top[key].to_pylist() for key in keys}
+    scores = top["score"].to_pylist()
+    rows = top["row"].to_pylist()
+    for r, reasons in enumerate(explain_rows(top, names)):
+        why = "\n".join(f"{name} {value:.1f}" for name, value in reasons)
+        cells = [str(key_values[key][r]) for key in keys]
+        table.add_row(f"{rows[r]:,}", *cells, f"{scores[r]:.2f}", why)
+    return table
+
+
+def model_json(model: DependencyTree) -> dict[str, Any]:
+    """The model's structure as plain JSON types (what ``treewise show --json`` prints)."""
+    names = [str(name) for name in model.feature_names_in_]
+    edges = model.edges().to_pylist()
+    return {
+        "columns": names,
+        "cardinalities": [len(categories) for categories in model.categories_],
+        "parent": [names[int(p)] if p >= 0 else None for p in model.parent_],
+        "n_rows": int(model.n_rows_),
+        "alpha": float(model.alpha),
+        "edges": [
+            {
+                "parent": e["parent"],
+                "child": e["child"],
+                "mutual_info": e["mutual_info"],
+                "g_statistic": e["g_statistic"],
+                "dof": e["dof"],
+                "p_value": e["p_value"],
+            }
+            for e in edges
+        ],
+    }
