@@ -24,6 +24,7 @@ from treewise.checks import (
     check_prune,
     seed_of,
 )
+from treewise.counts import ExactCounts
 from treewise.decode import ColumnValues, decode_column, type_from_name
 from treewise.errors import DataError, NotFittedError, SchemaError
 from treewise.files import read_model_file, write_atomically
@@ -49,7 +50,7 @@ __all__ = ["DependencyTree"]
 SAMPLE_BATCH_ROWS = 262_144
 
 
-class DependencyTree(Params):
+class DependencyTree(ExactCounts, Params):
     """A maximum-likelihood tree-structured distribution over categorical columns.
 
     Fitting counts every pair of columns exactly, weighs each pair by its mutual information and
@@ -384,59 +385,6 @@ class DependencyTree(Params):
             return int(column)
         raise KeyError(f"no column {column!r}: give a name or an index below {len(names)}")
 
-    def edges(self) -> pa.Table:
-        """The tree's edges, parents before children.
-
-        Returns
-        -------
-        pyarrow.Table
-            Columns ``parent``, ``child`` (names), ``mutual_info`` (nats), ``g_statistic``
-            (2·N·MI), ``dof`` ((r_parent−1)(r_child−1) over the codes that occur) and ``p_value``
-            (the G-test of independence against chi-square with ``dof``).
-        """
-        edges = self._fitted().edges()
-        names = list(self.feature_names_in_)
-        return pa.table(
-            {
-                "parent": pa.array([names[e[0]] for e in edges], pa.string()),
-                "child": pa.array([names[e[1]] for e in edges], pa.string()),
-                "mutual_info": pa.array([e[2] for e in edges], pa.float64()),
-                "g_statistic": pa.array([e[3] for e in edges], pa.float64()),
-                "dof": pa.array([e[4] for e in edges], pa.int64()),
-                "p_value": pa.array([e[5] for e in edges], pa.float64()),
-            }
-        )
-
-    def marginal_counts(self, column: str | int) -> npt.NDArray[np.uint64]:
-        """The exact count of each code of ``column``, aligned with ``categories_``."""
-        i = self._index(column)
-        counts = _u64(self._fitted().counts(i)).reshape(-1, len(self.categories_[i]))
-        total: npt.NDArray[np.uint64] = counts.sum(axis=0, dtype=np.uint64)
-        return total
-
-    def joint_counts(self, first: str | int, second: str | int) -> npt.NDArray[np.uint64]:
-        """The exact contingency table of two columns, rows by ``first``'s codes.
-
-        Every pair is available right after ``fit``; a loaded model keeps only its edges.
-        """
-        i, j = self._index(first), self._index(second)
-        if i == j:
-            return np.diag(self.marginal_counts(i))
-        shape = (len(self.categories_[i]), len(self.categories_[j]))
-        if self.parent_[j] == i:
-            return _u64(self._fitted().counts(j)).reshape(shape)
-        if self.parent_[i] == j:
-            return _u64(self._fitted().counts(i)).reshape(shape[::-1]).T.copy()
-        if self._stats is None:
-            names = self.feature_names_in_
-            raise NotFittedError(
-                f"{names[i]!r} and {names[j]!r} are not joined by an edge, and a loaded model "
-                "keeps only the tables of its edges; refit to see every pair"
-            )
-        a, b = min(i, j), max(i, j)
-        table = _u64(self._stats.table(a, b)).reshape(len(self.categories_[a]), -1)
-        return (table if i < j else table.T).copy()
-
     # -- the model as a distribution -------------------------------------------------------------
 
     def _scored(
@@ -738,7 +686,3 @@ def _as_codebook(codebook: object) -> _core.Codebook | None:
     raise TypeError(
         f"codebook= takes a treewise.Codebook or a fitted DependencyTree, got {codebook!r}"
     )
-
-
-def _u64(data: bytes) -> npt.NDArray[np.uint64]:
-    return np.frombuffer(data, dtype="<u8").astype(np.uint64)

@@ -22,6 +22,7 @@ __all__ = [
     "SAMPLE_CAUTION",
     "SCORE_CAUTION",
     "explain_rows",
+    "fidelity_table",
     "model_json",
     "strongest_table",
     "surprising_table",
@@ -160,6 +161,35 @@ def surprising_table(top: pa.Table, names: Sequence[str], keys: Sequence[str], t
         why = "\n".join(f"{name} {value:.1f}" for name, value in reasons)
         cells = [str(key_values[key][r]) for key in keys]
         table.add_row(f"{rows[r]:,}", *cells, f"{scores[r]:.2f}", why)
+    return table
+
+
+def fidelity_table(columns: pa.Table, title: str) -> Table:
+    """Each synthetic column against real values, next to the bootstrap noise floor.
+
+    ``columns`` is what ``treewise.fidelity.compare_columns`` returns first.
+    """
+    table = Table(title=title)
+    for head, justify in [
+        ("column", "left"),
+        ("kind", "left"),
+        ("measure", "left"),
+        ("synthetic vs real", "right"),
+        ("noise floor", "right"),
+        ("excess", "right"),
+        ("nulls real / synthetic", "right"),
+    ]:
+        table.add_column(head, justify=justify)  # type: ignore[arg-type]
+    for r in columns.to_pylist():
+        table.add_row(
+            r["column"],
+            r["kind"],
+            r["measure"],
+            f"{r['distance']:.3f}",
+            f"{r['noise_floor']:.3f}",
+            f"{r['excess']:+.3f}",
+            f"{r['null_share_real']:.3f} / {r['null_share_synthetic']:.3f}",
+        )
     return table
 
 
