@@ -6,8 +6,26 @@ import itertools
 from typing import Any
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
+import pytest
 import treewise
+
+
+def pytest_addoption(parser: pytest.Parser) -> None:
+    parser.addoption(
+        "--run-slow", action="store_true", default=False, help="also run the tests marked slow"
+    )
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    """Tests marked ``slow`` (declared in pyproject.toml) are skipped unless --run-slow is given."""
+    if config.getoption("--run-slow"):
+        return
+    skip = pytest.mark.skip(reason="slow: run with --run-slow")
+    for item in items:
+        if "slow" in item.keywords:
+            item.add_marker(skip)
 
 
 def reference_columns(table: pa.Table) -> dict[str, np.ndarray[Any, Any]]:
@@ -53,3 +71,17 @@ def assert_same_model(got: treewise.DependencyTree, want: treewise.DependencyTre
     for key in w:
         assert g[key] == w[key], key
     assert got.codebook_ == want.codebook_
+
+
+def raw_labels(column: pa.ChunkedArray | pa.Array) -> pd.Series:
+    """A column's values as plain Python objects, with null as a label of its own ("<null>"), the
+    way the model counts it; taken straight from the data, not from the model's codes."""
+    values = column.to_pylist()
+    return pd.Series(["<null>" if v is None else v for v in values], dtype=object)
+
+
+def raw_crosstab(table: pa.Table, a: str, b: str) -> np.ndarray[Any, Any]:
+    """The contingency table of columns ``a`` and ``b`` counted from the raw rows with
+    pandas.crosstab (levels that occur only; rows and columns in sorted label order)."""
+    x, y = raw_labels(table[a]), raw_labels(table[b])
+    return pd.crosstab(x.astype(str), y.astype(str)).to_numpy().astype(np.int64)

@@ -178,6 +178,11 @@ def test_fit_prunes_to_a_forest(tmp_path: Path, data: dict[str, Path | str]) -> 
     expected.fit(data["file"])
     assert list(pruned.parent_) == list(expected.parent_)
     assert (full.parent_ == -1).sum() == 1
+    # A forest came out: more than one root, and still at least one edge.
+    assert 1 < (pruned.parent_ == -1).sum() < len(pruned.parent_)
+    # device - browser_family is an edge of the hidden tree and far too strong to prune.
+    kept = {frozenset((r["parent"], r["child"])) for r in pruned.edges().to_pylist()}
+    assert frozenset(("device", "browser_family")) in kept
     bad = run("fit", data["file"], "-o", tmp_path / "x.treewise", "--prune", "1.5")
     assert bad.returncode == 2 and "--prune" in bad.stderr
 

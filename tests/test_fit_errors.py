@@ -22,6 +22,7 @@ from treewise import (
     DataError,
     DependencyTree,
     NotFittedError,
+    ResourceLimitError,
     SchemaError,
     TreewiseError,
 )
@@ -470,3 +471,20 @@ def test_fuzz_fit_succeeds_or_raises_a_treewise_error(seed: int) -> None:
         assert int(counts.sum()) == table.num_rows
         assert len(counts) == len(model.categories_[i])
         assert len(counts) <= max(max_categories, n_bins + 1)
+
+
+# -- resource limits -----------------------------------------------------------------------------
+
+
+def test_pair_tables_beyond_the_cell_limit_are_a_resource_limit_error() -> None:
+    # docs/errors.md: ResourceLimitError when "the pair tables would pass 2**33 cells". Three
+    # columns of 65,534 distinct values (every one kept under max_categories=65,535) need
+    # 3 * 65,534**2 (about 1.3e10) cells; the codebook pass that finds this out stays small.
+    n = 65_534
+    assert 3 * n * n > 2**33
+    table = pa.table({name: np.arange(n, dtype=np.int32) for name in ("a", "b", "c")})
+    with pytest.raises(ResourceLimitError, match="cells") as caught:
+        DependencyTree(max_categories=65_535).fit(table)
+    # The message says what to do; the class is both a TreewiseError and a MemoryError.
+    assert "max_categories" in str(caught.value) and "fewer columns" in str(caught.value)
+    assert isinstance(caught.value, TreewiseError) and isinstance(caught.value, MemoryError)

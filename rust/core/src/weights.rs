@@ -82,8 +82,11 @@ pub fn chi2_sf(x: f64, dof: u64) -> f64 {
     gamma_q(dof as f64 / 2.0, x / 2.0)
 }
 
-/// ln Γ(x) for x > 0, by the classic nine-term rational approximation with g = 7 (the widely
-/// published coefficients, written from memory and checked against scipy in the tests).
+/// ln Γ(x) for x > 0, by the Lanczos approximation (C. Lanczos, "A precision approximation of
+/// the gamma function", J. SIAM Numer. Anal. Ser. B 1 (1964) 86-96) with g = 7 and nine terms.
+/// The coefficients are P. Godfrey's set (2001) as published in the GNU Scientific Library,
+/// specfunc/gamma.c, `lanczos_7_c` (each constant below is that value rounded to f64); not the
+/// Numerical Recipes set, which has g = 5. Checked against scipy in the tests.
 pub fn ln_gamma(x: f64) -> f64 {
     const G: f64 = 7.0;
     const C: [f64; 9] = [
