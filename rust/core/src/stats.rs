@@ -68,12 +68,23 @@ impl PairStats {
         }
         let total = offsets.last().copied().unwrap_or(0);
         let marginals = cards.iter().map(|&r| vec![0; r]).collect();
+        // A failed allocation must be an error, not an abort of the whole process.
+        let mut cells = Vec::new();
+        cells.try_reserve_exact(total).map_err(|_| {
+            Error::ResourceLimit(format!(
+                "the pair tables need {total} cells ({} GiB), more memory than can be allocated \
+                 here; lower max_categories, fit fewer columns, or model the widest columns as \
+                 numeric (kinds={{'column': 'numeric'}}) or leave them out",
+                (total * 8) >> 30
+            ))
+        })?;
+        cells.resize(total, 0);
         Ok(PairStats {
             n_rows: 0,
             cards,
             marginals,
             offsets,
-            cells: vec![0; total],
+            cells,
         })
     }
 
