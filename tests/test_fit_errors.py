@@ -19,6 +19,7 @@ import pytest
 from treewise import (
     Bin,
     CategoryCapWarning,
+    ColumnKindWarning,
     DataError,
     DependencyTree,
     NotFittedError,
@@ -89,16 +90,21 @@ def test_empty_columns_argument_is_a_data_error() -> None:
         ),
     ],
 )
-def test_all_null_column_is_a_data_error_naming_it(column: object) -> None:
+def test_all_null_column_is_left_out_with_a_warning_naming_it(column: object) -> None:
     table = GOOD.append_column("empty_col", column)
-    with pytest.raises(DataError, match=r"'empty_col'.*only nulls"):
-        DependencyTree().fit(table)
+    with pytest.warns(ColumnKindWarning, match=r"'empty_col'.*only nulls.*left out"):
+        model = DependencyTree().fit(table)
+    assert list(model.feature_names_in_) == ["a", "b"]
+    # With nothing else to model, it is an error that says why.
+    with pytest.raises(DataError, match=r"no column is left to model.*'empty_col'.*only nulls"):
+        DependencyTree(columns=["empty_col"]).fit(table)
 
 
-def test_pandas_all_none_column_is_a_data_error_naming_it() -> None:
+def test_pandas_all_none_column_is_left_out_naming_it() -> None:
     frame = pd.DataFrame({"a": [1, 2, 3], "nothing": [None, None, None]})
-    with pytest.raises(DataError, match="'nothing'"):
-        DependencyTree().fit(frame)
+    with pytest.warns(ColumnKindWarning, match="'nothing'"):
+        model = DependencyTree().fit(frame)
+    assert list(model.feature_names_in_) == ["a"]
 
 
 def test_all_null_column_left_out_with_columns_fits() -> None:
@@ -111,42 +117,50 @@ def test_all_null_column_left_out_with_columns_fits() -> None:
     "column",
     [
         pytest.param(pa.array([None] * 4, pa.float64()), id="float64_nulls"),
-        pytest.param(pa.array([float("nan")] * 4, pa.float32()), id="float32_nan"),
     ],
 )
-def test_all_null_float_column_is_a_data_error_naming_it(column: object) -> None:
+def test_all_null_float_column_is_left_out_naming_it(column: object) -> None:
     table = GOOD.append_column("empty_col", column)
-    with pytest.raises(DataError, match=r"'empty_col'.*only nulls"):
-        DependencyTree().fit(table)
+    with pytest.warns(ColumnKindWarning, match=r"'empty_col'.*only nulls"):
+        model = DependencyTree().fit(table)
+    assert "empty_col" not in model.feature_names_in_
+
+
+def test_a_column_of_nan_values_is_constant_not_null() -> None:
+    # In Arrow, NaN is a value (a null is marked in the validity bitmap): docs/column-kinds.md.
+    table = GOOD.append_column("nan_col", pa.array([float("nan")] * 4, pa.float32()))
+    with pytest.warns(ColumnKindWarning, match=r"'nan_col' holds a single value"):
+        model = DependencyTree().fit(table)
+    assert model.kinds_["nan_col"] == "constant"
+    assert np.isnan(model.categories_[2][0])
 
 
 @pytest.mark.parametrize("bad", [float("inf"), float("-inf")], ids=["inf", "-inf"])
 @pytest.mark.parametrize("float_type", [pa.float32(), pa.float64()], ids=str)
-def test_infinite_float_is_a_data_error_naming_the_column(
-    bad: float, float_type: pa.DataType
-) -> None:
+def test_an_infinity_is_a_value_of_its_own(bad: float, float_type: pa.DataType) -> None:
     column = pa.array([1.0, None, bad, 2.0], float_type)
-    with pytest.raises(DataError, match=r"'inf_col'") as info:
-        DependencyTree().fit(GOOD.append_column("inf_col", column))
-    assert repr(bad) in str(info.value)
+    model = DependencyTree().fit(GOOD.append_column("inf_col", column))
+    assert model.categories_[2] == sorted([1.0, 2.0, bad]) + [None]
+    sampled = model.sample(400, random_state=0).column("inf_col").to_pylist()
+    assert bad in sampled
 
 
-def test_infinity_error_in_a_dictionary_column_gives_the_row() -> None:
+def test_an_infinity_in_a_dictionary_column_is_a_value() -> None:
     keys = pa.array([1, 1, 1, 0], pa.int8())
     column = pa.DictionaryArray.from_arrays(keys, pa.array([float("inf"), 1.0]))
-    with pytest.raises(DataError, match="'f'") as info:
-        DependencyTree().fit(pa.table({"f": column}))
-    assert "row 3" in str(info.value)
+    model = DependencyTree().fit(pa.table({"f": column, "g": [1, 2, 1, 2]}))
+    assert model.categories_[0] == [1.0, float("inf")]
+    assert model.marginal_counts("f").tolist() == [3, 1]
 
 
-def test_unused_infinite_dictionary_entry_is_not_an_error() -> None:
+def test_unused_dictionary_entries_are_not_values() -> None:
     dictionary = pa.array([1.0, float("inf"), 2.0, float("nan")], pa.float64())
     keys = pa.array([0, 2, 0, 3], pa.int8())
     table = GOOD.append_column("f", pa.DictionaryArray.from_arrays(keys, dictionary))
     model = DependencyTree(columns=["f"]).fit(table)
-    # The bins span only the used values, 1.0 to 2.0; the NaN entry is the null code.
-    assert model.categories_[0] == [Bin(1.0, 2.0, closed=True), None]
-    assert model.marginal_counts("f").tolist() == [3, 1]
+    # Only the used values count: 1.0, 2.0 and NaN (a value here: the key is not null).
+    assert model.categories_[0][:2] == [1.0, 2.0] and np.isnan(model.categories_[0][2])
+    assert model.marginal_counts("f").tolist() == [2, 1, 1]
 
 
 # -- unsupported types ---------------------------------------------------------------------------
@@ -157,8 +171,6 @@ UNSUPPORTED = [
     ("binary", pa.array([b"a", b"b", b"", None], pa.binary())),
     ("largebinary", pa.array([b"a", b"b", b"", None], pa.large_binary())),
     ("decimal128", pa.array([decimal.Decimal("1.5")] * 3 + [None], pa.decimal128(4, 1))),
-    ("timestamp", pa.array([datetime.datetime(2020, 1, d) for d in (1, 2, 3, 4)])),
-    ("date32", pa.array([datetime.date(2020, 1, d) for d in (1, 2, 3, 4)], pa.date32())),
     ("float16", pa.array(np.array([1, 2, 3, 4], np.float16))),
     ("float16", pa.array(np.array([1, 2, 3, 4], np.float16)).dictionary_encode()),
 ]
@@ -189,9 +201,23 @@ def test_unsupported_type_from_pandas_and_polars() -> None:
     frame = pd.DataFrame({"a": [1, 2], "lists": [[1], [2, 3]]})
     with pytest.raises(DataError, match="'lists'"):
         DependencyTree().fit(frame)
-    polars_frame = pl.DataFrame({"a": [1, 2], "when": [datetime.date(2020, 1, 1)] * 2})
-    with pytest.raises(DataError, match=r"'when'.*Date32"):
+    polars_frame = pl.DataFrame({"a": [1, 2], "lists": [[1], [2, 3]]})
+    with pytest.raises(DataError, match=r"'lists'.*List"):
         DependencyTree().fit(polars_frame)
+
+
+def test_dates_and_timestamps_are_supported() -> None:
+    frame = pl.DataFrame(
+        {
+            "a": [1, 2, 1, 2],
+            "when": [datetime.date(2020, 1, d) for d in (1, 2, 3, 4)],
+            "at": [datetime.datetime(2020, 1, 1, h) for h in (1, 2, 3, 4)],
+        }
+    )
+    model = DependencyTree().fit(frame)
+    sampled = model.sample(10, random_state=0)
+    assert sampled.schema.field("when").type == pa.date32()
+    assert pa.types.is_timestamp(sampled.schema.field("at").type)
 
 
 # -- pandas specifics ----------------------------------------------------------------------------
@@ -298,7 +324,9 @@ def test_bad_parameters(params: dict[str, object], error: type[Exception], word:
 
 def test_parameter_bounds_are_accepted() -> None:
     DependencyTree(max_categories=65_535, n_bins=65_534).fit(GOOD)
-    DependencyTree(max_categories=np.int64(2), n_bins=np.int32(1)).fit(GOOD)  # type: ignore[arg-type]
+    # One bin makes the number column constant, which is warned about.
+    with pytest.warns(ColumnKindWarning, match="'a' holds a single value"):
+        DependencyTree(max_categories=np.int64(2), n_bins=np.int32(1)).fit(GOOD)  # type: ignore[arg-type]
     # Parameters are checked before the data is read: even unusable data gives the parameter error.
     with pytest.raises(ValueError, match="n_bins"):
         DependencyTree(n_bins=0).fit(pa.table({}))
@@ -457,11 +485,15 @@ def test_fuzz_fit_succeeds_or_raises_a_treewise_error(seed: int) -> None:
     model = DependencyTree(max_categories=max_categories, n_bins=n_bins)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", CategoryCapWarning)
+        warnings.simplefilter("ignore", ColumnKindWarning)
         try:
             model.fit(table)
         except TreewiseError:
             return  # a PanicException (a BaseException) or any other class fails the test
-    d = table.num_columns
+    # Columns of nulls only (a null key or a null dictionary value alike) are left out; every
+    # other column is modelled.
+    nulls_only = [set(table.column(i).to_pylist()) == {None} for i in range(table.num_columns)]
+    d = nulls_only.count(False)
     assert model.n_rows_ == table.num_rows
     assert model.n_features_in_ == d
     assert sorted(model.parent_.tolist()).count(-1) == 1
@@ -470,7 +502,8 @@ def test_fuzz_fit_succeeds_or_raises_a_treewise_error(seed: int) -> None:
         counts = model.marginal_counts(i)
         assert int(counts.sum()) == table.num_rows
         assert len(counts) == len(model.categories_[i])
-        assert len(counts) <= max(max_categories, n_bins + 1)
+        # Numeric: the bins, one code per non-finite value (three at most) and null.
+        assert len(counts) <= max(max_categories, n_bins + 4)
 
 
 # -- resource limits -----------------------------------------------------------------------------
@@ -483,8 +516,9 @@ def test_pair_tables_beyond_the_cell_limit_are_a_resource_limit_error() -> None:
     n = 65_534
     assert 3 * n * n > 2**33
     table = pa.table({name: np.arange(n, dtype=np.int32) for name in ("a", "b", "c")})
+    wide = dict.fromkeys(("a", "b", "c"), "categorical")
     with pytest.raises(ResourceLimitError, match="cells") as caught:
-        DependencyTree(max_categories=65_535).fit(table)
+        DependencyTree(max_categories=65_535, kinds=wide).fit(table)
     # The message says what to do; the class is both a TreewiseError and a MemoryError.
     assert "max_categories" in str(caught.value) and "fewer columns" in str(caught.value)
     assert isinstance(caught.value, TreewiseError) and isinstance(caught.value, MemoryError)

@@ -61,7 +61,7 @@ def small_table(n: int = 600, seed: int = 0) -> pa.Table:
 
 
 #: A value of "d" that was seen in fitting but shares the "other" code.
-CAPPED_D = "k5"
+CAPPED_D = ["k3", "k4", "k5"]
 
 
 def fit_small(alpha: float = 0.5) -> treewise.DependencyTree:
@@ -72,15 +72,15 @@ def fit_small(alpha: float = 0.5) -> treewise.DependencyTree:
 def every_row(
     model: treewise.DependencyTree, schema: pa.Schema, stand_in: dict[str, Any]
 ) -> pa.Table:
-    """Every combination of codes, one row each: OTHER as ``stand_in[column]``, None as null,
-    a bin as its lower bound."""
+    """Every combination of codes, one row each: OTHER as each value of ``stand_in[column]``,
+    None as null, a bin as its lower bound."""
     names = [str(x) for x in model.feature_names_in_]
     levels = []
     for name, cats in zip(names, model.categories_, strict=True):
         values = []
         for v in cats:
             if v is OTHER:
-                values.append(stand_in[name])
+                values.extend(stand_in[name])
             elif isinstance(v, Bin):
                 values.append(v.low)
             else:
@@ -130,8 +130,9 @@ def test_probabilities_of_every_row_sum_to_one(alpha: float) -> None:
     model = fit_small(alpha)
     assert [len(c) for c in model.categories_] == [3, 2, 3, 4]
     assert model.categories_[2][-1] is None and model.categories_[3][-1] is OTHER
-    rows = every_row(model, small_table().schema, {"d": CAPPED_D})
-    assert rows.num_rows == 3 * 2 * 3 * 4
+    # "Other" stands for the values behind it and for any value never seen: one row each.
+    rows = every_row(model, small_table().schema, {"d": [*CAPPED_D, "never seen"]})
+    assert rows.num_rows == 3 * 2 * 3 * (3 + 3 + 1)
     # outside check: the law of total probability (a distribution sums to 1 over all outcomes)
     total = math.fsum(np.exp(model.score_samples(rows)))
     assert total == pytest.approx(1.0, abs=1e-9)
@@ -182,6 +183,13 @@ def test_training_likelihood_is_the_chow_liu_identity(which: str, sessions: pa.T
     # outside check: Chow & Liu (1968): the tree's maximum log-likelihood is
     # N * sum of edge mutual information - N * sum of marginal entropies
     expected = n * math.fsum(edge_mi) - n * math.fsum(entropies)
+    # A value behind "other" also scores ln P(value | other) = ln(c_v / R) at alpha=0
+    # (docs/column-kinds.md): the tail's own log-likelihood, counted from the raw rows.
+    for name in names:
+        raw = pd.Series(table[name].to_pylist(), dtype=object)
+        behind = raw[(labels[name] == "<other>").to_numpy()].value_counts().to_numpy()
+        if len(behind):
+            expected += float(np.sum(behind * np.log(behind / behind.sum())))
     assert model.score(table) == pytest.approx(expected, rel=1e-9)
 
 
@@ -398,6 +406,7 @@ def test_scores_match_the_reference_on_generated_tables(
     assume(all(c.null_count < len(c) for c in train.columns))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", treewise.CategoryCapWarning)
+        warnings.simplefilter("ignore", treewise.ColumnKindWarning)
         ref = reference.fit(reference_columns(train), max_categories=max_categories, n_bins=n_bins)
         model = treewise.DependencyTree(max_categories=max_categories, n_bins=n_bins).fit(train)
     np.testing.assert_array_equal(model.parent_, ref.parent)
@@ -450,19 +459,11 @@ def test_sample_marginals_match_the_reference_distribution() -> None:
         expected = expected_marginals[c]
         assert expected.sum() == pytest.approx(1.0, abs=1e-12)
         values = drawn[name]
-        # Codes of the samples; OTHER and null both come back as null, so they share a cell.
+        # Codes of the samples: "other" comes back as one of the values behind it, null as null.
         codes = reference.encode_like(ref, c, reference_columns(pa.table({name: values}))[name])
-        nulls = values.is_null().to_numpy(zero_copy_only=False)
-        tail = [k for k, v in enumerate(cats) if v is OTHER or v is None]
-        head = [k for k in range(len(cats)) if k not in tail]
-        observed = [np.sum((codes == k) & ~nulls) for k in head]
-        wanted = [expected[k] * n for k in head]
-        if tail:
-            observed.append(nulls.sum())
-            wanted.append(expected[tail].sum() * n)
-        else:
-            assert not nulls.any()
-        assert g_test_pvalue(np.array(observed), np.array(wanted)) > LEVEL, name
+        assert (codes >= 0).all()
+        observed = np.array([np.sum(codes == k) for k in range(len(cats))])
+        assert g_test_pvalue(observed, expected * n) > LEVEL, name
 
 
 # -- surprisal ----------------------------------------------------------------------------------
@@ -488,7 +489,10 @@ def test_surprisal_columns_and_sums() -> None:
 
 def test_planted_anomalies_show_in_the_columns_that_give_them_away() -> None:
     table = shop_sessions(50_000, seed=3, anomaly_rate=0.001)
-    model = treewise.DependencyTree(columns=model_columns(table)).fit(table)
+    # Surprisal blames -ln P(x | parent) on the child, so which column shows an anomaly depends
+    # on the orientation: hang the tree from the first column, as the scripts are described.
+    columns = model_columns(table)
+    model = treewise.DependencyTree(columns=columns, root=columns[0]).fit(table)
     frame = model.surprisal(table).to_pandas()
     planted = table["planted_anomaly"].to_numpy()
     pages = np.array(table["pages_viewed"].to_pylist(), dtype=object)
@@ -650,7 +654,10 @@ def binned_pair(float_type: pa.DataType, values: np.ndarray) -> pa.Table:
 
 
 def assert_floats_in_their_bins(table: pa.Table) -> None:
-    model = treewise.DependencyTree(alpha=0, n_bins=len(np.unique(table["g"]))).fit(table)
+    # Numeric by request: f has no more distinct values than bins (docs/column-kinds.md).
+    model = treewise.DependencyTree(
+        alpha=0, n_bins=len(np.unique(table["g"])), kinds={"f": "numeric"}
+    ).fit(table)
     joint = model.joint_counts("g", "f")
     assert ((joint > 0).sum(axis=1) == 1).all()  # each g value falls in exactly one bin
     bin_of = joint.argmax(axis=1)
@@ -680,13 +687,20 @@ def test_float32_samples_lie_inside_their_bins() -> None:
     assert_floats_in_their_bins(binned_pair(pa.float32(), np.array(values, dtype=np.float32)))
 
 
-def test_other_code_samples_as_null() -> None:
+def test_other_code_samples_the_values_behind_it() -> None:
     with pytest.warns(treewise.CategoryCapWarning):
         model = treewise.DependencyTree(max_categories=4).fit(small_table())
-    drawn = model.sample(5_000, random_state=3)
+    drawn = model.sample(20_000, random_state=3)
     assert small_table()["d"].null_count == 0
-    assert drawn["d"].null_count > 0  # the "other" code stands for no single value
-    assert set(drawn["d"].drop_null().to_pylist()) == {"k0", "k1", "k2"}
+    assert drawn["d"].null_count == 0  # "other" gives back a real value, never null
+    assert set(drawn["d"].to_pylist()) == {"k0", "k1", "k2", "k3", "k4", "k5"}
+    # Behind "other", the values come in the shares of their counts in the data (G-test).
+    real = pd.Series(small_table()["d"].to_pylist()).value_counts()
+    fake = pd.Series(drawn["d"].to_pylist()).value_counts()
+    rare = ["k3", "k4", "k5"]
+    observed = fake[rare].to_numpy()
+    wanted = real[rare].to_numpy() / real[rare].sum() * observed.sum()
+    assert g_test_pvalue(observed, wanted) > LEVEL
 
 
 def test_same_random_state_same_rows_and_different_differs() -> None:

@@ -144,7 +144,7 @@ def test_fit_tables_and_marginals_are_counts() -> None:
 @pytest.mark.parametrize(("seed", "d"), [(s, d) for d in range(2, 7) for s in range(3)])
 def test_tree_is_a_maximum_spanning_tree(seed: int, d: int) -> None:
     columns = random_columns(100 + seed, d)
-    tree = ref.fit(columns, n_bins=5)
+    tree = ref.fit(columns, n_bins=5, root=next(iter(columns)))
     labels = [raw_labels(tree, columns, k) for k in range(d)]
     graph = nx.Graph()
     for i, j in itertools.combinations(range(d), 2):
@@ -317,8 +317,9 @@ def test_numeric_null_and_constant() -> None:
     codes, cats = ref.encode_column(np.array([0.5, np.nan, 1.5, 2.5]), n_bins=2)
     assert cats == [Bin(0.5, 1.5), Bin(1.5, 2.5, closed=True), None]
     assert codes.tolist() == [0, 2, 1, 1]
+    # One distinct value (at most n_bins): a category, not a bin.
     codes, cats = ref.encode_column(np.array([2.0, 2.0, np.nan], dtype=np.float32))
-    assert cats == [Bin(2.0, 2.0, closed=True), None] and codes.tolist() == [0, 0, 1]
+    assert cats == [2.0, None] and codes.tolist() == [0, 0, 1]
 
 
 @pytest.mark.parametrize(("seed", "n_bins"), [(0, 4), (1, 8), (2, 2), (3, 16)])
@@ -340,14 +341,26 @@ def test_numeric_edges_match_numpy_lower_quantiles(seed: int, n_bins: int) -> No
         ({}, "no columns"),
         ({"a": np.array([], dtype=np.float64)}, "'a'"),
         ({"a": np.array([1, 2]), "bb": np.array([1, 2, 3])}, "'bb'"),
-        ({"a": np.array([1, 2]), "nul": np.array([np.nan, np.nan])}, "'nul'"),
-        ({"a": np.array([1, 2]), "none": np.array([None, None], dtype=object)}, "'none'"),
+        ({"nul": np.array([np.nan, np.nan])}, "no column is left"),
         ({"mixed": np.array([1, "x"], dtype=object)}, "'mixed'"),
     ],
 )
 def test_fit_rejects_bad_input(columns: dict[str, np.ndarray], match: str) -> None:
     with pytest.raises(ValueError, match=match):
         ref.fit(columns)
+
+
+def test_fit_leaves_out_columns_of_nulls_and_identifiers() -> None:
+    ids = np.array([f"id{k}" for k in range(40)], dtype=object)
+    columns = {
+        "a": np.array([1, 2] * 20),
+        "nul": np.full(40, np.nan),
+        "none": np.array([None] * 40, dtype=object),
+        "ids": ids,
+    }
+    assert ref.fit(columns).names == ["a"]
+    with pytest.raises(ref.LeftOut, match="identifier"):
+        ref.encode_column(ids)
 
 
 def test_fit_rejects_unknown_root() -> None:

@@ -24,8 +24,10 @@ import numpy.typing as npt
 from treewise.categories import OTHER, Bin
 
 __all__ = [
+    "TAIL_LIMIT",
     "LeftOut",
     "ReferenceTree",
+    "Tail",
     "centre",
     "encode_column",
     "encode_like",
@@ -296,6 +298,49 @@ def orient(d: int, edges: list[tuple[int, int]], root: int) -> tuple[IntArray, l
     return parent, order
 
 
+#: The most rare values a tail table keeps (the most frequent first; the rest are summed).
+TAIL_LIMIT = 1 << 15
+
+
+@dataclass(frozen=True)
+class Tail:
+    """The values behind a column's "other" code: a table of counts, and the rest summed."""
+
+    counts: dict[object, int]
+    rest_values: int
+    rest_rows: int
+
+    def log_prob(self, value: object, alpha: float) -> float:
+        """Ln P(value | other): smoothing ``alpha`` over the values plus one slot for unseen."""
+        rows = sum(self.counts.values()) + self.rest_rows
+        slots = len(self.counts) + self.rest_values + 1
+        denom = rows + alpha * slots
+        if value in self.counts:
+            top = self.counts[value] + alpha
+        elif self.rest_values:
+            top = self.rest_rows / self.rest_values + alpha
+        else:
+            top = alpha
+        return math.log(top / denom) if top > 0 else -math.inf
+
+
+def tail_of(values: npt.NDArray[np.generic], categories: list[Category]) -> Tail | None:
+    """The tail behind the "other" code of a categorical column (None without "other")."""
+    if OTHER not in categories:
+        return None
+    kept = {c for c in categories if c is not OTHER and c is not None}
+    items = [v.item() if isinstance(v, np.generic) else v for v in values.tolist()]
+    counts = Counter(
+        v for v in items if v is not None and not (isinstance(v, float) and math.isnan(v))
+    )
+    rare = sorted(
+        ((v, c) for v, c in counts.items() if v not in kept),
+        key=lambda vc: (-vc[1], vc[0]),  # type: ignore[operator]
+    )
+    table, rest = rare[:TAIL_LIMIT], rare[TAIL_LIMIT:]
+    return Tail(dict(table), len(rest), sum(c for _, c in rest))
+
+
 @dataclass(frozen=True, eq=False)
 class ReferenceTree:
     """Everything a reference fit produces (column ``k`` is ``names[k]``)."""
@@ -314,6 +359,7 @@ class ReferenceTree:
     mutual_info: FloatArray
     g_statistic: FloatArray
     dof: IntArray
+    tails: list[Tail | None]
 
     def total_mutual_info(self) -> float:
         """Sum of each column's MI with its parent, the quantity the tree maximises."""
@@ -408,6 +454,10 @@ def fit(
         mutual_info=np.array([mi[v, parent[v]] if parent[v] >= 0 else 0.0 for v in range(d)]),
         g_statistic=g,
         dof=dof,
+        tails=[
+            tail_of(np.asarray(columns[name]), cats)
+            for name, (_, cats) in zip(names, encoded, strict=True)
+        ],
     )
 
 
@@ -471,6 +521,7 @@ def score_samples(
 
     P(x | a) = (n_ax + alpha) / (n_a + alpha r). A value without a code gets
     alpha / (n_a + alpha r); when the parent's value has no code, the column's marginal is used.
+    A value behind "other" adds ln P(value | other) from the column's tail (:class:`Tail`).
     """
     codes = [encode_like(tree, c, np.asarray(columns[name])) for c, name in enumerate(tree.names)]
     total = np.zeros(len(codes[0]))
@@ -486,6 +537,14 @@ def score_samples(
         )
         without = np.where(x >= 0, marg[0, np.maximum(x, 0)], marg_unseen[0])
         total = total + np.where(a >= 0, with_parent, without)
+        tail = tree.tails[c]
+        if tail is not None:
+            other = tree.categories[c].index(OTHER)
+            raw = np.asarray(columns[tree.names[c]]).tolist()
+            extra = [
+                tail.log_prob(v, alpha) if k == other else 0.0 for k, v in zip(x, raw, strict=True)
+            ]
+            total = total + np.array(extra)
     return total
 
 

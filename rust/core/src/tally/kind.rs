@@ -17,6 +17,7 @@ impl ColumnTally {
     /// rules): categorical values with a tail table behind "other", numeric quantile bins with
     /// the values inside each, or left out of the model (only nulls, or an identifier).
     fn finish(self, max_categories: usize, n_bins: usize, choice: KindChoice) -> Result<Finished> {
+        let values_seen = self.total().unwrap_or(0);
         let ColumnTally {
             name,
             family,
@@ -34,7 +35,7 @@ impl ColumnTally {
         if choice == KindChoice::Leave {
             return leave(format!("column '{name}' is left out, as asked"));
         }
-        let (Some(family), false) = (family, matches!(tally, Tally::Unknown)) else {
+        let (Some(family), false) = (family, values_seen == 0) else {
             return leave(format!(
                 "column '{name}' holds only nulls ({nulls} rows); it carries no information and \
                  is left out of the model"
