@@ -89,7 +89,8 @@ def reference() -> DependencyTree:
 
 
 def test_reference_recovers_the_chain_and_counts_rows(reference: DependencyTree) -> None:
-    assert reference.parent_.tolist() == [-1, 0, 1, 2]
+    # The chain 0 - 1 - 2 - 3, hung from its centre (the lower of the two middle columns).
+    assert reference.parent_.tolist() == [1, -1, 1, 2]
     assert reference.n_rows_ == N_ROWS
     assert reference.categories_[0] == [-20, -10, 0, 10, 20, None]
     assert reference.categories_[2] == [
@@ -477,7 +478,7 @@ def test_cap_of_two_with_nulls_sends_every_value_to_other() -> None:
 # -- float binning -------------------------------------------------------------------------------
 
 
-def test_float_bins_cover_the_data_and_nan_is_null() -> None:
+def test_float_bins_cover_the_data_and_nan_is_a_value() -> None:
     rng = np.random.default_rng(11)
     x = rng.normal(size=400).round(3)
     x[[5, 50, 77]] = np.nan
@@ -485,8 +486,9 @@ def test_float_bins_cover_the_data_and_nan_is_null() -> None:
     table = pa.table({"x": pa.array(values, pa.float64()), "k": (np.nan_to_num(x) > 0).tolist()})
     model = DependencyTree(n_bins=6).fit(table)
     cats = model.categories_[0]
-    bins, null = cats[:-1], cats[-1]
-    assert null is None
+    # Bins, then NaN (a value of its own in Arrow data), then null.
+    bins, nan, null = cats[:-2], cats[-2], cats[-1]
+    assert null is None and math.isnan(nan)
     assert all(isinstance(b, Bin) for b in bins)
     assert 1 <= len(bins) <= 6
     present = np.array([v for v in values if v is not None and not math.isnan(v)])
@@ -500,12 +502,14 @@ def test_float_bins_cover_the_data_and_nan_is_null() -> None:
     # Each value falls in exactly one bin, and the counts agree with Bin.__contains__.
     for v in present:
         assert sum(v in b for b in bins) == 1
-    assert counts[:-1].tolist() == [sum(v in b for v in present) for b in bins]
-    assert int(counts[-1]) == 3 + 2  # three NaN and two nulls
+    assert counts[:-2].tolist() == [sum(v in b for v in present) for b in bins]
+    assert counts[-2:].tolist() == [3, 2]  # three NaN, two nulls
 
 
-def test_float_column_of_one_value_is_one_closed_bin() -> None:
+def test_float_column_of_one_value_is_one_category_or_one_closed_bin() -> None:
     model = DependencyTree().fit(pa.table({"x": [2.5, 2.5, None]}))
-    assert model.categories_[0] == [Bin(2.5, 2.5, closed=True), None]
-    assert 2.5 in model.categories_[0][0]
+    assert model.categories_[0] == [2.5, None]
     assert model.marginal_counts("x").tolist() == [2, 1]
+    binned = DependencyTree(kinds={"x": "numeric"}).fit(pa.table({"x": [2.5, 2.5, None]}))
+    assert binned.categories_[0] == [Bin(2.5, 2.5, closed=True), None]
+    assert 2.5 in binned.categories_[0][0]

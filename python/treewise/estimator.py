@@ -156,6 +156,11 @@ class DependencyTree(ExactCounts, Params):
         if model_bytes is not None:
             self._model = _core.TreeModel.from_bytes(model_bytes)
             self.codebook_ = self._model.codebook
+            # Rebuilt, not unpickled: a NaN category must be the one NaN object (math.nan).
+            codebook = self._model.codebook
+            self.categories_ = [
+                column_categories(*codebook.column(i)) for i in range(len(codebook))
+            ]
             self._stats = None
             if stats_bytes is not None:
                 self._stats = _core.PairStats.from_bytes(stats_bytes)[2]

@@ -146,8 +146,8 @@ impl CodebookBuilder {
                 (family, &col_kind(&tally)),
                 (None, 0)
                     | (Some(Kind::Bool), 1)
-                    | (Some(Kind::Int | Kind::Time), 2 | 5)
-                    | (Some(Kind::UInt), 3 | 5)
+                    | (Some(Kind::Int | Kind::Time), 2 | 5 | 6)
+                    | (Some(Kind::UInt), 3 | 5 | 6)
                     | (Some(Kind::Str), 4 | 6)
                     | (Some(Kind::Float), 5)
             );

@@ -84,10 +84,14 @@ impl ColumnTally {
                 )
             }
             Tally::Overflow(n) => {
-                if choice == KindChoice::Categorical {
+                if choice != KindChoice::Auto {
                     return Err(too_many_distinct(&name));
                 }
-                return identifier(n, DISTINCT_LIMIT);
+                return leave(format!(
+                    "column '{name}' looks like an identifier (more than {DISTINCT_LIMIT} \
+                     distinct values in {n} rows), so it is left out of the model and never \
+                     sampled; bucket it first (by prefix, range or hash) to model it"
+                ));
             }
             Tally::Int(m) => {
                 let n: u64 = m.values().sum();
@@ -229,7 +233,7 @@ enum Finished {
 const IDENTIFIER_MIN_ROWS: u64 = 20;
 
 /// Nearly every value distinct (at least 95%), in enough rows to say so.
-fn looks_like_identifier(n: u64, distinct: usize) -> bool {
+pub(super) fn looks_like_identifier(n: u64, distinct: usize) -> bool {
     n >= IDENTIFIER_MIN_ROWS && distinct as u128 * 20 >= u128::from(n) * 19
 }
 

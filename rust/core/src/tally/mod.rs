@@ -29,7 +29,8 @@ enum Tally {
     Str(FxHashMap<Box<str>, u64>),
     /// Counts of the numbers seen, for quantiles (also integers past [`DISTINCT_LIMIT`]).
     Float(FloatTally),
-    /// Strings past [`DISTINCT_LIMIT`] distinct values: only their row count is kept.
+    /// Strings, or integers that look like identifiers, past [`DISTINCT_LIMIT`] distinct values:
+    /// only their row count is kept.
     Overflow(u64),
 }
 
@@ -426,13 +427,17 @@ impl ColumnTally {
                     None => nulls += w,
                 }
             })?,
-            Tally::Overflow(n) => each_str(array, |v| {
-                let w = next();
-                match v {
-                    Some(_) => *n += w,
-                    None => nulls += w,
+            Tally::Overflow(n) => {
+                let mask = array.logical_nulls();
+                for row in 0..array.len() {
+                    let w = next();
+                    if mask.as_ref().is_some_and(|m| m.is_null(row)) {
+                        nulls += w;
+                    } else {
+                        *n += w;
+                    }
                 }
-            })?,
+            }
             // Integers past the distinct limit are counted as numbers too.
             Tally::Float(seen) => each_number(array, |v| {
                 let w = next();
@@ -482,9 +487,15 @@ impl ColumnTally {
             (Tally::Float(a), Tally::Float(b)) => a.merge(b),
             (Tally::Overflow(a), Tally::Overflow(b)) => *a += b,
             (Tally::Overflow(a), Tally::Str(b)) => *a += b.values().sum::<u64>(),
-            (mine @ Tally::Str(_), Tally::Overflow(b)) => {
+            (Tally::Overflow(a), Tally::Int(b)) => *a += b.values().sum::<u64>(),
+            (Tally::Overflow(a), Tally::UInt(b)) => *a += b.values().sum::<u64>(),
+            (Tally::Overflow(a), Tally::Float(b)) => *a += b.n,
+            (mine @ (Tally::Str(_) | Tally::Int(_) | Tally::UInt(_) | Tally::Float(_)), Tally::Overflow(b)) => {
                 let a: u64 = match mine {
                     Tally::Str(m) => m.values().sum(),
+                    Tally::Int(m) => m.values().sum(),
+                    Tally::UInt(m) => m.values().sum(),
+                    Tally::Float(f) => f.n,
                     _ => 0,
                 };
                 *mine = Tally::Overflow(a + b);
@@ -536,14 +547,34 @@ impl ColumnTally {
     /// count (an identifier), integers past it become a number tally (they can only be binned).
     fn bound_distinct(&mut self) {
         let over = |n: usize| n > DISTINCT_LIMIT;
+        // Integers that look like keys (nearly all distinct, over a range at most twice their
+        // number) stop being tallied: they are an identifier. Other integers become numbers.
+        fn wide_ints(entries: Vec<(i128, u64)>, family: Option<Kind>) -> Tally {
+            let n: u64 = entries.iter().map(|e| e.1).sum();
+            let d = entries.len();
+            let (lo, hi) = entries
+                .iter()
+                .fold((i128::MAX, i128::MIN), |(l, h), e| (l.min(e.0), h.max(e.0)));
+            let keys = family != Some(Kind::Time)
+                && kind::looks_like_identifier(n, d)
+                && hi - lo < 2 * d as i128;
+            if keys {
+                Tally::Overflow(n)
+            } else {
+                Tally::Float(int_tally(entries.into_iter().map(|(k, c)| (k as f64, c))))
+            }
+        }
+        let family = self.family;
         let replaced = match &self.tally {
             Tally::Str(m) if over(m.len()) => Some(Tally::Overflow(m.values().sum())),
-            Tally::Int(m) if over(m.len()) => Some(Tally::Float(int_tally(
-                m.iter().map(|(k, c)| (*k as f64, *c)),
-            ))),
-            Tally::UInt(m) if over(m.len()) => Some(Tally::Float(int_tally(
-                m.iter().map(|(k, c)| (*k as f64, *c)),
-            ))),
+            Tally::Int(m) if over(m.len()) => Some(wide_ints(
+                m.iter().map(|(k, c)| (i128::from(*k), *c)).collect(),
+                family,
+            )),
+            Tally::UInt(m) if over(m.len()) => Some(wide_ints(
+                m.iter().map(|(k, c)| (i128::from(*k), *c)).collect(),
+                family,
+            )),
             _ => None,
         };
         if let Some(t) = replaced {
