@@ -20,6 +20,7 @@ from treewise.checks import (
     check_int,
     check_kinds,
     check_prune,
+    check_root,
 )
 from treewise.errors import DataError
 from treewise.estimator import DependencyTree
@@ -138,6 +139,8 @@ def fit_dask(data: Any, *, split_every: int = 8, **params: Any) -> DependencyTre
         raise DataError("the Dask data has no partitions")
     names = check_columns(available, estimator.columns, "the Dask data")
     kinds = check_kinds(estimator.kinds, names)
+    if estimator.root is not None:
+        check_root(estimator.root, names)  # before any task runs
 
     tallies = [delayed(_tally, pure=True)(p, names) for p in parts]
     (tally,) = compute(_tree_reduce(tallies, _merge_tallies, split_every))
