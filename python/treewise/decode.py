@@ -52,13 +52,15 @@ def type_name(dtype: pa.DataType, levels: pa.Array[Any] | None = None) -> str:
     """Our name for a supported Arrow type, as stored in the model file.
 
     An ordered dictionary of strings (an ordered pandas categorical) with its ``levels`` is
-    ``ordered<INDEX>:`` followed by the levels as a JSON list, so that they come back in order,
-    unused ones included.
+    ``ordered<INDEX,VALUE>:`` followed by the levels as a JSON list, so that they come back in
+    order, unused ones included.
     """
     if pa.types.is_dictionary(dtype):
         value = dtype.value_type
-        if dtype.ordered and levels is not None and pa.types.is_string(value):
-            return f"ordered<{type_name(dtype.index_type)}>:" + json.dumps(levels.to_pylist())
+        strings = pa.types.is_string(value) or pa.types.is_large_string(value)
+        if dtype.ordered and levels is not None and strings:
+            index = type_name(dtype.index_type)
+            return f"ordered<{index},{type_name(value)}>:" + json.dumps(levels.to_pylist())
         return f"dictionary<{type_name(dtype.index_type)},{type_name(value)}>"
     if _is_time(dtype):
         return str(dtype)
@@ -104,9 +106,10 @@ def ordered_levels(name: str) -> list[str] | None:
 def type_from_name(name: str) -> pa.DataType:
     """The Arrow type of a stored name; anything else means a damaged or foreign model file."""
     if ordered_levels(name) is not None:
-        index_type = _PLAIN.get(name[len("ordered<") :].partition(">")[0])
-        if index_type is not None and pa.types.is_integer(index_type):
-            return cast(pa.DataType, pa.dictionary(index_type, pa.string(), ordered=True))
+        index, _, value = name[len("ordered<") :].partition(">")[0].partition(",")
+        index_type, value_type = _PLAIN.get(index), _PLAIN.get(value)
+        if index_type is not None and pa.types.is_integer(index_type) and value_type is not None:
+            return cast(pa.DataType, pa.dictionary(index_type, value_type, ordered=True))
     elif name.startswith("dictionary<") and name.endswith(">"):
         index, _, value = name[len("dictionary<") : -1].partition(",")
         index_type, value_type = _PLAIN.get(index), _PLAIN.get(value)
@@ -169,7 +172,7 @@ class ColumnValues:
         return cls(
             dtype=dtype,
             numeric=numeric,
-            levels=None if levels is None else pa.array(levels, pa.string()),
+            levels=None if levels is None else pa.array(levels, dtype.value_type),
             kept=kept,
             other=n_values if has_other else None,
             null=n_values + int(has_other) if has_null else None,
@@ -276,7 +279,7 @@ _RANGES = {
 
 def _value_name(name: str) -> str:
     if name.startswith("ordered<"):
-        return "string"
+        return name[len("ordered<") :].partition(">")[0].partition(",")[2]
     if name.startswith("dictionary<") and name.endswith(">"):
         return name[len("dictionary<") : -1].partition(",")[2]
     return name
@@ -325,7 +328,7 @@ def fitting_type(name: str, values: list[Any], n_codes: int) -> str:
             return FAMILY_TYPES[family(name)]
     levels = ordered_levels(name)
     if levels is not None:
-        index = name[len("ordered<") :].partition(">")[0]
+        index = name[len("ordered<") :].partition(">")[0].partition(",")[0]
         missing = {v for v in values if isinstance(v, str)} - set(levels)
         if missing or index not in _RANGES or len(levels) - 1 > _RANGES[index][1]:
             return "string"

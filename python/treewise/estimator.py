@@ -566,9 +566,12 @@ class DependencyTree(ExactCounts, Params):
         """
         return inference.predict_proba(self, data, target)
 
-    def predict(self, data: Any, target: str | int) -> pa.Array[Any]:
-        """The most probable value of column ``target`` for each row, given the rest."""
-        return inference.predict(self, data, target)
+    def predict(self, data: Any, target: str | int, *, allow_null: bool = False) -> pa.Array[Any]:
+        """The most probable value of column ``target`` for each row, given the rest.
+
+        A value, never null, unless ``allow_null=True`` lets the null category win.
+        """
+        return inference.predict(self, data, target, allow_null)
 
     def marginals(
         self, evidence: Mapping[str, Any] | None = None

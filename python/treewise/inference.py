@@ -171,17 +171,22 @@ def predict_proba(model: DependencyTree, data: Any, target: str | int) -> npt.ND
     return np.concatenate(parts).reshape(-1, width) if parts else np.zeros((0, width))
 
 
-def predict(model: DependencyTree, data: Any, target: str | int) -> pa.Array[Any]:
+def predict(
+    model: DependencyTree, data: Any, target: str | int, allow_null: bool = False
+) -> pa.Array[Any]:
     """The most probable value of ``target`` in each row of ``data`` (see :func:`predict_proba`).
 
     Ties go to the first category in ``categories_`` order. The result has the fitted type of
-    ``target``; it is null where the most probable category is the null category or where the
-    evidence is impossible. Where it is the "other" category, the result is the most frequent
-    value behind it. A numeric column gets the median of the values seen in its most probable
-    bin.
+    ``target``: the most probable value, never null unless ``allow_null`` lets the null category
+    win, or the evidence is impossible (alpha=0 only). Where the "other" category wins, the
+    result is the most frequent value behind it. A numeric column gets the median of the values
+    seen in its most probable bin.
     """
     t = model._index(target)
     proba = predict_proba(model, data, target)
+    null = model._column_values()[t].null
+    if not allow_null and null is not None and proba.shape[1] > 1:
+        proba[:, null] = -1.0  # below every probability: the null code never wins
     valid = ~np.isnan(proba).any(axis=1)
     codes = np.where(valid, np.argmax(np.nan_to_num(proba, nan=-1.0), axis=1), _KEPT)
     codes = codes.astype(np.uint16)
@@ -350,6 +355,10 @@ def _merge(original: pa.Array[Any], filled: tuple[npt.NDArray[np.bool_], pa.Arra
             f"cannot write filled values of type {values.type} into a column of type "
             f"{original.type}: {e}"
         ) from e
+    if pa.types.is_string_view(original.type):
+        # pyarrow's if_else has no string_view kernel: choose in plain strings, then cast back.
+        merged = pc.if_else(pa.array(mask), values.cast(pa.string()), original.cast(pa.string()))
+        return merged.cast(original.type)
     return pc.if_else(pa.array(mask), values, original)
 
 

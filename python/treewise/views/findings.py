@@ -71,7 +71,12 @@ def _rows_at(source: Source, columns: list[str], positions: npt.NDArray[np.int64
         for batch in batches:
             lo, hi = np.searchsorted(wanted, [offset, offset + batch.num_rows])
             if hi > lo:
-                pieces.append(pa.Table.from_batches([batch]).take(wanted[lo:hi] - offset))
+                # pyarrow's take has no string_view kernel: take plain strings.
+                plain = pa.Table.from_batches([batch])
+                for i, field in enumerate(plain.schema):
+                    if pa.types.is_string_view(field.type):
+                        plain = plain.set_column(i, field.name, plain.column(i).cast(pa.string()))
+                pieces.append(plain.take(wanted[lo:hi] - offset))
             offset += batch.num_rows
     table = pa.concat_tables(pieces, promote_options="permissive")
     return table.take(np.searchsorted(wanted, positions))

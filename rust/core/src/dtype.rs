@@ -67,15 +67,20 @@ fn value_type_fits(name: &str, column: &ColumnCode) -> bool {
 /// a plain type, `dictionary<INDEX,VALUE>` with a signed or unsigned integer index, or an
 /// ordered dictionary of strings with its levels.
 pub fn fits(name: &str, column: &ColumnCode) -> bool {
-    // An ordered dictionary of strings with its levels: `ordered<INDEX>:["a","b"]`.
-    if let Some((index, levels)) = name
+    // An ordered dictionary of strings with its levels: `ordered<INDEX,VALUE>:["a","b"]`.
+    if let Some((types, levels)) = name
         .strip_prefix("ordered<")
         .and_then(|r| r.split_once(">:"))
     {
-        return int_range(index).is_some()
-            && levels.starts_with('[')
-            && levels.ends_with(']')
-            && value_type_fits("string", column);
+        return match types.split_once(',') {
+            Some((index, value)) => {
+                int_range(index).is_some()
+                    && levels.starts_with('[')
+                    && levels.ends_with(']')
+                    && value_type_fits(value, column)
+            }
+            None => false,
+        };
     }
     if let Some(inner) = name
         .strip_prefix("dictionary<")
