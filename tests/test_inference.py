@@ -7,7 +7,6 @@ with ``score_samples`` (the model's own joint distribution), then summed or maxi
 from __future__ import annotations
 
 import itertools
-import math
 from pathlib import Path
 from typing import Any
 

@@ -172,7 +172,7 @@ class ColumnValues:
         return cls(
             dtype=dtype,
             numeric=numeric,
-            levels=None if levels is None else pa.array(levels, dtype.value_type),
+            levels=None if levels is None else pa.array(levels, value_type),
             kept=kept,
             other=n_values if has_other else None,
             null=n_values + int(has_other) if has_null else None,

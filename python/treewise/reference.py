@@ -335,7 +335,7 @@ def tail_of(values: npt.NDArray[np.generic], categories: list[Category]) -> Tail
     )
     rare = sorted(
         ((v, c) for v, c in counts.items() if v not in kept),
-        key=lambda vc: (-vc[1], vc[0]),  # type: ignore[operator]
+        key=lambda vc: (-vc[1], vc[0]),
     )
     table, rest = rare[:TAIL_LIMIT], rare[TAIL_LIMIT:]
     return Tail(dict(table), len(rest), sum(c for _, c in rest))
