@@ -2,6 +2,7 @@
 //! codebook pass, with its codes, the tail table behind "other" and the values inside each bin.
 
 use rayon::prelude::*;
+use rustc_hash::FxHashMap;
 
 use super::{
     int_tally, CapReport, CodebookBuilder, ColumnTally, FloatTally, Tally, DISTINCT_LIMIT,
@@ -93,64 +94,20 @@ impl ColumnTally {
                      sampled; bucket it first (by prefix, range or hash) to model it"
                 ));
             }
-            Tally::Int(m) => {
-                let n: u64 = m.values().sum();
-                let d = m.len();
-                if choice == KindChoice::Auto && family != Kind::Time && d > n_bins {
-                    let span = m
-                        .keys()
-                        .max()
-                        .zip(m.keys().min())
-                        .map(|(h, l)| i128::from(*h) - i128::from(*l) + 1);
-                    if looks_like_identifier(n, d) && span.is_some_and(|s| s <= 2 * d as i128) {
-                        return identifier(n, d);
-                    }
+            Tally::Int(m) => match integers(m, choice, n_bins, family != Kind::Time) {
+                Integers::Identifier(n, d) => return identifier(n, d),
+                Integers::Binned(column) => *column,
+                Integers::Values(seen) => {
+                    categorical(&name, seen, max_categories, has_null, Values::Int)
                 }
-                if wants_bins(choice, d, n_bins) {
-                    numeric(
-                        &int_tally(m.iter().map(|(k, c)| (*k as f64, *c))),
-                        n_bins,
-                        true,
-                    )
-                } else {
-                    categorical(
-                        &name,
-                        m.into_iter().collect(),
-                        max_categories,
-                        has_null,
-                        Values::Int,
-                    )
+            },
+            Tally::UInt(m) => match integers(m, choice, n_bins, true) {
+                Integers::Identifier(n, d) => return identifier(n, d),
+                Integers::Binned(column) => *column,
+                Integers::Values(seen) => {
+                    categorical(&name, seen, max_categories, has_null, Values::UInt)
                 }
-            }
-            Tally::UInt(m) => {
-                let n: u64 = m.values().sum();
-                let d = m.len();
-                if choice == KindChoice::Auto && d > n_bins {
-                    let span = m
-                        .keys()
-                        .max()
-                        .zip(m.keys().min())
-                        .map(|(h, l)| i128::from(*h) - i128::from(*l) + 1);
-                    if looks_like_identifier(n, d) && span.is_some_and(|s| s <= 2 * d as i128) {
-                        return identifier(n, d);
-                    }
-                }
-                if wants_bins(choice, d, n_bins) {
-                    numeric(
-                        &int_tally(m.iter().map(|(k, c)| (*k as f64, *c))),
-                        n_bins,
-                        true,
-                    )
-                } else {
-                    categorical(
-                        &name,
-                        m.into_iter().collect(),
-                        max_categories,
-                        has_null,
-                        Values::UInt,
-                    )
-                }
-            }
+            },
             Tally::Float(f) => {
                 let finite_only_specials = f.n == 0;
                 let integral_family = family != Kind::Float;
@@ -185,6 +142,43 @@ impl ColumnTally {
         let has_other = cap.is_some();
         let column = ColumnCode::build(name, family, values, has_other, has_null, shape)?;
         Ok(Finished::Kept(Box::new(column), cap))
+    }
+}
+
+/// What an integer column becomes.
+enum Integers<T> {
+    /// Nearly all distinct over a short range: (rows, distinct values), left out.
+    Identifier(u64, usize),
+    Binned(Box<Column>),
+    /// Categorical: the values with their counts.
+    Values(Vec<(T, u64)>),
+}
+
+/// The kind of an integer column: categorical with at most `n_bins` distinct values, else
+/// binned, unless (when `may_be_key`) its values look like keys (see [`looks_like_identifier`],
+/// over a range at most twice their number).
+fn integers<T: Copy + Into<i128>>(
+    m: FxHashMap<T, u64>,
+    choice: KindChoice,
+    n_bins: usize,
+    may_be_key: bool,
+) -> Integers<T> {
+    let n: u64 = m.values().sum();
+    let d = m.len();
+    if choice == KindChoice::Auto && may_be_key && d > n_bins {
+        let (lo, hi) = m.keys().fold((i128::MAX, i128::MIN), |(l, h), k| {
+            let k: i128 = (*k).into();
+            (l.min(k), h.max(k))
+        });
+        if looks_like_keys(n, d, lo, hi) {
+            return Integers::Identifier(n, d);
+        }
+    }
+    if wants_bins(choice, d, n_bins) {
+        let tally = int_tally(m.iter().map(|(k, c)| (Into::<i128>::into(*k) as f64, *c)));
+        Integers::Binned(Box::new(numeric(&tally, n_bins, true)))
+    } else {
+        Integers::Values(m.into_iter().collect())
     }
 }
 
@@ -233,8 +227,13 @@ enum Finished {
 const IDENTIFIER_MIN_ROWS: u64 = 20;
 
 /// Nearly every value distinct (at least 95%), in enough rows to say so.
-pub(super) fn looks_like_identifier(n: u64, distinct: usize) -> bool {
+fn looks_like_identifier(n: u64, distinct: usize) -> bool {
     n >= IDENTIFIER_MIN_ROWS && distinct as u128 * 20 >= u128::from(n) * 19
+}
+
+/// Integers that look like keys: nearly all distinct, over a range at most twice their number.
+pub(super) fn looks_like_keys(n: u64, distinct: usize, low: i128, high: i128) -> bool {
+    looks_like_identifier(n, distinct) && high - low < 2 * distinct as i128
 }
 
 fn wants_bins(choice: KindChoice, distinct: usize, n_bins: usize) -> bool {

@@ -490,7 +490,10 @@ impl ColumnTally {
             (Tally::Overflow(a), Tally::Int(b)) => *a += b.values().sum::<u64>(),
             (Tally::Overflow(a), Tally::UInt(b)) => *a += b.values().sum::<u64>(),
             (Tally::Overflow(a), Tally::Float(b)) => *a += b.n,
-            (mine @ (Tally::Str(_) | Tally::Int(_) | Tally::UInt(_) | Tally::Float(_)), Tally::Overflow(b)) => {
+            (
+                mine @ (Tally::Str(_) | Tally::Int(_) | Tally::UInt(_) | Tally::Float(_)),
+                Tally::Overflow(b),
+            ) => {
                 let a: u64 = match mine {
                     Tally::Str(m) => m.values().sum(),
                     Tally::Int(m) => m.values().sum(),
@@ -555,9 +558,7 @@ impl ColumnTally {
             let (lo, hi) = entries
                 .iter()
                 .fold((i128::MAX, i128::MIN), |(l, h), e| (l.min(e.0), h.max(e.0)));
-            let keys = family != Some(Kind::Time)
-                && kind::looks_like_identifier(n, d)
-                && hi - lo < 2 * d as i128;
+            let keys = family != Some(Kind::Time) && kind::looks_like_keys(n, d, lo, hi);
             if keys {
                 Tally::Overflow(n)
             } else {
