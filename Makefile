@@ -13,7 +13,7 @@ export DEPS_FROM_PYPROJECT := import tomllib; \
   print("\n".join(p["dependencies"] + extras))
 
 .DEFAULT_GOAL := help
-.PHONY: help venv build build-dev demo test test-rust lint fmt bench clean
+.PHONY: help venv build build-dev demo test test-rust lint fmt bench fuzz fuzz-smoke clean
 
 help: ## List the targets
 	@grep -E '^[a-z-]+:.*## ' $(MAKEFILE_LIST) | awk -F':.*## ' '{printf "  make %-10s %s\n", $$1, $$2}'
@@ -57,5 +57,15 @@ bench: build ## Benchmark against the numpy reference; writes bench/RESULTS.md
 	$(PY) bench/fit_bench.py --write bench/RESULTS.md
 	$(PY) bench/compare.py --write bench/RESULTS.md
 
+# Seconds per fuzz target: `make fuzz FUZZ_SECONDS=3600`; fuzz/run.sh also takes target names.
+FUZZ_SECONDS ?= 600
+FUZZ_SMOKE_SECONDS ?= 20
+
+fuzz: build ## Fuzz every target for FUZZ_SECONDS each (needs cargo-fuzz; see fuzz/README.md)
+	fuzz/run.sh $(FUZZ_SECONDS)
+
+fuzz-smoke: build ## Replay past findings and fuzz every target for FUZZ_SMOKE_SECONDS (CI runs it)
+	fuzz/run.sh $(FUZZ_SMOKE_SECONDS)
+
 clean: ## Remove build products and the environment
-	rm -rf target $(VENV) .pytest_cache .mypy_cache .ruff_cache
+	rm -rf target fuzz/target $(VENV) .pytest_cache .mypy_cache .ruff_cache

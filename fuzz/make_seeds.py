@@ -63,10 +63,17 @@ def main() -> None:
                 mode = bytes([4 + KINDS[kind] - 1])
                 (decode / f"{name}-{kind}-payload").write_bytes(mode + data[HEADER:])
     rng = np.random.default_rng(5)
-    for k, d in enumerate((1, 2, 3, 5)):
-        head = bytes([d - 1]) + bytes(int(x) for x in rng.integers(0, 256, 2 * d))
-        body = bytes(int(x) for x in rng.integers(0, 256, 64 * d))
-        (counts / f"seed-{k}").write_bytes(head + bytes([8, 100]) + body)
+    # Repeat bytes (see counts.rs): rows as given, tiled 4 times, and tiled 64 and 512 times
+    # (160 rows x 512 = past the 70,000-row cap), so the block boundaries are in the seeds.
+    for k, (d, repeat) in enumerate(((1, 0), (2, 3), (3, 0xE0), (5, 0xE7))):
+        # Per column a cardinality selector and a mode; with 3 or more columns, selectors below
+        # 0x80 (at most 16 codes) keep the tables within the target's cell limit.
+        top = 256 if d < 3 else 128
+        pairs = zip(rng.integers(0, top, d), rng.integers(0, 256, d), strict=True)
+        head = bytes([d - 1]) + bytes(int(x) for pair in pairs for x in pair)
+        body = bytes(int(x) for x in rng.integers(0, 256, 160 * d))
+        # Kernel and batching byte 3k + 1: four kernels, and every way of batching.
+        (counts / f"seed-{k}").write_bytes(head + bytes([repeat, 3 * k + 1, 100 + k]) + body)
 
 
 if __name__ == "__main__":

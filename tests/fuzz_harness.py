@@ -1,6 +1,7 @@
 """Atheris fuzzing of the Python surface: loading model files, and fitting small odd tables.
 
-Run a campaign from the repository root (libFuzzer flags after the target name):
+Run a campaign from the repository root (libFuzzer flags after the target name), or with
+``make fuzz`` / ``fuzz/run.sh SECONDS load fit`` (which keep a corpus in fuzz/corpus/):
 
     .venv/bin/python tests/fuzz_harness.py load -max_total_time=300
     .venv/bin/python tests/fuzz_harness.py fit -max_total_time=300
