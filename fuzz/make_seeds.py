@@ -33,7 +33,18 @@ def tables() -> dict[str, pa.Table]:
                 "u": pa.array(rng.integers(0, 3, n), pa.uint8()),
             }
         ),
-        "capped": pa.table({"c": pa.array(rng.integers(0, 40, n)), "d": pa.array(a)}),
+        # Strings past max_categories: an "other" code with a tail table behind it.
+        "capped": pa.table(
+            {"c": pa.array([f"c{k}" for k in rng.integers(0, 40, n)]), "d": pa.array(a)}
+        ),
+        # Numbers with many values (bins with the values inside them), times, infinities, NaN.
+        "numeric": pa.table(
+            {
+                "w": pa.array(rng.integers(0, 500, n)),
+                "t": pa.array(rng.integers(0, 10**6, n)).cast(pa.timestamp("s", tz="UTC")),
+                "x": pa.array(np.where(a == 1, np.inf, np.where(a == 2, np.nan, rng.random(n)))),
+            }
+        ),
         "one": pa.table({"x": pa.array(["only"] * 5)}),
         "dict": pa.table({"k": pa.array(["p", "q", "p", None]).dictionary_encode()}),
     }

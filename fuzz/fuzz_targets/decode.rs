@@ -8,9 +8,10 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
+use treewise_core::bytes::{FORMAT_VERSION, MAGIC};
 use treewise_core::io::{
     codebook_from_bytes, codebook_to_bytes, model_from_bytes, model_to_bytes, stats_from_bytes,
-    stats_to_bytes, tallies_from_bytes, tallies_to_bytes, FORMAT_VERSION, MAGIC,
+    stats_to_bytes, tallies_from_bytes, tallies_to_bytes,
 };
 use treewise_core::{chow_liu, fit_model, Prune};
 
@@ -65,7 +66,7 @@ fn check_stats(file: &[u8]) {
     );
     if stats.n_rows() > 0 && stats.n_columns() > 0 && stats.n_columns() <= 64 {
         let _ = chow_liu(&stats, 0, Prune::Bic);
-        let _ = fit_model(codebook, dtypes, &stats, 0, 0.5, Prune::None);
+        let _ = fit_model(codebook, dtypes, &stats, None, 0.5, Prune::None);
     }
 }
 
@@ -82,8 +83,8 @@ fn check_tallies(file: &[u8]) {
     );
     let mut doubled = builder.clone();
     let _ = doubled.merge(&again);
-    let _ = builder.finish(128, 10);
-    let _ = doubled.finish(2, 1);
+    let _ = builder.finish(128, 10, &[]);
+    let _ = doubled.finish(2, 1, &[]);
 }
 
 fn check_codebook(file: &[u8]) {
