@@ -355,7 +355,7 @@ impl ColumnCode {
                     || !plain
                     || tail.values.len() != tail.counts.len()
                     || tail.values.len() > TAIL_LIMIT
-                    || tail.rows() == 0
+                    || tail.checked_rows().is_none_or(|r| r == 0)
                 {
                     return Err(Error::Invalid(format!(
                         "column '{name}': its table of rare values is malformed"

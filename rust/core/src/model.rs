@@ -150,7 +150,7 @@ fn number_at(col: &ColumnCode, k: usize, u: f64, narrow: bool) -> f64 {
         Some(within) => within.value(u, shape.integral),
         None => lo + u * (hi - lo),
     };
-    let mut v = v.clamp(lo, hi);
+    let mut v = v.max(lo).min(hi);
     if narrow {
         // The bounds are data values of a float32 column, so they are exact in f32.
         let mut f = v as f32;

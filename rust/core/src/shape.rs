@@ -22,14 +22,19 @@ pub struct Tail {
 }
 
 impl Tail {
-    /// Rows behind the "other" code.
+    /// Rows behind the "other" code (None if the counts overflow: a damaged file).
+    pub fn checked_rows(&self) -> Option<u64> {
+        checked_total(&self.counts)?.checked_add(self.rest_rows)
+    }
+
+    /// Rows behind the "other" code (saturating; a codebook checks `checked_rows` on build).
     pub fn rows(&self) -> u64 {
-        self.counts.iter().sum::<u64>() + self.rest_rows
+        self.checked_rows().unwrap_or(u64::MAX)
     }
 
     /// Distinct values behind the "other" code.
     pub fn n_values(&self) -> u64 {
-        self.counts.len() as u64 + self.rest_values
+        (self.counts.len() as u64).saturating_add(self.rest_values)
     }
 
     /// ln P(value | other) for each tail entry, then for a value outside the table, with
@@ -60,16 +65,21 @@ impl Tail {
     }
 }
 
+/// The sum of `counts`, or None if it overflows (only a damaged file can make it).
+pub fn checked_total(counts: &[u64]) -> Option<u64> {
+    counts.iter().try_fold(0u64, |a, c| a.checked_add(*c))
+}
+
 /// Cumulative shares of `counts`; the last entry with a count and those after it are +inf, so
 /// rounding never runs off the end nor picks an entry of count zero.
 pub fn cumulative(counts: &[u64]) -> Vec<f64> {
-    let total: u64 = counts.iter().sum();
-    let mut acc = 0u64;
+    let total = counts.iter().map(|c| *c as f64).sum::<f64>().max(1.0);
+    let mut acc = 0.0;
     let mut out: Vec<f64> = counts
         .iter()
         .map(|&c| {
-            acc += c;
-            acc as f64 / total.max(1) as f64
+            acc += c as f64;
+            acc / total
         })
         .collect();
     if let Some(last) = counts.iter().rposition(|c| *c > 0) {
@@ -129,7 +139,7 @@ impl Within {
                 inside(values)
                     && values.windows(2).all(|w| w[0] < w[1])
                     && values.len() == counts.len()
-                    && counts.iter().any(|c| *c > 0)
+                    && checked_total(counts).is_some_and(|t| t > 0)
             }
             Within::Steps(points) => points.len() == QUANTILES + 1 && inside(points),
         }
@@ -141,12 +151,12 @@ impl Within {
     pub fn value(&self, u: f64, integral: bool) -> f64 {
         match self {
             Within::Atoms { values, counts } => {
-                let total: u64 = counts.iter().sum();
-                let target = u * total as f64;
-                let mut acc = 0u64;
+                let total = counts.iter().map(|c| *c as f64).sum::<f64>();
+                let target = u * total;
+                let mut acc = 0.0;
                 for (v, c) in values.iter().zip(counts) {
-                    acc += c;
-                    if (acc as f64) > target {
+                    acc += *c as f64;
+                    if acc > target {
                         return *v;
                     }
                 }
@@ -190,6 +200,32 @@ mod tests {
         // Order statistic floor(j * 999 / 64) at j = 32 is 499.
         assert_eq!(w.value(0.5, true), 499.0);
         assert!(w.is_valid(0.0, 999.0));
+    }
+
+    #[test]
+    fn a_tail_whose_counts_overflow_is_refused() {
+        // Fuzz finding tail-count-overflow: the counts of a forged file summed past 2^64.
+        let tail = Tail {
+            values: Values::Int(vec![7, 8]),
+            counts: vec![u64::MAX, 1],
+            rest_values: 0,
+            rest_rows: 0,
+        };
+        assert_eq!(tail.checked_rows(), None);
+        let shape = crate::codebook::Shape {
+            tail: Some(tail),
+            within: Vec::new(),
+            integral: false,
+        };
+        let built = crate::codebook::ColumnCode::build(
+            "x".into(),
+            crate::values::Kind::Int,
+            Values::Int(vec![1]),
+            true,
+            false,
+            shape,
+        );
+        assert!(built.is_err());
     }
 
     #[test]

@@ -127,7 +127,13 @@ impl CodebookBuilder {
                     let counts = read_map(r, 16, |r| r.u64())?;
                     let total = counts.values().try_fold(0u64, |acc, c| acc.checked_add(*c));
                     let finite = counts.keys().all(|b| f64::from_bits(*b).is_finite());
-                    if level > 52 || total != Some(count) || !finite {
+                    // The range of the finite values seen: empty, or finite with low <= high.
+                    let range = if count == 0 {
+                        low == f64::INFINITY && high == f64::NEG_INFINITY
+                    } else {
+                        low.is_finite() && high.is_finite() && low <= high
+                    };
+                    if level > 52 || total != Some(count) || !finite || !range {
                         return Err(corrupt_tally("a float tally is inconsistent"));
                     }
                     Tally::Float(FloatTally {

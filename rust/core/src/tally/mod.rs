@@ -210,7 +210,8 @@ impl FloatTally {
             );
             let mut part: Vec<(f64, u64)> = Vec::with_capacity(to - from);
             for &(v, c) in &sorted[from..to] {
-                let v = v.clamp(lo, hi);
+                // max/min, not clamp: clamp panics if a damaged tally ever had lo > hi.
+                let v = v.max(lo).min(hi);
                 match part.last_mut() {
                     Some(last) if last.0 == v => last.1 += c,
                     _ => part.push((v, c)),
