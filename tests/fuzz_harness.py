@@ -82,7 +82,7 @@ def _column(fdp: Any, n: int) -> Any:
         return pa.nulls(n)
     if kind == 10:  # unsupported: binary
         return pa.array([fdp.ConsumeBytes(2) for _ in range(n)], pa.binary())
-    if kind == 11:  # unsupported: timestamp
+    if kind == 11:  # a time column (supported since column kinds)
         return pa.array([fdp.ConsumeIntInRange(0, 10) for _ in range(n)], pa.timestamp("s"))
     return pa.array([[fdp.ConsumeIntInRange(0, 2)] for _ in range(n)])  # unsupported: list
 

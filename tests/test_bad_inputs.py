@@ -2,8 +2,7 @@
 
 Every case checks the exception class, that the message says what was wrong, where, and what to
 do, and, where the call writes output, that nothing is left behind in the output folder. The
-cases are listed one per row in docs/errors.md; a test that pins a known bug is marked
-``xfail(strict=True)`` with the bug in its reason.
+cases are listed one per row in docs/errors.md.
 """
 
 from __future__ import annotations

@@ -1,6 +1,6 @@
 """The model file: exact round trips, refusal of every damaged or hostile file, atomic saves.
 
-The layout (docs/model-format.md): b"TREEWISE", u32 version (1), u32 kind (1), u64 payload length,
+The layout (docs/model-format.md): b"TREEWISE", u32 version (2), u32 kind (1), u64 payload length,
 u32 CRC-32 of the payload, then the payload, all little-endian.
 """
 

@@ -2,8 +2,8 @@
 
 Every function takes a fitted :class:`~treewise.DependencyTree` first. The work is exact
 message passing on the tree (or forest) in the Rust core, one row per query, in parallel and
-with the GIL released. In the data given as evidence, a null (or NaN) means *unobserved*, even
-in a column whose codebook has a null category, and a value the codebook has no code for is
+with the GIL released. In the data given as evidence, a null means *unobserved*, even in a
+column whose codebook has a null category (NaN is a value of its own, docs/column-kinds.md), and a value the codebook has no code for is
 unobserved too (an ``UnseenCategoryWarning`` counts them). A model column the data lacks is
 unobserved in every row. See docs/inference.md.
 """
@@ -280,10 +280,11 @@ def impute(
     Returns
     -------
     pyarrow.Table
-        ``data`` with its nulls (and NaNs) in modelled columns filled, types kept. Cells are
-        filled with concrete values only, never the null or "other" category: the posterior is
-        conditioned on every null cell holding one of the column's values. A float cell gets the
-        middle of its bin ("joint", "marginal") or a number drawn in it ("sample"). A model
+        ``data`` with its nulls in modelled columns filled, types kept. Cells are filled with
+        real values only, never null: the posterior is conditioned on every null cell holding one
+        of the column's values. A numeric cell gets the median of the values seen in its bin
+        ("joint", "marginal") or a value drawn from them ("sample"); the "other" category gives
+        its most frequent value, or one drawn by count ("sample"). A model
         column the data lacks is unobserved, not filled ("joint" maximises over it too). Rows
         whose evidence is impossible (alpha=0 only) keep their nulls, with an
         ``ImpossibleEvidenceWarning``.

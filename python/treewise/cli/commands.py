@@ -400,8 +400,9 @@ def sample(
 ) -> None:
     """Draw synthetic rows from MODEL and write them to OUT (Parquet).
 
-    The rows have the fitted columns and types; float columns get a number drawn inside the
-    sampled bin, and the null and "other" codes come back as null.
+    The rows have the fitted columns and types, with real values: a numeric column gets a value
+    drawn from those seen inside the sampled bin, the "other" code one of the rare values behind
+    it, and only the null code comes back as null.
     """
     model = _load(model_path)
     _check_output(output)
