@@ -227,6 +227,13 @@ def decode_column(
         return out.cast(dtype)
     assert column.kept is not None
     n_kept = len(column.kept)
+    if column.tail is None and column.levels is None and not pa.types.is_dictionary(dtype):
+        # The common case, kept values and null only: one take, no copies of the codes.
+        gone = codes >= n_kept
+        mask = gone if gone.any() else None
+        keys = pa.array(codes.astype(np.int32, copy=False), mask=mask)
+        taken = column.kept.take(keys)
+        return taken if taken.type == dtype else taken.cast(dtype)
     index = codes.astype(np.int64)
     dictionary = column.kept
     if column.other is not None and column.tail is not None:

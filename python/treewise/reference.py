@@ -103,6 +103,8 @@ def encode_column(
             return _encode_numeric(x, n_bins)
         items: list[object] = [None if math.isnan(v) else float(v) for v in x.tolist()]
         return _encode_categorical(items, max_categories)
+    if np.issubdtype(values.dtype, np.integer) or values.dtype == np.bool_:
+        return _encode_integers(values, max_categories, n_bins, name)
     items = [v.item() if isinstance(v, np.generic) else v for v in values.tolist()]
     counts = Counter(v for v in items if v is not None)
     if not counts:
@@ -121,6 +123,30 @@ def encode_column(
         x = np.array([np.nan if v is None else v for v in items], dtype=np.float64)
         return _encode_numeric(x, n_bins)
     return _encode_categorical(items, max_categories)
+
+
+def _encode_integers(
+    x: npt.NDArray[np.generic], max_categories: int, n_bins: int, name: str
+) -> tuple[IntArray, list[Category]]:
+    """The rules of :func:`encode_column` for a null-free numpy int or bool array, with numpy."""
+    if len(x) == 0:
+        raise LeftOut(f"column {name!r} has no non-null value")
+    uniques, inverse, counts = np.unique(x, return_inverse=True, return_counts=True)
+    if x.dtype != np.bool_ and len(uniques) > n_bins:
+        low, high = int(uniques[0]), int(uniques[-1])
+        if _looks_like_identifier(len(x), len(uniques)) and high - low + 1 <= 2 * len(uniques):
+            raise LeftOut(f"column {name!r} looks like an identifier")
+        return _encode_numeric(x.astype(np.float64), n_bins)
+    keep = np.arange(len(uniques))
+    if len(uniques) > max_categories:
+        # Most frequent first, ties to the smaller value; uniques are already sorted by value.
+        keep = np.sort(np.lexsort((np.arange(len(uniques)), -counts))[: max_categories - 1])
+    code_of = np.full(len(uniques), len(keep), dtype=np.int64)  # "other" unless kept
+    code_of[keep] = np.arange(len(keep))
+    categories: list[Category] = [uniques[k].item() for k in keep]
+    if len(keep) < len(uniques):
+        categories.append(OTHER)
+    return code_of[inverse.ravel()], categories
 
 
 def _encode_categorical(
@@ -472,8 +498,9 @@ def encode_like(tree: ReferenceTree, column: int, values: npt.NDArray[np.generic
     """
     cats = tree.categories[column]
     null_code = len(cats) - 1 if cats[-1] is None else -1
-    raw = [v.item() if isinstance(v, np.generic) else v for v in values.tolist()]
-    items = [None if isinstance(v, float) and math.isnan(v) else v for v in raw]
+    items = [v.item() if isinstance(v, np.generic) else v for v in values.tolist()]
+    if values.dtype.kind == "f":
+        items = [None if v != v else v for v in items]  # NaN is null in a float array
     if isinstance(cats[0], Bin):
         x = np.array([np.nan if v is None else float(v) for v in items], dtype=np.float64)
         edges = np.array([b.low for b in cats[1:] if isinstance(b, Bin)], dtype=np.float64)

@@ -1,0 +1,84 @@
+"""Two builds side by side: `bench/fit_bench.py` run in each checkout, alternately, on the same data.
+
+Each checkout must have its own built `.venv` (`make build`). The runs alternate (before, after,
+before, after, ...) so that a change in the machine's load hits both sides alike; the best time of
+each measurement over all runs is kept. Run:
+
+    python bench/compare_builds.py --before ../old-checkout --after . [--rows N] [--rounds K]
+        [--write bench/RESULTS.md]
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import platform
+import re
+import subprocess
+from datetime import datetime, timezone
+from pathlib import Path
+
+ROW = re.compile(r"^\| (treewise `[^`]+`|numpy reference `[^`]+`) \| ([0-9.]+) \|")
+COMMIT = re.compile(r"commit ([0-9a-f]{7,})")
+
+
+def run(checkout: Path, rows: int) -> tuple[dict[str, float], str]:
+    """One fit_bench run in ``checkout``: its best time per measurement, and its commit."""
+    python = checkout / ".venv" / "bin" / "python"
+    out = subprocess.run(
+        [str(python), "bench/fit_bench.py", "--rows", str(rows), "--no-threads", "--repeats", "3"],
+        cwd=checkout,
+        capture_output=True,
+        text=True,
+        check=True,
+        env={k: v for k, v in os.environ.items() if k != "PYTHONPATH"},
+    ).stdout
+    times = {m.group(1): float(m.group(2)) for m in map(ROW.match, out.splitlines()) if m}
+    commit = COMMIT.search(out)
+    return times, commit.group(1) if commit else "?"
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--before", type=Path, required=True)
+    parser.add_argument("--after", type=Path, default=Path("."))
+    parser.add_argument("--rows", type=int, default=1_000_000)
+    parser.add_argument("--rounds", type=int, default=2)
+    parser.add_argument("--write", type=Path, help="append a markdown section to this file")
+    args = parser.parse_args()
+    best: dict[str, dict[str, float]] = {"before": {}, "after": {}}
+    commits = {}
+    for _ in range(args.rounds):
+        for side, checkout in (("before", args.before), ("after", args.after)):
+            times, commits[side] = run(checkout.resolve(), args.rows)
+            for name, t in times.items():
+                best[side][name] = min(t, best[side].get(name, float("inf")))
+    load = os.getloadavg()
+    lines = [
+        f"## Before and after: {args.rows:,} rows x 50 columns, side by side",
+        "",
+        f"- Command: `python bench/compare_builds.py --before {args.before} --after {args.after} "
+        f"--rows {args.rows} --rounds {args.rounds}` (each side runs `bench/fit_bench.py "
+        "--no-threads` in its own checkout and build, alternating)",
+        f"- Date: {datetime.now(timezone.utc):%Y-%m-%d %H:%M} UTC; machine: "
+        f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores; load after "
+        f"{load[0]:.2f}, {load[1]:.2f}, {load[2]:.2f}",
+        f"- Before: commit {commits['before']}; after: commit {commits['after']}; best of "
+        f"{3 * args.rounds} timed runs each",
+        "",
+        "| measurement | before s | after s | after / before |",
+        "|---|---:|---:|---:|",
+    ]
+    for name, before in best["before"].items():
+        after = best["after"].get(name)
+        if after is not None:
+            lines.append(f"| {name} | {before:.4g} | {after:.4g} | {after / before:.2f} |")
+    text = "\n".join(lines)
+    print(text)
+    if args.write:
+        with open(args.write, "a", encoding="utf-8") as f:
+            f.write("\n" + text + "\n")
+
+
+if __name__ == "__main__":
+    main()
