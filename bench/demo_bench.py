@@ -1,4 +1,4 @@
-"""The demo's timing: `make demo` (`python -m treewise.cli demo`) run once, timed, in a fresh folder.
+"""The demo's timing: `make demo` (`python -m treewise.cli demo`) run once, timed, in a new folder.
 
 It measures the wall time and the peak RSS of the demo process (the largest resident set of any
 child, from `getrusage`), records the demo's own closing lines (the edges recovered and the

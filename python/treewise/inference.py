@@ -3,8 +3,9 @@
 Every function takes a fitted :class:`~treewise.DependencyTree` first. The work is exact
 message passing on the tree (or forest) in the Rust core, one row per query, in parallel and
 with the GIL released. In the data given as evidence, a null means *unobserved*, even in a
-column whose codebook has a null category (NaN is a value of its own, docs/column-kinds.md), and a value the codebook has no code for is
-unobserved too (an ``UnseenCategoryWarning`` counts them). A model column the data lacks is
+column whose codebook has a null category (NaN is a value of its own, docs/column-kinds.md),
+and a value the codebook has no code for is unobserved too (an ``UnseenCategoryWarning``
+counts them). A model column the data lacks is
 unobserved in every row. See docs/inference.md.
 """
 
