@@ -231,8 +231,8 @@ def decode_column(
         # The common case, kept values and null only: one take, no copies of the codes.
         gone = codes >= n_kept
         mask = gone if gone.any() else None
-        keys = pa.array(codes.astype(np.int32, copy=False), mask=mask)
-        taken = column.kept.take(keys)
+        plain: Any = pa.array(codes.astype(np.int32, copy=False), mask=mask)
+        taken = column.kept.take(plain)
         return taken if taken.type == dtype else taken.cast(dtype)
     index = codes.astype(np.int64)
     dictionary = column.kept

@@ -173,23 +173,27 @@ def fidelity_table(columns: pa.Table, title: str) -> Table:
     for head, justify in [
         ("column", "left"),
         ("kind", "left"),
-        ("measure", "left"),
-        ("synthetic vs real", "right"),
-        ("noise floor", "right"),
+        ("distance", "right"),
+        ("floor", "right"),
         ("excess", "right"),
-        ("nulls real / synthetic", "right"),
+        ("nulls", "right"),
+        ("synth.", "right"),
     ]:
-        table.add_column(head, justify=justify)  # type: ignore[arg-type]
+        table.add_column(head, justify=justify, no_wrap=True)  # type: ignore[arg-type]
     for r in columns.to_pylist():
         table.add_row(
             r["column"],
             r["kind"],
-            r["measure"],
-            f"{r['distance']:.3f}",
+            f"{r['measure']} {r['distance']:.3f}",
             f"{r['noise_floor']:.3f}",
             f"{r['excess']:+.3f}",
-            f"{r['null_share_real']:.3f} / {r['null_share_synthetic']:.3f}",
+            f"{r['null_share_real']:.3f}",
+            f"{r['null_share_synthetic']:.3f}",
         )
+    table.caption = (
+        "distance: KS (numeric) or total variation (categorical) against real values; floor: "
+        "the same for a bootstrap resample of the real rows; nulls: share in real and synthetic"
+    )
     return table
 
 
