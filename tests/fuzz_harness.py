@@ -123,6 +123,7 @@ class Targets:
         self.np, self.pa, self.treewise = np, pa, treewise
         self.warnings = {
             "CategoryCapWarning": treewise.CategoryCapWarning,
+            "ColumnKindWarning": treewise.ColumnKindWarning,
             "UnseenCategoryWarning": treewise.UnseenCategoryWarning,
             "SkippedFileWarning": treewise.sources.SkippedFileWarning,
         }
