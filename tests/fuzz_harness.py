@@ -36,7 +36,12 @@ HEADER = 28
 SMOKE_RUNS = 300
 
 #: Warnings treewise gives on purpose for odd but valid data.
-EXPECTED_WARNINGS = ("CategoryCapWarning", "UnseenCategoryWarning", "SkippedFileWarning")
+EXPECTED_WARNINGS = (
+    "CategoryCapWarning",
+    "ColumnKindWarning",
+    "UnseenCategoryWarning",
+    "SkippedFileWarning",
+)
 
 
 # -- building inputs from fuzz bytes -------------------------------------------------------------
