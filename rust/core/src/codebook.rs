@@ -217,8 +217,25 @@ fn as_code(k: usize) -> u16 {
     u16::try_from(k).unwrap_or(UNSEEN)
 }
 
+/// Codes of integers: a direct-index table when they span a short range, else a hash map.
+fn integer_lookup<T>(values: &[T], hashed: impl Fn(FxHashMap<T, u16>) -> Lookup) -> Lookup
+where
+    T: Copy + Into<i128> + Eq + std::hash::Hash,
+{
+    let wide: Vec<i128> = values.iter().map(|x| (*x).into()).collect();
+    match Dense::build(&wide) {
+        Some(dense) => Lookup::Dense(dense),
+        None => hashed(
+            values
+                .iter()
+                .enumerate()
+                .map(|(k, x)| (*x, as_code(k)))
+                .collect(),
+        ),
+    }
+}
+
 fn lookup_for(values: &Values) -> Lookup {
-    let indexed = |it: Box<dyn Iterator<Item = i128> + '_>| it.collect::<Vec<_>>();
     match values {
         Values::Bool(v) => {
             let mut codes = [UNSEEN; 2];
@@ -227,28 +244,8 @@ fn lookup_for(values: &Values) -> Lookup {
             }
             Lookup::Bool(codes)
         }
-        Values::Int(v) => {
-            match Dense::build(&indexed(Box::new(v.iter().map(|x| i128::from(*x))))) {
-                Some(dense) => Lookup::Dense(dense),
-                None => Lookup::Int(
-                    v.iter()
-                        .enumerate()
-                        .map(|(k, x)| (*x, as_code(k)))
-                        .collect(),
-                ),
-            }
-        }
-        Values::UInt(v) => {
-            match Dense::build(&indexed(Box::new(v.iter().map(|x| i128::from(*x))))) {
-                Some(dense) => Lookup::Dense(dense),
-                None => Lookup::UInt(
-                    v.iter()
-                        .enumerate()
-                        .map(|(k, x)| (*x, as_code(k)))
-                        .collect(),
-                ),
-            }
-        }
+        Values::Int(v) => integer_lookup(v, Lookup::Int),
+        Values::UInt(v) => integer_lookup(v, Lookup::UInt),
         Values::Str(v) => Lookup::Str(
             v.iter()
                 .enumerate()
