@@ -59,6 +59,13 @@ for t in "${targets[@]}"; do
         cd "$root"
         [ -x .venv/bin/python ] || { echo "fuzz/run.sh: run make build first" >&2; exit 1; }
         mkdir -p "fuzz/corpus/atheris-$t" "fuzz/artifacts/atheris-$t"
+        shopt -s nullglob
+        found=(fuzz/regressions/atheris-$t/*)
+        shopt -u nullglob
+        if [ ${#found[@]} -gt 0 ]; then
+            echo "== atheris $t: replaying ${#found[@]} past findings"
+            .venv/bin/python tests/fuzz_harness.py "$t" "${found[@]}"
+        fi
         echo "== atheris $t: fuzzing for $secs s"
         # shellcheck disable=SC2086
         .venv/bin/python tests/fuzz_harness.py "$t" "fuzz/corpus/atheris-$t" \

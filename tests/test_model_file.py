@@ -232,6 +232,16 @@ def test_forged_huge_length_inside_is_refused(small_file: bytes, tmp_path: Path,
         load_bytes(tmp_path, with_payload(small_file, bytes(payload)))
 
 
+def test_a_column_name_with_nul_is_refused(small_file: bytes, tmp_path: Path) -> None:
+    # Found by the atheris load harness: fit refuses such names, so a model file that has one
+    # loaded but could not score its own samples. The first column's name "a" is payload byte 16.
+    payload = bytearray(small_file[HEADER:])
+    assert payload[16:17] == b"a"
+    payload[16] = 0
+    with pytest.raises(CorruptModelError, match="NUL"):
+        load_bytes(tmp_path, with_payload(small_file, bytes(payload)))
+
+
 def test_header_declaring_a_huge_payload_is_refused(small_file: bytes, tmp_path: Path) -> None:
     data = bytearray(small_file)
     struct.pack_into("<Q", data, 16, 2**63)

@@ -141,6 +141,10 @@ pub fn read_codebook(r: &mut Reader<'_>) -> Result<Codebook> {
     let mut columns = Vec::with_capacity(n);
     for _ in 0..n {
         let name = r.str()?;
+        if name.contains('\0') {
+            // fit refuses such names (sources.check_columns): a file that has one is forged.
+            return Err(bad("a column name contains the NUL character"));
+        }
         let family = family_from_code(r.u8()?)
             .ok_or_else(|| bad(format!("column '{name}' has an unknown value family")))?;
         let has_other = flag(r)?;

@@ -109,6 +109,9 @@ impl CodebookBuilder {
         let mut columns = Vec::with_capacity(n);
         for _ in 0..n {
             let name = r.str()?;
+            if name.contains('\0') {
+                return Err(corrupt_tally("a column name contains the NUL character"));
+            }
             let nulls = r.u64()?;
             let family = match r.u8()? {
                 0 => None,
