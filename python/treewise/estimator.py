@@ -30,7 +30,7 @@ from treewise.errors import DataError, NotFittedError, SchemaError
 from treewise.files import read_model_file, write_atomically
 from treewise.pairstats import PairStats
 from treewise.params import Params
-from treewise.passes import TypeRecorder, count_pairs, learn_codebook
+from treewise.passes import TypeRecorder, count_pairs, learn_and_count
 from treewise.progress import PassProgress, wants_progress
 from treewise.sources import (
     BATCH_ROWS,
@@ -204,9 +204,13 @@ class DependencyTree(ExactCounts, Params):
 
         Notes
         -----
-        Without ``codebook``, a replayable source is read twice: once to learn each column's
-        codes, once to count. A one-shot stream is read once and spooled to a temporary Arrow
-        file (in the system's temporary directory) for the counting pass.
+        Without ``codebook``, the data is read once: pairs are counted with provisional codes
+        while each column's codes are learned, then recoded to the final codes (exactly the
+        counts a second pass would give). A column with more than 4,096 distinct values (a
+        numeric column to be binned, say), or provisional tables past 256 MiB, makes the fit
+        read the data a second time to count; the progress line says so. A one-shot stream is
+        spooled to a temporary Arrow file (in the system's temporary directory) meanwhile, in
+        case it must be read again.
         """
         max_categories = check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
         n_bins = check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
@@ -223,17 +227,10 @@ class DependencyTree(ExactCounts, Params):
         types = TypeRecorder(names)
         with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
             if given is None:
-                with learn_codebook(
+                # Columns left out of the model (identifiers, all null) are not counted.
+                chosen, stats, types = learn_and_count(
                     source, names, max_categories, n_bins, rows, bar, types, kinds
-                ) as (learned, counting):
-                    # Columns left out of the model (identifiers, all null) are not counted.
-                    kept = list(learned.names)
-                    stats = _core.PairStats(learned)
-                    # A spooled stream holds decoded values: its types say nothing new.
-                    seen = types if counting is source else TypeRecorder(names)
-                    count_pairs(counting, kept, learned, stats, rows, bar, seen)
-                    chosen = learned
-                    types = types.select(kept)
+                )
             else:
                 chosen = given.select(names)
                 stats = _core.PairStats(chosen)

@@ -1,4 +1,9 @@
-"""The passes over a source: learn a codebook, then count every pair, one batch at a time."""
+"""The passes over a source: learn a codebook and count every pair, one batch at a time.
+
+A fit reads its data once (`learn_and_count`): the pairs are counted with provisional codes
+while the codebook is learned, then recoded. Only when the provisional tables would pass
+`ONE_PASS_CELLS` does it read the data a second time to count.
+"""
 
 from __future__ import annotations
 
@@ -17,7 +22,21 @@ from treewise.errors import CategoryCapWarning, ColumnKindWarning, warn
 from treewise.progress import PassProgress
 from treewise.sources import BatchLoop, Source, open_source
 
-__all__ = ["TypeRecorder", "count_pairs", "learn_codebook", "warn_caps", "warn_notes"]
+__all__ = [
+    "ONE_PASS_CELLS",
+    "TypeRecorder",
+    "count_pairs",
+    "learn_and_count",
+    "learn_codebook",
+    "warn_caps",
+    "warn_notes",
+]
+
+#: The most cells (8 bytes each) the one-pass fit's provisional pair tables may hold before it
+#: falls back to a second pass: 2^25 cells, 256 MiB. Each column also takes at most
+#: ``_core.PROVISIONAL_CODES`` provisional codes. ``TREEWISE_ONE_PASS=0`` in the environment
+#: forces two passes (for tests and comparisons).
+ONE_PASS_CELLS = 1 << 25
 
 
 class TypeRecorder:
@@ -183,9 +202,67 @@ def count_pairs(
     batch_rows: int,
     bar: PassProgress,
     types: TypeRecorder,
+    title: str = "counting pairs",
 ) -> None:
     """The counting pass: encode each batch with ``codebook`` and add its pair counts."""
-    with BatchLoop(source, names, batch_rows, bar, "counting pairs") as batches:
+    with BatchLoop(source, names, batch_rows, bar, title) as batches:
         for batch in batches:
             types.see(batch)
             stats.update(codebook, batch)
+
+
+def _cell_limit() -> int:
+    return 0 if os.environ.get("TREEWISE_ONE_PASS", "").strip() == "0" else ONE_PASS_CELLS
+
+
+def learn_and_count(
+    source: Source,
+    names: list[str],
+    max_categories: int,
+    n_bins: int,
+    batch_rows: int,
+    bar: PassProgress,
+    types: TypeRecorder,
+    kinds: dict[str, str] | None = None,
+) -> tuple[_core.Codebook, _core.PairStats, TypeRecorder]:
+    """Learn the codebook and count every pair: the codebook, the counts, the kept columns' types.
+
+    One pass counts with provisional codes (one per distinct value) and recodes at the end,
+    exactly as a second pass would count. When a column has more than
+    ``_core.PROVISIONAL_CODES`` distinct values or the provisional tables would pass
+    ``ONE_PASS_CELLS``, the pass only tallies from then on and a second pass counts; the
+    progress line says so. A one-shot stream is spooled meanwhile, in case it must be read again.
+    """
+    counter = _core.OnePass(names, _cell_limit())
+    spool = None if source.replayable else _Spool()
+    try:
+        with BatchLoop(source, names, batch_rows, bar, "learning codes, counting pairs") as batches:
+            for batch in batches:
+                types.see(batch)
+                counter.observe(batch)
+                if spool is not None:
+                    spool.write(batch)
+        fallback = counter.fallback
+        learned, caps, notes, stats = counter.finish(
+            max_categories, n_bins, list((kinds or {}).items())
+        )
+        warn_caps(caps, max_categories)
+        warn_notes(notes)
+        kept = list(learned.names)
+        if stats is None:
+            stats = _core.PairStats(learned)
+            counting = source
+            seen = types
+            if spool is not None:
+                spool.close()
+                counting = open_source(spool.paths)
+                # A spooled stream holds decoded values: its types say nothing new.
+                seen = TypeRecorder(names)
+            why = f"second pass: {fallback}" if fallback else "second pass"
+            count_pairs(
+                counting, kept, learned, stats, batch_rows, bar, seen, f"counting pairs ({why})"
+            )
+        return learned, stats, types.select(kept)
+    finally:
+        if spool is not None:
+            spool.remove()

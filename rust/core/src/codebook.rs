@@ -536,6 +536,30 @@ impl ColumnCode {
         }
     }
 
+    /// The code of one value, exactly as [`ColumnCode::encode`] codes it in an array of the
+    /// column's family (UNSEEN when it has none): the one-pass fit maps its provisional codes
+    /// to the final ones with it.
+    pub(crate) fn code_of(&self, value: Scalar<'_>) -> u16 {
+        let null = self.null_code().unwrap_or(UNSEEN);
+        let known = |c: u16| self.value_code(Some(c).filter(|c| *c != UNSEEN));
+        match (value, &self.lookup) {
+            (Scalar::Null, _) => null,
+            (Scalar::Bool(b), Lookup::Bool(codes)) => known(codes[usize::from(b)]),
+            (Scalar::Int(x), Lookup::Int(map)) => self.value_code(map.get(&x).copied()),
+            (Scalar::UInt(x), Lookup::UInt(map)) => self.value_code(map.get(&x).copied()),
+            (Scalar::Int(x), Lookup::Dense(dense)) => known(dense.get(x.into())),
+            (Scalar::UInt(x), Lookup::Dense(dense)) => known(dense.get(x.into())),
+            (Scalar::Str(x), Lookup::Str(map)) => self.value_code(map.get(x).copied()),
+            (Scalar::Float(x), Lookup::Float(map)) => {
+                self.value_code(map.get(&canonical(x).to_bits()).copied())
+            }
+            (Scalar::Int(x), Lookup::None) => self.number_code(x as f64),
+            (Scalar::UInt(x), Lookup::None) => self.number_code(x as f64),
+            (Scalar::Float(x), Lookup::None) => self.number_code(x),
+            _ => UNSEEN,
+        }
+    }
+
     fn encode_plain(&self, array: &dyn Array, out: &mut Vec<u16>) -> Result<()> {
         let kind = classify(&self.name, array.data_type())?;
         if kind.is_some_and(|k| k != self.family) {
@@ -586,6 +610,18 @@ impl ColumnCode {
             }
         }
     }
+}
+
+/// One value of a column, as the Arrow readers in `values` yield it.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub(crate) enum Scalar<'a> {
+    Null,
+    Bool(bool),
+    /// Signed integers, and times as their integer count of units.
+    Int(i64),
+    UInt(u64),
+    Str(&'a str),
+    Float(f64),
 }
 
 /// The codebook of a whole table.

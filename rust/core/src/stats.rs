@@ -7,6 +7,8 @@ use rayon::prelude::*;
 use crate::error::{Error, Result};
 use crate::kernels::{self, Kernel};
 
+mod remap;
+
 /// The largest number of table cells we agree to hold (2^33 cells = 64 GiB of u64).
 pub const MAX_CELLS: u64 = 1 << 33;
 

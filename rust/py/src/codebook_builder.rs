@@ -2,7 +2,7 @@
 
 use pyo3::prelude::*;
 use pyo3::types::PyBytes;
-use treewise_core::{CodebookBuilder, KindChoice};
+use treewise_core::{CodebookBuilder, KindChoice, Learned};
 
 use crate::arrow_import::import_batch;
 use crate::codebook::PyCodebook;
@@ -10,9 +10,9 @@ use crate::errors::{detached, to_py};
 use crate::slices;
 
 /// What the cap did to one column: (column, values capped, rows capped).
-type CapTuple = (String, usize, u64);
+pub(crate) type CapTuple = (String, usize, u64);
 /// A note on one column: (column, "left out" or "constant", message).
-type NoteTuple = (String, String, String);
+pub(crate) type NoteTuple = (String, String, String);
 
 /// The codebook pass: tallies every batch, then fixes the codes.
 #[pyclass(name = "CodebookBuilder", module = "treewise._core")]
@@ -82,36 +82,45 @@ impl PyCodebookBuilder {
         n_bins: usize,
         kinds: Vec<(String, String)>,
     ) -> PyResult<(PyCodebook, Vec<CapTuple>, Vec<NoteTuple>)> {
-        let kinds = kinds
-            .into_iter()
-            .map(|(column, kind)| match KindChoice::from_name(&kind) {
-                Some(k) => Ok((column, k)),
-                None => Err(to_py(treewise_core::Error::Invalid(format!(
-                    "kinds[{column:?}] is {kind:?}; use 'auto', 'categorical', 'numeric' or \
-                     'ignore'"
-                )))),
-            })
-            .collect::<PyResult<Vec<_>>>()?;
+        let kinds = parse_kinds(kinds)?;
         let builder = self.inner.take().ok_or_else(finished_error)?;
         let learned = detached(py, move || builder.finish(max_categories, n_bins, &kinds))?;
-        let caps = learned
-            .caps
-            .into_iter()
-            .map(|c| (c.column, c.values_capped, c.rows_capped))
-            .collect();
-        let notes = learned
-            .notes
-            .into_iter()
-            .map(|n| (n.column, n.kind.to_string(), n.message))
-            .collect();
-        Ok((
-            PyCodebook {
-                inner: learned.codebook,
-            },
-            caps,
-            notes,
-        ))
+        Ok(learned_parts(learned))
     }
+}
+
+/// `kinds` as (column, kind name) pairs, checked.
+pub(crate) fn parse_kinds(kinds: Vec<(String, String)>) -> PyResult<Vec<(String, KindChoice)>> {
+    kinds
+        .into_iter()
+        .map(|(column, kind)| match KindChoice::from_name(&kind) {
+            Some(k) => Ok((column, k)),
+            None => Err(to_py(treewise_core::Error::Invalid(format!(
+                "kinds[{column:?}] is {kind:?}; use 'auto', 'categorical', 'numeric' or 'ignore'"
+            )))),
+        })
+        .collect()
+}
+
+/// The end of a codebook pass for Python: the codebook, what the cap did, notes on columns.
+pub(crate) fn learned_parts(learned: Learned) -> (PyCodebook, Vec<CapTuple>, Vec<NoteTuple>) {
+    let caps = learned
+        .caps
+        .into_iter()
+        .map(|c| (c.column, c.values_capped, c.rows_capped))
+        .collect();
+    let notes = learned
+        .notes
+        .into_iter()
+        .map(|n| (n.column, n.kind.to_string(), n.message))
+        .collect();
+    (
+        PyCodebook {
+            inner: learned.codebook,
+        },
+        caps,
+        notes,
+    )
 }
 
 impl PyCodebookBuilder {

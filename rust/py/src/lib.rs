@@ -7,6 +7,7 @@ mod codebook_builder;
 mod errors;
 mod infer;
 mod model;
+mod one_pass;
 mod pair_stats;
 mod threads;
 
@@ -46,6 +47,8 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_class::<codebook_builder::PyCodebookBuilder>()?;
     m.add_class::<codebook::PyCodebook>()?;
     m.add_class::<pair_stats::PyPairStats>()?;
+    m.add_class::<one_pass::PyOnePass>()?;
+    m.add("PROVISIONAL_CODES", treewise_core::tally::PROVISIONAL_CODES)?;
     m.add_class::<model::PyTreeModel>()?;
     m.add_class::<infer::PyTreeInference>()?;
     m.add("SAMPLE_BLOCK", treewise_core::model::SAMPLE_BLOCK)?;

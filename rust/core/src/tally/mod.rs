@@ -3,9 +3,11 @@
 
 mod file;
 mod kind;
+mod provisional;
 
 pub(crate) use file::{family_code, family_from_code};
 pub use kind::{KindChoice, Learned, Note};
+pub use provisional::{OnePass, PROVISIONAL_CODES};
 
 use arrow_array::{Array, RecordBatch};
 use rayon::prelude::*;
@@ -291,9 +293,31 @@ struct ColumnTally {
 
 impl ColumnTally {
     fn observe(&mut self, array: &dyn Array) -> Result<()> {
-        let Some(kind) = classify(&self.name, array.data_type())? else {
+        if self.family_of(array)?.is_none() {
             self.nulls += array.len() as u64;
             return Ok(());
+        }
+        match dictionary_keys(&self.name, array)? {
+            Some((keys, dict_values)) => {
+                let mut weights = vec![0u64; dict_values.len()];
+                for k in &keys {
+                    match k {
+                        Some(k) => weights[*k] += 1,
+                        None => self.nulls += 1,
+                    }
+                }
+                self.add(dict_values, &|i| weights[i])
+            }
+            None if self.add_dense(array)? => Ok(()),
+            None => self.add(array, &|_| 1),
+        }
+    }
+
+    /// The value family of `array` (None for the `null` type), which the column takes on at its
+    /// first typed batch and must keep: a change of family between batches is an error.
+    fn family_of(&mut self, array: &dyn Array) -> Result<Option<Kind>> {
+        let Some(kind) = classify(&self.name, array.data_type())? else {
+            return Ok(None);
         };
         match self.family {
             None => {
@@ -311,20 +335,7 @@ impl ColumnTally {
             }
             Some(_) => {}
         }
-        match dictionary_keys(&self.name, array)? {
-            Some((keys, dict_values)) => {
-                let mut weights = vec![0u64; dict_values.len()];
-                for k in &keys {
-                    match k {
-                        Some(k) => weights[*k] += 1,
-                        None => self.nulls += 1,
-                    }
-                }
-                self.add(dict_values, &|i| weights[i])
-            }
-            None if self.add_dense(array)? => Ok(()),
-            None => self.add(array, &|_| 1),
-        }
+        Ok(Some(kind))
     }
 
     /// Tallies a plain integer array whose values span a short range with a direct count per

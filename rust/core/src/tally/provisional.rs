@@ -1,0 +1,512 @@
+//! The one-pass fit: pair counts taken with provisional codes (one per distinct value, in the
+//! order first seen) while the tallies are still being gathered. When the codebook is fixed, each
+//! provisional code maps to its final code and the counts are recoded: a coarser table is a sum
+//! of rows and columns of a finer one, so the result equals counting again with the final codes,
+//! bit for bit. A column with more than [`PROVISIONAL_CODES`] distinct values, or provisional
+//! tables past the cell limit, ends the counting: the pass goes on as a plain tally and the
+//! caller counts in a second pass.
+
+use arrow_array::{Array, RecordBatch};
+use rayon::prelude::*;
+use rustc_hash::FxHashMap;
+
+use super::kind::Learned;
+use super::{CodebookBuilder, ColumnTally, KindChoice, Tally};
+use crate::codebook::{canonical, check_names, Scalar, DENSE_SPAN, UNSEEN};
+use crate::error::{Error, Result};
+use crate::stats::{cell_count, PairStats};
+use crate::values::{dictionary_keys, each_bool, each_f64, each_i64, each_str, each_u64, Kind};
+
+/// The most provisional codes one column may take before the pass stops counting.
+pub const PROVISIONAL_CODES: usize = 4096;
+
+/// One distinct value of a column, in provisional code order.
+#[derive(Clone, Debug)]
+enum Value {
+    Null,
+    Bool(bool),
+    Int(i64),
+    UInt(u64),
+    Str(Box<str>),
+    Float(f64),
+}
+
+impl Value {
+    fn scalar(&self) -> Scalar<'_> {
+        match self {
+            Value::Null => Scalar::Null,
+            Value::Bool(b) => Scalar::Bool(*b),
+            Value::Int(x) => Scalar::Int(*x),
+            Value::UInt(x) => Scalar::UInt(*x),
+            Value::Str(s) => Scalar::Str(s),
+            Value::Float(x) => Scalar::Float(*x),
+        }
+    }
+}
+
+/// The column has more distinct values than [`PROVISIONAL_CODES`].
+struct Full;
+
+/// A column's provisional codes: its distinct values so far and a lookup per value family.
+#[derive(Default)]
+struct Dict {
+    values: Vec<Value>,
+    null: Option<u16>,
+    bools: [Option<u16>; 2],
+    ints: FxHashMap<i64, u16>,
+    uints: FxHashMap<u64, u16>,
+    strs: FxHashMap<Box<str>, u16>,
+    floats: FxHashMap<u64, u16>,
+    /// Codes of the integers in `base..base + dense.len()` by direct index (UNSEEN: not seen
+    /// yet), while the column's integers span less than [`DENSE_SPAN`].
+    dense: Vec<u16>,
+    base: i128,
+    /// The integers spread too wide for the direct index: hashing only, from now on.
+    wide: bool,
+}
+
+impl Dict {
+    fn push(&mut self, value: Value) -> std::result::Result<u16, Full> {
+        if self.values.len() >= PROVISIONAL_CODES {
+            return Err(Full);
+        }
+        let code = u16::try_from(self.values.len()).map_err(|_| Full)?;
+        self.values.push(value);
+        Ok(code)
+    }
+
+    fn null_code(&mut self) -> std::result::Result<u16, Full> {
+        match self.null {
+            Some(c) => Ok(c),
+            None => {
+                let c = self.push(Value::Null)?;
+                self.null = Some(c);
+                Ok(c)
+            }
+        }
+    }
+
+    /// Appends the provisional codes of `array` (of value family `family`, None for the `null`
+    /// type) to `out`; Ok(false) when the column ran out of provisional codes.
+    fn encode(
+        &mut self,
+        name: &str,
+        family: Option<Kind>,
+        array: &dyn Array,
+        out: &mut Vec<u16>,
+    ) -> Result<bool> {
+        let start = out.len();
+        let done = match dictionary_keys(name, array)? {
+            Some((keys, dict_values)) => {
+                let mut dict_codes = Vec::with_capacity(dict_values.len());
+                if !self.encode_plain(family, dict_values, &mut dict_codes)? {
+                    return Ok(false);
+                }
+                let null = if keys.iter().any(Option::is_none) {
+                    match self.null_code() {
+                        Ok(c) => c,
+                        Err(Full) => return Ok(false),
+                    }
+                } else {
+                    UNSEEN
+                };
+                out.extend(keys.iter().map(|k| k.map_or(null, |k| dict_codes[k])));
+                true
+            }
+            None => self.encode_plain(family, array, out)?,
+        };
+        debug_assert!(!done || out.len() - start == array.len());
+        Ok(done)
+    }
+
+    fn encode_plain(
+        &mut self,
+        family: Option<Kind>,
+        array: &dyn Array,
+        out: &mut Vec<u16>,
+    ) -> Result<bool> {
+        out.reserve(array.len());
+        let mut full = false;
+        match family {
+            None => match self.null_code() {
+                Ok(c) => out.extend(std::iter::repeat_n(c, array.len())),
+                Err(Full) => full = true,
+            },
+            Some(Kind::Bool) => each_bool(array, |v| {
+                let code = match v {
+                    None => self.null_code(),
+                    Some(b) => match self.bools[usize::from(b)] {
+                        Some(c) => Ok(c),
+                        None => self.push(Value::Bool(b)).inspect(|c| {
+                            self.bools[usize::from(b)] = Some(*c);
+                        }),
+                    },
+                };
+                out.push(code.unwrap_or_else(|Full| {
+                    full = true;
+                    0
+                }));
+            })?,
+            Some(Kind::Int | Kind::Time) => return self.encode_ints(array, false, out),
+            Some(Kind::UInt) => return self.encode_ints(array, true, out),
+            Some(Kind::Str) => each_str(array, |v| {
+                let code = match v {
+                    None => self.null_code(),
+                    Some(s) => match self.strs.get(s) {
+                        Some(c) => Ok(*c),
+                        None => self.push(Value::Str(s.into())).inspect(|c| {
+                            self.strs.insert(s.into(), *c);
+                        }),
+                    },
+                };
+                out.push(code.unwrap_or_else(|Full| {
+                    full = true;
+                    0
+                }));
+            })?,
+            Some(Kind::Float) => each_f64(array, |v| {
+                let code = match v {
+                    None => self.null_code(),
+                    Some(x) => {
+                        let x = canonical(x);
+                        match self.floats.get(&x.to_bits()) {
+                            Some(c) => Ok(*c),
+                            None => self.push(Value::Float(x)).inspect(|c| {
+                                self.floats.insert(x.to_bits(), *c);
+                            }),
+                        }
+                    }
+                };
+                out.push(code.unwrap_or_else(|Full| {
+                    full = true;
+                    0
+                }));
+            })?,
+        }
+        Ok(!full)
+    }
+
+    /// Integers: by direct index while they span a short range, else by hash.
+    fn encode_ints(
+        &mut self,
+        array: &dyn Array,
+        unsigned: bool,
+        out: &mut Vec<u16>,
+    ) -> Result<bool> {
+        let walk = |f: &mut dyn FnMut(Option<i128>)| -> Result<()> {
+            if unsigned {
+                each_u64(array, |v| f(v.map(i128::from)))
+            } else {
+                each_i64(array, |v| f(v.map(i128::from)))
+            }
+        };
+        let value = |x: i128| {
+            if unsigned {
+                Value::UInt(u64::try_from(x).unwrap_or_default())
+            } else {
+                Value::Int(i64::try_from(x).unwrap_or_default())
+            }
+        };
+        if !self.wide {
+            let (mut low, mut high) = (i128::MAX, i128::MIN);
+            walk(&mut |v| {
+                if let Some(x) = v {
+                    low = low.min(x);
+                    high = high.max(x);
+                }
+            })?;
+            if !self.dense.is_empty() {
+                low = low.min(self.base);
+                high = high.max(self.base + self.dense.len() as i128 - 1);
+            }
+            if low <= high && high - low < DENSE_SPAN {
+                self.widen_dense(low, high);
+                let mut full = false;
+                walk(&mut |v| {
+                    let code = match v {
+                        None => self.null_code(),
+                        Some(x) => {
+                            let i = usize::try_from(x - self.base).unwrap_or(usize::MAX);
+                            match self.dense.get(i).copied() {
+                                Some(c) if c != UNSEEN => Ok(c),
+                                _ => self.push(value(x)).inspect(|c| {
+                                    if let Some(slot) = self.dense.get_mut(i) {
+                                        *slot = *c;
+                                    }
+                                }),
+                            }
+                        }
+                    };
+                    out.push(code.unwrap_or_else(|Full| {
+                        full = true;
+                        0
+                    }));
+                })?;
+                return Ok(!full);
+            }
+            if low <= high {
+                self.go_wide();
+            }
+        }
+        let mut full = false;
+        walk(&mut |v| {
+            let code = match v {
+                None => self.null_code(),
+                Some(x) => {
+                    let found = if unsigned {
+                        u64::try_from(x)
+                            .ok()
+                            .and_then(|k| self.uints.get(&k).copied())
+                    } else {
+                        i64::try_from(x)
+                            .ok()
+                            .and_then(|k| self.ints.get(&k).copied())
+                    };
+                    match found {
+                        Some(c) => Ok(c),
+                        None => self.push(value(x)).inspect(|c| match value(x) {
+                            Value::UInt(k) => {
+                                self.uints.insert(k, *c);
+                            }
+                            Value::Int(k) => {
+                                self.ints.insert(k, *c);
+                            }
+                            _ => {}
+                        }),
+                    }
+                }
+            };
+            out.push(code.unwrap_or_else(|Full| {
+                full = true;
+                0
+            }));
+        })?;
+        Ok(!full)
+    }
+
+    /// Makes the direct index cover `low..=high` (a span under [`DENSE_SPAN`]).
+    fn widen_dense(&mut self, low: i128, high: i128) {
+        let len = usize::try_from(high - low + 1).unwrap_or(0);
+        if !self.dense.is_empty() && low == self.base && len == self.dense.len() {
+            return;
+        }
+        let mut dense = vec![UNSEEN; len];
+        if let Ok(shift) = usize::try_from(self.base - low) {
+            if !self.dense.is_empty() {
+                dense[shift..shift + self.dense.len()].copy_from_slice(&self.dense);
+            }
+        }
+        self.dense = dense;
+        self.base = low;
+    }
+
+    /// Leaves the direct index for hashing, with every integer seen so far in the hash maps.
+    fn go_wide(&mut self) {
+        for (k, v) in self.values.iter().enumerate() {
+            let c = u16::try_from(k).unwrap_or(UNSEEN);
+            match v {
+                Value::Int(x) => {
+                    self.ints.insert(*x, c);
+                }
+                Value::UInt(x) => {
+                    self.uints.insert(*x, c);
+                }
+                _ => {}
+            }
+        }
+        self.dense = Vec::new();
+        self.wide = true;
+    }
+
+    /// Adds the values counted so far (`counts` per provisional code) to the column's tally.
+    fn fill_tally(&self, column: &mut ColumnTally, counts: &[u64]) -> Result<()> {
+        for (value, &c) in self.values.iter().zip(counts) {
+            if c == 0 {
+                continue;
+            }
+            match (value, &mut column.tally) {
+                (Value::Null, _) => column.nulls += c,
+                (Value::Bool(b), Tally::Bool(t)) => t[usize::from(*b)] += c,
+                (Value::Int(x), Tally::Int(m)) => *m.entry(*x).or_default() += c,
+                (Value::UInt(x), Tally::UInt(m)) => *m.entry(*x).or_default() += c,
+                (Value::Str(s), Tally::Str(m)) => *m.entry(s.clone()).or_default() += c,
+                (Value::Float(x), Tally::Float(f)) => f.add(*x, c),
+                _ => {
+                    return Err(Error::Invalid(format!(
+                        "internal error: column '{}' has a provisional value of another type than \
+                         its tally",
+                        column.name
+                    )))
+                }
+            }
+        }
+        column.bound_distinct();
+        Ok(())
+    }
+}
+
+/// The state while counting with provisional codes.
+struct Counting {
+    dicts: Vec<Dict>,
+    stats: PairStats,
+}
+
+/// The codebook pass that also counts every pair, so that one read of the data is enough.
+pub struct OnePass {
+    builder: CodebookBuilder,
+    counting: Option<Counting>,
+    cell_limit: u64,
+    fallback: Option<String>,
+}
+
+impl OnePass {
+    /// A pass over the named columns whose provisional pair tables may hold at most
+    /// `cell_limit` cells (8 bytes each).
+    pub fn new(names: Vec<String>, cell_limit: u64) -> Result<Self> {
+        let d = names.len();
+        Ok(OnePass {
+            builder: CodebookBuilder::new(names),
+            counting: Some(Counting {
+                dicts: (0..d).map(|_| Dict::default()).collect(),
+                stats: PairStats::new(vec![0; d])?,
+            }),
+            cell_limit,
+            fallback: None,
+        })
+    }
+
+    /// Rows observed so far.
+    pub fn rows(&self) -> u64 {
+        self.builder.rows
+    }
+
+    /// Why the pass stopped counting (None while it still counts).
+    pub fn fallback(&self) -> Option<&str> {
+        self.fallback.as_deref()
+    }
+
+    /// Tallies one batch and, while the provisional state stays within bounds, counts it.
+    pub fn observe(&mut self, batch: &RecordBatch) -> Result<()> {
+        let Some(counting) = &mut self.counting else {
+            return self.builder.observe(batch);
+        };
+        let columns = &mut self.builder.columns;
+        check_names(columns.iter().map(|c| c.name.as_str()), batch)?;
+        let encoded: Vec<Option<Vec<u16>>> = columns
+            .par_iter_mut()
+            .zip(counting.dicts.par_iter_mut())
+            .zip(batch.columns().par_iter())
+            .map(|((column, dict), array)| {
+                let family = column.family_of(array.as_ref())?;
+                let mut out = Vec::with_capacity(array.len());
+                let fits = dict.encode(&column.name, family, array.as_ref(), &mut out)?;
+                Ok(fits.then_some(out))
+            })
+            .collect::<Result<_>>()?;
+        let cards: Vec<usize> = counting.dicts.iter().map(|d| d.values.len()).collect();
+        let why = if let Some(i) = encoded.iter().position(Option::is_none) {
+            Some(format!(
+                "column '{}' has more than {PROVISIONAL_CODES} distinct values",
+                columns[i].name
+            ))
+        } else if cell_count(&cards) > self.cell_limit {
+            Some(format!(
+                "the provisional pair tables would hold {} cells, past the limit of {}",
+                cell_count(&cards),
+                self.cell_limit
+            ))
+        } else {
+            None
+        };
+        if let Some(why) = why {
+            self.fall_back(why)?;
+            return self.builder.observe(batch);
+        }
+        let codes: Vec<Vec<u16>> = encoded.into_iter().flatten().collect();
+        if cards != counting.stats.cardinalities() {
+            let keep: Vec<(usize, Vec<u16>)> = counting
+                .stats
+                .cardinalities()
+                .iter()
+                .enumerate()
+                .map(|(i, &r)| (i, (0..r).map(|c| c as u16).collect()))
+                .collect();
+            counting.stats = counting.stats.recode(&keep, cards)?;
+        }
+        counting.stats.add_codes(&codes)?;
+        self.builder.rows += batch.num_rows() as u64;
+        Ok(())
+    }
+
+    /// Moves the counts so far into the tallies; the rest of the pass only tallies.
+    fn fall_back(&mut self, why: String) -> Result<()> {
+        if let Some(counting) = self.counting.take() {
+            counting.fill_tallies(&mut self.builder)?;
+        }
+        self.fallback = Some(why);
+        Ok(())
+    }
+
+    /// Fixes the codes (see [`CodebookBuilder::finish`]) and, when the whole pass was counted,
+    /// returns the pair statistics over the final codes.
+    pub fn finish(
+        mut self,
+        max_categories: usize,
+        n_bins: usize,
+        kinds: &[(String, KindChoice)],
+    ) -> Result<(Learned, Option<PairStats>)> {
+        let names: Vec<String> = self
+            .builder
+            .columns
+            .iter()
+            .map(|c| c.name.clone())
+            .collect();
+        let counting = self.counting.take();
+        if let Some(c) = &counting {
+            c.fill_tallies(&mut self.builder)?;
+        }
+        let learned = self.builder.finish(max_categories, n_bins, kinds)?;
+        let Some(counting) = counting else {
+            return Ok((learned, None));
+        };
+        let cards = counting.stats.cardinalities();
+        let keep = learned
+            .codebook
+            .columns()
+            .iter()
+            .map(|code| {
+                let i = names.iter().position(|n| n == code.name()).ok_or_else(|| {
+                    Error::Invalid("internal error: a kept column vanished".into())
+                })?;
+                let counts = counting.stats.marginal(i);
+                let map = counting.dicts[i].values[..cards[i]]
+                    .iter()
+                    .zip(counts)
+                    .map(|(v, &c)| match code.code_of(v.scalar()) {
+                        // A code never counted adds nothing wherever it goes.
+                        UNSEEN if c == 0 => Ok(0),
+                        UNSEEN => Err(Error::Invalid(format!(
+                            "internal error: column '{}' has a counted value without a final code",
+                            code.name()
+                        ))),
+                        k => Ok(k),
+                    })
+                    .collect::<Result<Vec<u16>>>()?;
+                Ok((i, map))
+            })
+            .collect::<Result<Vec<_>>>()?;
+        let stats = counting
+            .stats
+            .recode(&keep, learned.codebook.cardinalities())?;
+        Ok((learned, Some(stats)))
+    }
+}
+
+impl Counting {
+    fn fill_tallies(&self, builder: &mut CodebookBuilder) -> Result<()> {
+        for (i, (dict, column)) in self.dicts.iter().zip(&mut builder.columns).enumerate() {
+            dict.fill_tally(column, self.stats.marginal(i))?;
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,86 @@
+//! The OnePass class: the codebook pass that also counts every pair (see `tally::provisional`).
+
+use pyo3::prelude::*;
+use treewise_core::tally::OnePass;
+
+use crate::arrow_import::import_batch;
+use crate::codebook::PyCodebook;
+use crate::codebook_builder::{learned_parts, parse_kinds, CapTuple, NoteTuple};
+use crate::errors::{detached, to_py};
+use crate::pair_stats::PyPairStats;
+use crate::slices;
+
+/// Tallies every batch and counts its pairs with provisional codes, so that a fit reads the
+/// data once; `finish` returns the pair statistics too, or None when the pass had to stop
+/// counting (`fallback` says why) and a second pass must count.
+#[pyclass(name = "OnePass", module = "treewise._core")]
+pub(crate) struct PyOnePass {
+    inner: Option<OnePass>,
+}
+
+#[pymethods]
+impl PyOnePass {
+    #[new]
+    fn new(names: Vec<String>, cell_limit: u64) -> PyResult<Self> {
+        let inner = OnePass::new(names, cell_limit).map_err(to_py)?;
+        Ok(PyOnePass { inner: Some(inner) })
+    }
+
+    /// Tallies and counts one Arrow record batch (any object with `__arrow_c_array__`).
+    fn observe(&mut self, py: Python<'_>, batch: &Bound<'_, PyAny>) -> PyResult<()> {
+        let batch = import_batch(batch)?;
+        let pass = self.inner.as_mut().ok_or_else(finished_error)?;
+        for slice in slices(&batch) {
+            detached(py, || pass.observe(&slice))?;
+            py.check_signals()?;
+        }
+        Ok(())
+    }
+
+    /// Rows observed so far.
+    #[getter]
+    fn rows(&self) -> u64 {
+        self.inner.as_ref().map_or(0, OnePass::rows)
+    }
+
+    /// Why the pass stopped counting, or None while it still counts.
+    #[getter]
+    fn fallback(&self) -> Option<String> {
+        self.inner
+            .as_ref()
+            .and_then(|p| p.fallback().map(str::to_string))
+    }
+
+    /// Fixes the codes as `CodebookBuilder.finish` does. Returns the codebook, the caps, the
+    /// notes, and the pair statistics over the final codes (None after a fallback).
+    #[pyo3(signature = (max_categories, n_bins, kinds = Vec::new()))]
+    fn finish(
+        &mut self,
+        py: Python<'_>,
+        max_categories: usize,
+        n_bins: usize,
+        kinds: Vec<(String, String)>,
+    ) -> PyResult<(
+        PyCodebook,
+        Vec<CapTuple>,
+        Vec<NoteTuple>,
+        Option<PyPairStats>,
+    )> {
+        let kinds = parse_kinds(kinds)?;
+        let pass = self.inner.take().ok_or_else(finished_error)?;
+        let (learned, stats) = detached(py, move || pass.finish(max_categories, n_bins, &kinds))?;
+        let (codebook, caps, notes) = learned_parts(learned);
+        Ok((
+            codebook,
+            caps,
+            notes,
+            stats.map(|inner| PyPairStats { inner }),
+        ))
+    }
+}
+
+fn finished_error() -> PyErr {
+    to_py(treewise_core::Error::Invalid(
+        "this one-pass fit has already finished".into(),
+    ))
+}
