@@ -193,6 +193,9 @@ impl Dict {
         unsigned: bool,
         out: &mut Vec<u16>,
     ) -> Result<bool> {
+        if let Some(done) = self.encode_native(array, unsigned, out)? {
+            return Ok(done);
+        }
         let walk = |f: &mut dyn FnMut(Option<i128>)| -> Result<()> {
             if unsigned {
                 each_u64(array, |v| f(v.map(i128::from)))
@@ -284,6 +287,115 @@ impl Dict {
         Ok(!full)
     }
 
+    /// The fast path of [`Dict::encode_ints`]: a primitive array without nulls whose values,
+    /// with those seen before, span less than [`DENSE_SPAN`], read straight from its buffer.
+    /// None (having done nothing) for anything else.
+    fn encode_native(
+        &mut self,
+        array: &dyn Array,
+        unsigned: bool,
+        out: &mut Vec<u16>,
+    ) -> Result<Option<bool>> {
+        use arrow_array::cast::AsArray;
+        use arrow_array::types as t;
+        use arrow_schema::{DataType as D, TimeUnit as U};
+        if self.wide || array.null_count() != 0 || array.is_empty() {
+            return Ok(None);
+        }
+        macro_rules! go {
+            ($t:ty) => {
+                match array.as_primitive_opt::<$t>() {
+                    Some(a) => Ok(self.dense_codes(a.values(), unsigned, out)),
+                    None => Ok(None),
+                }
+            };
+        }
+        match array.data_type() {
+            D::Int8 => go!(t::Int8Type),
+            D::Int16 => go!(t::Int16Type),
+            D::Int32 => go!(t::Int32Type),
+            D::Int64 => go!(t::Int64Type),
+            D::UInt8 => go!(t::UInt8Type),
+            D::UInt16 => go!(t::UInt16Type),
+            D::UInt32 => go!(t::UInt32Type),
+            D::UInt64 => go!(t::UInt64Type),
+            D::Date32 => go!(t::Date32Type),
+            D::Date64 => go!(t::Date64Type),
+            D::Time32(U::Second) => go!(t::Time32SecondType),
+            D::Time32(_) => go!(t::Time32MillisecondType),
+            D::Time64(U::Nanosecond) => go!(t::Time64NanosecondType),
+            D::Time64(_) => go!(t::Time64MicrosecondType),
+            D::Timestamp(U::Second, _) => go!(t::TimestampSecondType),
+            D::Timestamp(U::Millisecond, _) => go!(t::TimestampMillisecondType),
+            D::Timestamp(U::Microsecond, _) => go!(t::TimestampMicrosecondType),
+            D::Timestamp(U::Nanosecond, _) => go!(t::TimestampNanosecondType),
+            D::Duration(U::Second) => go!(t::DurationSecondType),
+            D::Duration(U::Millisecond) => go!(t::DurationMillisecondType),
+            D::Duration(U::Microsecond) => go!(t::DurationMicrosecondType),
+            D::Duration(U::Nanosecond) => go!(t::DurationNanosecondType),
+            _ => Ok(None),
+        }
+    }
+
+    /// Direct-index codes of `values` (None when they and the integers seen before span
+    /// [`DENSE_SPAN`] or more); Some(false) when the column ran out of provisional codes.
+    fn dense_codes<N>(&mut self, values: &[N], unsigned: bool, out: &mut Vec<u16>) -> Option<bool>
+    where
+        N: Copy + Ord + Into<i128> + Wrapping64,
+    {
+        let first = *values.first()?;
+        let (lo, hi) = values
+            .iter()
+            .fold((first, first), |(l, h), &v| (l.min(v), h.max(v)));
+        let (mut low, mut high): (i128, i128) = (lo.into(), hi.into());
+        if !self.dense.is_empty() {
+            low = low.min(self.base);
+            high = high.max(self.base + self.dense.len() as i128 - 1);
+        }
+        if high - low >= DENSE_SPAN {
+            return None;
+        }
+        self.widen_dense(low, high);
+        let (base, dense) = (self.base, &self.dense);
+        // The offset from the base in wrapping 64-bit arithmetic: exact, since it is below
+        // DENSE_SPAN, and cheaper than 128-bit arithmetic in the loop.
+        let base64 = base as i64;
+        let index = |v: N| v.wrapping64().wrapping_sub(base64) as u64 as usize;
+        let start = out.len();
+        // Known values in one branch-free gather; the few new ones are fixed up after.
+        out.extend(
+            values
+                .iter()
+                .map(|&v| dense.get(index(v)).copied().unwrap_or(UNSEEN)),
+        );
+        if out[start..].contains(&UNSEEN) {
+            for (slot, &v) in out[start..].iter_mut().zip(values) {
+                if *slot != UNSEEN {
+                    continue;
+                }
+                let i = index(v);
+                let mut code = self.dense.get(i).copied().unwrap_or(UNSEEN);
+                if code == UNSEEN {
+                    let x: i128 = v.into();
+                    let value = if unsigned {
+                        Value::UInt(u64::try_from(x).unwrap_or_default())
+                    } else {
+                        Value::Int(i64::try_from(x).unwrap_or_default())
+                    };
+                    code = match self.push(value) {
+                        Ok(c) => c,
+                        Err(Full) => return Some(false),
+                    };
+                    if let Some(d) = self.dense.get_mut(i) {
+                        *d = code;
+                    }
+                }
+                *slot = code;
+            }
+        }
+        Some(true)
+    }
+
     /// Makes the direct index cover `low..=high` (a span under [`DENSE_SPAN`]).
     fn widen_dense(&mut self, low: i128, high: i128) {
         let len = usize::try_from(high - low + 1).unwrap_or(0);
@@ -344,6 +456,24 @@ impl Dict {
         Ok(())
     }
 }
+
+/// An integer's bits as an i64 (sign-extended or, for u64, reinterpreted): differences of two
+/// such values are exact modulo 2^64.
+trait Wrapping64 {
+    fn wrapping64(self) -> i64;
+}
+
+macro_rules! wrapping64 {
+    ($($t:ty),*) => {$(
+        impl Wrapping64 for $t {
+            #[inline]
+            fn wrapping64(self) -> i64 {
+                self as i64
+            }
+        }
+    )*};
+}
+wrapping64!(i8, i16, i32, i64, u8, u16, u32, u64);
 
 /// The state while counting with provisional codes.
 struct Counting {
