@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import itertools
+import re
 import sys
 import warnings
 from pathlib import Path
@@ -353,3 +354,52 @@ def test_to_dict_is_json_ready(shop_weeks: tuple[pa.Table, pa.Table]) -> None:
     text = json.dumps(data, allow_nan=False)
     assert json.loads(text)["correction"] == "holm"
     assert len(data["columns"]) == 5
+
+
+# -- the shop's second week: a broken tag ---------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def broken_week() -> treewise.Comparison:
+    from treewise.datasets import model_columns, shop_sessions, shop_sessions_broken_tag
+
+    week1 = shop_sessions(60_000, seed=0)
+    week2 = shop_sessions_broken_tag(60_000, seed=1)
+    columns = model_columns(week1)
+    return quiet_compare(week1.select(columns), week2.select(columns))
+
+
+def test_the_broken_tag_is_the_top_column_and_edge(broken_week: treewise.Comparison) -> None:
+    columns = broken_week.columns.to_pylist()
+    edges = broken_week.edges.to_pylist()
+    # The constructed truth (datasets.shop_sessions_broken_tag): only cart_add changed.
+    assert columns[0]["column"] == "cart_add" and columns[0]["changed"]
+    assert [c["column"] for c in columns if c["changed"]] == ["cart_add"]
+    assert "cart_add" in (edges[0]["parent"], edges[0]["child"]) and edges[0]["changed"]
+    assert all("cart_add" in (e["parent"], e["child"]) for e in edges if e["changed"])
+    where = broken_week.drill_down("cart_add").to_pylist()[0]
+    assert (where["by"], where["value"]) == ("browser_family", "safari")
+    # Safari sessions record no cart at all in week two (ties of a two-valued column: either).
+    assert re.fullmatch(
+        r"browser_family=safari: cart_add=(True \d+\.\d% → 0\.0%|False \d+\.\d% → 100\.0%)",
+        where["moved"],
+    ), where["moved"]
+
+
+def test_top_rows_are_the_highest_scores_with_their_breakdown(
+    broken_week: treewise.Comparison,
+) -> None:
+    from treewise.datasets import model_columns, shop_sessions_broken_tag
+
+    week2 = shop_sessions_broken_tag(5_000, seed=7)
+    rows = broken_week.top_rows(week2, top=15, keys=["session_id"], batch_rows=1_000)
+    scores = broken_week.score_samples(week2.select(model_columns(week2)))
+    order = np.lexsort((np.arange(scores.size), -scores))[:15]
+    assert rows.column("row").to_pylist() == order.tolist()
+    np.testing.assert_array_equal(rows.column("score").to_numpy(), scores[order])
+    assert (
+        rows.column("session_id").to_pylist() == week2.column("session_id").take(order).to_pylist()
+    )
+    # The rows of the new regime: a checkout without a recorded cart, on the broken browser.
+    assert rows.column("browser_family").to_pylist()[0] == "safari"
+    assert rows.column("cart_add").to_pylist()[0] is False

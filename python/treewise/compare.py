@@ -20,7 +20,7 @@ from treewise.homogeneity import MIN_EXPECTED, column_test, edge_test, holm
 from treewise.pairstats import PairStats
 from treewise.passes import TypeRecorder, learn_shared_codebook
 from treewise.progress import PassProgress, wants_progress
-from treewise.sources import BATCH_ROWS, check_columns, open_source
+from treewise.sources import BATCH_ROWS, BatchLoop, check_columns, open_source
 
 __all__ = ["Comparison", "compare"]
 
@@ -39,22 +39,30 @@ class Comparison:
     columns : pyarrow.Table
         One row per column, most changed first: ``column``, ``tv_distance`` (total variation
         distance between the two sides' shares), ``g_statistic``, ``dof``, ``p_value`` (G-test
-        of homogeneity), ``p_adjusted`` (Holm, over every column and edge test), and ``moved``
-        (the values whose share moved most, as text).
+        of homogeneity), ``p_adjusted`` (Holm, over every column and edge test), ``changed``
+        (``p_adjusted`` below ``level``), and ``moved`` (the values whose share moved most, as
+        text).
     edges : pyarrow.Table
         One row per edge of either tree (no duplicates), most changed first: ``parent``,
         ``child``, ``tree`` (``both``, ``reference`` or ``current``), ``mi_reference`` and
         ``mi_current`` (mutual information in nats on each side), ``tv_conditional`` (the
         parent-weighted total variation between the two sides' P(child | parent)),
         ``g_statistic``, ``dof``, ``p_value`` and ``p_adjusted`` for whether P(child | parent)
-        changed, and ``moved`` (the cells that moved most). The statistics are null when a
-        side's counts of the pair are unknown (a loaded model keeps only its edges' tables).
+        changed, ``changed``, and ``moved`` (the cells that moved most). The statistics are
+        null when a side's counts of the pair are unknown (a loaded model keeps only its
+        edges' tables).
+    level : float
+        The family-wise error rate below which a test counts as ``changed``.
+
+    Both tables list the changed rows first, largest effect first (``tv_distance``,
+    ``tv_conditional``), then the rest by adjusted p.
     """
 
     reference: DependencyTree
     current: DependencyTree
     columns: pa.Table
     edges: pa.Table
+    level: float
 
     @property
     def n_reference(self) -> int:
@@ -98,6 +106,107 @@ class Comparison:
             }
         )
 
+    def top_rows(
+        self, data: Any, top: int = 20, keys: Sequence[str] = (), batch_rows: int = BATCH_ROWS
+    ) -> pa.Table:
+        """The ``top`` rows of ``data`` most unlike the reference, read batch by batch.
+
+        Rows are ranked by :meth:`score_samples` (highest first: far more likely under the
+        current model than under the reference), ties by position. Memory stays near one batch.
+
+        Returns
+        -------
+        pyarrow.Table
+            ``row`` (position in ``data``), the ``keys`` columns, the modelled columns' values,
+            ``score`` and, per modelled column, ``ratio_<column>`` (its share of the score, as
+            :meth:`score_columns` gives it).
+        """
+        top = check_int("top", top, 0, 1_000_000)
+        if isinstance(keys, str) or not all(isinstance(k, str) for k in keys):
+            raise TypeError(f"keys= must be a list of column names, got {keys!r}")
+        names = [str(n) for n in self.reference.feature_names_in_]
+        wanted = list(keys) + [n for n in names if n not in keys]
+        source = open_source(data)
+        wanted = check_columns(source.names, wanted, source.description)
+        best: pa.Table | None = None
+        start = 0
+        with BatchLoop(source, wanted, batch_rows) as batches:
+            for batch in batches:
+                table = pa.Table.from_batches([batch])
+                parts = self.score_columns(table.select(names))
+                scored = table.append_column("row", pa.array(np.arange(start, start + len(table))))
+                scored = scored.append_column("score", parts.column("total"))
+                for n in names:
+                    scored = scored.append_column(f"ratio_{n}", parts.column(n))
+                start += len(table)
+                best = scored if best is None else pa.concat_tables([best, scored])
+                order = np.lexsort(
+                    (best.column("row").to_numpy(), -best.column("score").to_numpy())
+                )
+                best = best.take(order[:top])
+        if best is None:
+            return pa.table({"row": pa.array([], pa.int64()), "score": pa.array([], pa.float64())})
+        first = ["row", *keys, *[n for n in names if n not in keys], "score"]
+        return best.select(first + [f"ratio_{n}" for n in names])
+
+    def drill_down(self, column: str) -> pa.Table:
+        """Where a column's change sits: its conditional shift given each other column.
+
+        For every other column Y, P(column | Y) is tested across the two sides as an edge is
+        (the G-test of conditional independence of side and ``column`` given Y, with the same
+        pooling of sparse levels). A change that comes from one value of Y (a broken tag on one
+        browser) is homogeneous in every other stratum and complete in that one, so its G is
+        the largest.
+
+        Returns
+        -------
+        pyarrow.Table
+            One row per other column, largest ``g_statistic - dof`` first (the excess over its
+            expectation when nothing changed): ``by``, ``value`` (the value of ``by`` whose
+            rows moved most), ``share`` (the share of rows, both sides, holding it), ``tv``
+            (total variation between the sides' P(column | by = value)), ``moved`` (its
+            largest cell change, as text), ``g_statistic``, ``dof`` and ``p_value``.
+        """
+        names = [str(n) for n in self.reference.feature_names_in_]
+        if column not in names:
+            raise KeyError(f"{column!r} is not a compared column; they are {names}")
+        x = names.index(column)
+        cats = self.reference.categories_
+        rows: list[dict[str, Any]] = []
+        for y, by in enumerate(names):
+            if y == x:
+                continue
+            try:
+                a = self.reference.joint_counts(y, x).astype(np.float64)
+                b = self.current.joint_counts(y, x).astype(np.float64)
+            except NotFittedError as e:
+                raise NotFittedError(
+                    f"drill_down needs every pair's counts on both sides, but {e}; compare the "
+                    "data rather than loaded models"
+                ) from e
+            g, dof, p = edge_test(a, b)
+            cond_a, cond_b = _conditional(a), _conditional(b)
+            seen = (a.sum(axis=1) > 0) & (b.sum(axis=1) > 0)
+            tv = 0.5 * np.abs(cond_b - cond_a).sum(axis=1) * seen
+            k = int(np.argmax(tv))
+            cell = int(np.argmax(np.abs(cond_b[k] - cond_a[k])))
+            rows.append(
+                {
+                    "by": by,
+                    "value": category_label(cats[y][k]),
+                    "share": float((a[k].sum() + b[k].sum()) / (a.sum() + b.sum())),
+                    "tv": float(tv[k]),
+                    "moved": f"{by}={category_label(cats[y][k])}: {column}="
+                    f"{category_label(cats[x][cell])} {cond_a[k, cell]:.1%} → "
+                    f"{cond_b[k, cell]:.1%}",
+                    "g_statistic": g,
+                    "dof": dof,
+                    "p_value": p,
+                }
+            )
+        rows.sort(key=lambda r: (-(r["g_statistic"] - r["dof"]), r["by"]))
+        return pa.Table.from_pylist(rows)
+
     def to_dict(self, top: int | None = None) -> dict[str, Any]:
         """The comparison as plain JSON-ready data: sizes, columns and edges (``top`` of each).
 
@@ -118,6 +227,7 @@ class Comparison:
             "n_reference": self.n_reference,
             "n_current": self.n_current,
             "correction": "holm",
+            "level": self.level,
             "min_expected": MIN_EXPECTED,
             "columns": rows(self.columns),
             "edges": rows(self.edges),
@@ -133,6 +243,7 @@ def compare(
     n_bins: int = 10,
     kinds: Mapping[str, str] | None = None,
     alpha: float = 0.5,
+    level: float = 0.001,
     progress: bool | None = None,
     batch_rows: int | None = None,
 ) -> Comparison:
@@ -148,6 +259,9 @@ def compare(
         current side with ``codebook=reference.codebook_``, or pass data instead).
     columns, max_categories, n_bins, kinds, alpha
         As for :class:`DependencyTree`, for data on both sides.
+    level : float, default 0.001
+        A column or edge whose Holm-adjusted p-value is below ``level`` is ``changed``: the
+        chance that any unchanged one is flagged is at most ``level``.
     progress : bool, optional
         Progress bars (default: only when stderr is a terminal).
     batch_rows : int, optional
@@ -167,14 +281,17 @@ def compare(
     whose expected count on either side is below 5 are pooled into one (common practice; see
     docs/compare.md). The p-values of every column and edge test together are adjusted by
     Holm's step-down method, which controls the family-wise error rate under any dependence
-    between the tests: they share counts, so they are not independent. Lists are sorted by
-    adjusted p, then by effect size (``tv_distance``, ``tv_conditional``) descending.
+    between the tests: they share counts, so they are not independent. The changed rows come
+    first, by effect size (``tv_distance``, ``tv_conditional``) descending: on large tables
+    many p-values underflow to 0, and the size of a change ranks them better than its p.
 
     A p-value says how surprising the difference would be if both tables came from one
     distribution. On large tables tiny differences are significant: read the effect sizes too.
     """
     rows = check_int("batch_rows", BATCH_ROWS if batch_rows is None else batch_rows, 1, 2**31)
     alpha = check_alpha(alpha)
+    if isinstance(level, bool) or not isinstance(level, (int, float)) or not 0 < level < 1:
+        raise ValueError(f"level must be a number strictly between 0 and 1, got {level!r}")
     ref_is_model = isinstance(reference, DependencyTree)
     cur_is_model = isinstance(current, DependencyTree)
     if ref_is_model and cur_is_model:
@@ -191,7 +308,7 @@ def compare(
         ref_model, cur_model = _fit_both(
             reference, current, columns, max_categories, n_bins, kinds, alpha, progress, rows
         )
-    return _compared(ref_model, cur_model)
+    return _compared(ref_model, cur_model, float(level))
 
 
 def _root_name(model: DependencyTree) -> str:
@@ -256,7 +373,7 @@ def _fit_both(
     return models[0], models[1]
 
 
-def _compared(ref: DependencyTree, cur: DependencyTree) -> Comparison:
+def _compared(ref: DependencyTree, cur: DependencyTree, level: float) -> Comparison:
     """The column and edge tests of two fitted models on one codebook."""
     names = [str(n) for n in ref.feature_names_in_]
     categories = ref.categories_
@@ -286,7 +403,10 @@ def _compared(ref: DependencyTree, cur: DependencyTree) -> Comparison:
     adjusted = holm(np.array(p_all, dtype=np.float64))
     for row, q in zip(column_rows + edge_rows, adjusted, strict=True):
         row["p_adjusted"] = float(q)
-    column_rows.sort(key=lambda r: (r["p_adjusted"], -r["tv_distance"], r["column"]))
+        row["changed"] = bool(q < level)
+    column_rows.sort(
+        key=lambda r: (not r["changed"], -r["tv_distance"], r["p_adjusted"], r["column"])
+    )
     edge_rows.sort(key=lambda r: _edge_order(r))
     column_schema = pa.schema(
         [  # type: ignore[arg-type]
@@ -296,6 +416,7 @@ def _compared(ref: DependencyTree, cur: DependencyTree) -> Comparison:
             ("dof", pa.int64()),
             ("p_value", pa.float64()),
             ("p_adjusted", pa.float64()),
+            ("changed", pa.bool_()),
             ("moved", pa.list_(pa.string())),
         ]
     )
@@ -311,6 +432,7 @@ def _compared(ref: DependencyTree, cur: DependencyTree) -> Comparison:
             ("dof", pa.int64()),
             ("p_value", pa.float64()),
             ("p_adjusted", pa.float64()),
+            ("changed", pa.bool_()),
             ("moved", pa.list_(pa.string())),
         ]
     )
@@ -321,6 +443,7 @@ def _compared(ref: DependencyTree, cur: DependencyTree) -> Comparison:
         edges=pa.Table.from_pylist(
             [{k: _null_nan(v) for k, v in r.items()} for r in edge_rows], schema=edge_schema
         ),
+        level=level,
     )
 
 
@@ -328,14 +451,21 @@ def _null_nan(value: Any) -> Any:
     return None if isinstance(value, float) and math.isnan(value) else value
 
 
-def _edge_order(row: dict[str, Any]) -> tuple[float, float, str, str]:
+def _edge_order(row: dict[str, Any]) -> tuple[bool, float, float, str, str]:
     untested = math.isnan(row["p_adjusted"])
     return (
-        math.inf if untested else row["p_adjusted"],
+        not row["changed"],
         0.0 if untested else -row["tv_conditional"],
+        math.inf if untested else row["p_adjusted"],
         row["parent"],
         row["child"],
     )
+
+
+def _conditional(joint: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
+    """P(child | parent) per row of a parent x child table (a row without counts stays 0)."""
+    result: npt.NDArray[np.float64] = joint / np.maximum(joint.sum(axis=1, keepdims=True), 1.0)
+    return result
 
 
 def _shares(counts: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
@@ -378,8 +508,7 @@ def _edge_row(
     except NotFittedError:
         return row  # a loaded model keeps only its own edges' tables
     g, dof, p_value = edge_test(a, b)
-    cond_a = a / np.maximum(a.sum(axis=1, keepdims=True), 1.0)
-    cond_b = b / np.maximum(b.sum(axis=1, keepdims=True), 1.0)
+    cond_a, cond_b = _conditional(a), _conditional(b)
     both = a.sum(axis=1) + b.sum(axis=1)
     weight = both / both.sum()
     # Only parent values seen on both sides have two conditionals to compare.
