@@ -65,6 +65,11 @@ class Comparison:
     level: float
 
     @property
+    def can_drill_down(self) -> bool:
+        """Whether both sides know every pair's counts (models fitted here, not loaded)."""
+        return all(model._stats is not None for model in (self.reference, self.current))
+
+    @property
     def n_reference(self) -> int:
         """Rows of the reference side."""
         return int(self.reference.n_rows_)
