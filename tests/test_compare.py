@@ -403,3 +403,12 @@ def test_top_rows_are_the_highest_scores_with_their_breakdown(
     # The rows of the new regime: a checkout without a recorded cart, on the broken browser.
     assert rows.column("browser_family").to_pylist()[0] == "safari"
     assert rows.column("cart_add").to_pylist()[0] is False
+
+
+def test_a_model_against_data_with_a_new_value_says_to_pass_data() -> None:
+    ref = pa.table({"a": ["x", "y"] * 50, "b": ["p", "q"] * 50})
+    model = treewise.DependencyTree().fit(ref)
+    cur = pa.table({"a": ["x", "z"] * 50, "b": ["p", "q"] * 50})
+    with pytest.raises(treewise.DataError, match="pass the data of both sides instead"):
+        treewise.compare(model, cur, progress=False)
+    assert quiet_compare(ref, cur).columns["column"][0].as_py() == "a"

@@ -138,13 +138,17 @@ class Comparison:
         with BatchLoop(source, wanted, batch_rows) as batches:
             for batch in batches:
                 table = pa.Table.from_batches([batch])
-                parts = self.score_columns(table.select(names))
-                scored = table.append_column("row", pa.array(np.arange(start, start + len(table))))
-                scored = scored.append_column("score", parts.column("total"))
+                scores = self.score_samples(table.select(names))
+                # Only the batch's own top rows can enter the overall top: break them down.
+                keep = np.lexsort((np.arange(scores.size), -scores))[:top]
+                picked = table.take(keep)
+                parts = self.score_columns(picked.select(names))
+                picked = picked.append_column("row", pa.array(start + keep, pa.int64()))
+                picked = picked.append_column("score", pa.array(scores[keep], pa.float64()))
                 for n in names:
-                    scored = scored.append_column(f"ratio_{n}", parts.column(n))
-                start += len(table)
-                best = scored if best is None else pa.concat_tables([best, scored])
+                    picked = picked.append_column(f"ratio_{n}", parts.column(n))
+                start += table.num_rows
+                best = picked if best is None else pa.concat_tables([best, picked])
                 order = np.lexsort(
                     (best.column("row").to_numpy(), -best.column("score").to_numpy())
                 )
@@ -307,7 +311,15 @@ def compare(
         codebook = model._fitted().codebook
         names = list(codebook.names)
         other = DependencyTree(columns=names, alpha=alpha, root=_root_name(model))
-        other.fit(data, codebook=codebook, progress=progress, batch_rows=rows)
+        try:
+            other.fit(data, codebook=codebook, progress=progress, batch_rows=rows)
+        except DataError as e:
+            if "never seen" not in str(e):
+                raise
+            raise DataError(
+                f"{e}. The data is counted with the model's codebook, which lacks this value; "
+                "pass the data of both sides instead, so that one codebook covers both"
+            ) from e
         ref_model, cur_model = (model, other) if ref_is_model else (other, model)
     else:
         ref_model, cur_model = _fit_both(
