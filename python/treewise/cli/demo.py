@@ -290,15 +290,15 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
         )
         # Data on both sides: one codebook over both weeks, so values new in week two get
         # codes of their own.
-        comparison = treewise.compare(folder, week_two, columns=columns, progress=progress)
-        console.print(changed_columns_table(comparison, k=3))
-        top_column = comparison.columns["column"][0].as_py()
-        where = comparison.drill_down(top_column).to_pylist()[0]
+        changes = treewise.compare(folder, week_two, columns=columns, progress=progress)
+        console.print(changed_columns_table(changes, k=3))
+        top_column = changes.columns["column"][0].as_py()
+        where = changes.drill_down(top_column).to_pylist()[0]
         console.print(f"{top_column!r} changed most where {where['moved']}.")
-        console.print(changed_edges_table(comparison, k=3))
-        new_rows = comparison.top_rows(week_two, top=WEEK_TWO_ROWS, keys=["session_id"])
+        console.print(changed_edges_table(changes, k=3))
+        new_rows = changes.top_rows(week_two, top=WEEK_TWO_ROWS, keys=["session_id"])
         write_changes_report(
-            comparison,
+            changes,
             changes_path,
             rows=new_rows,
             keys=["session_id"],
