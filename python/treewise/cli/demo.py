@@ -323,4 +323,7 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     )
     console.print(f"  treewise sample {model_path} -n 10000 -o more-sessions.parquet --seed 1")
     console.print(f"  treewise report {model_path} -o shop-report.html")
-    console.print(f"  treewise compare {model_path} {week_two} -o week2-changes.html")
+    console.print(
+        f"  treewise compare {folder} {week_two} -o week2-changes.html "
+        "--exclude session_id,planted_anomaly --key session_id"
+    )
