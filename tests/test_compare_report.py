@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import os
 import re
 import struct
 import subprocess
@@ -14,7 +13,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 import treewise
-from test_report import Page, assert_offline, body_rows, cells, chromium
+from test_report import Page, Rendered, assert_offline, body_rows, browse, cells
 from treewise.datasets import model_columns, shop_sessions, shop_sessions_broken_tag
 
 N = 20_000
@@ -137,48 +136,19 @@ def test_names_from_the_data_are_escaped(tmp_path: Path) -> None:
 
 
 @pytest.fixture(scope="module")
-def rendered(page_path: Path, tmp_path_factory: pytest.TempPathFactory) -> tuple[str, str, Path]:
-    browser = chromium()
-    if browser is None:
-        pytest.skip("chromium is not installed (CI installs it: apt-get install chromium)")
-    folder = tmp_path_factory.mktemp("browser")
-    shot = folder / "changes.png"
-    result = subprocess.run(
-        [
-            browser,
-            "--headless=new",
-            "--no-sandbox",
-            "--disable-gpu",
-            "--hide-scrollbars",
-            "--no-first-run",
-            f"--user-data-dir={folder / 'profile'}",
-            "--enable-logging=stderr",
-            "--v=0",
-            "--window-size=1280,3000",
-            f"--screenshot={shot}",
-            "--dump-dom",
-            page_path.as_uri(),
-        ],
-        capture_output=True,
-        text=True,
-        timeout=180,
-        check=False,
-        env={**os.environ, "LANG": "C.UTF-8"},
-    )
-    assert result.returncode == 0, result.stderr[-2000:]
-    return result.stdout, result.stderr, shot
+def rendered(page_path: Path, tmp_path_factory: pytest.TempPathFactory) -> Rendered:
+    return browse(page_path, tmp_path_factory.mktemp("browser"), 3000)
 
 
-def test_the_browser_draws_the_page(rendered: tuple[str, str, Path]) -> None:
-    dom, log, shot = rendered
-    page = Page(dom)
+def test_the_browser_draws_the_page(rendered: Rendered) -> None:
+    page = Page(rendered.dom)
     assert page.sections()[0] == "summary"
     labels = {t.all_text() for t in page.section("trees").iter("text")}
     assert any(label.startswith("cart_add (") for label in labels)
     assert len(page.section("edges").iter("rect")) > 20
-    assert "Uncaught" not in log
-    assert not re.search(r":CONSOLE", log), log[-2000:]
-    data = shot.read_bytes()
+    assert "Uncaught" not in rendered.log
+    assert not re.search(r":CONSOLE", rendered.log), rendered.log[-2000:]
+    data = rendered.screenshot.read_bytes()
     assert data.startswith(b"\x89PNG\r\n\x1a\n")
     assert struct.unpack(">II", data[16:24]) == (1280, 3000)
     assert len(data) > 100_000  # a drawn page, not a blank one

@@ -8,7 +8,7 @@ import secrets
 import sys
 import time
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -200,6 +200,54 @@ def _kinds(_ctx: click.Context, _param: click.Parameter, value: tuple[str, ...])
     return kinds
 
 
+def _encoding_options(command: Callable[..., Any]) -> Callable[..., Any]:
+    """Add the column options of fit and compare: columns, exclude, max-categories, bins, kind."""
+    for option in reversed(
+        [
+            click.option(
+                "--columns",
+                callback=_names,
+                metavar="A,B,C",
+                help="Columns to model, in this order (default: all).",
+            ),
+            click.option(
+                "--exclude",
+                callback=_names,
+                metavar="X,Y",
+                help="Columns to leave out (ids, keys, labels).",
+            ),
+            click.option(
+                "--max-categories",
+                type=click.IntRange(2, 65_535),
+                metavar="N",
+                default=128,
+                show_default=True,
+                help="Most codes per column; the rarest values beyond it share an 'other' code.",
+            ),
+            click.option(
+                "--bins",
+                type=click.IntRange(1, 65_534),
+                metavar="N",
+                default=10,
+                show_default=True,
+                help="Quantile bins for numeric columns; numbers with at most N distinct values "
+                "are categorical.",
+            ),
+            click.option(
+                "--kind",
+                "kinds",
+                multiple=True,
+                callback=_kinds,
+                metavar="COL=KIND",
+                help="Model COL as categorical, numeric or auto, or ignore it (repeatable). "
+                "See docs/column-kinds.md.",
+            ),
+        ]
+    ):
+        command = option(command)
+    return command
+
+
 @cli.command(
     epilog="""\b
 Example:
@@ -209,41 +257,7 @@ Example:
 )
 @click.argument("data", nargs=-1, required=True)
 @click.option("-o", "--output", required=True, metavar="MODEL", help="Where to save the model.")
-@click.option(
-    "--columns",
-    callback=_names,
-    metavar="A,B,C",
-    help="Columns to model, in this order (default: all).",
-)
-@click.option(
-    "--exclude", callback=_names, metavar="X,Y", help="Columns to leave out (ids, keys, labels)."
-)
-@click.option(
-    "--max-categories",
-    type=click.IntRange(2, 65_535),
-    metavar="N",
-    default=128,
-    show_default=True,
-    help="Most codes per column; the rarest values beyond it share an 'other' code.",
-)
-@click.option(
-    "--bins",
-    type=click.IntRange(1, 65_534),
-    metavar="N",
-    default=10,
-    show_default=True,
-    help="Quantile bins for numeric columns; numbers with at most N distinct values are "
-    "categorical.",
-)
-@click.option(
-    "--kind",
-    "kinds",
-    multiple=True,
-    callback=_kinds,
-    metavar="COL=KIND",
-    help="Model COL as categorical, numeric or auto, or ignore it (repeatable). "
-    "See docs/column-kinds.md.",
-)
+@_encoding_options
 @click.option(
     "--alpha",
     type=click.FloatRange(min=0.0),
@@ -564,36 +578,7 @@ Example:
 @click.argument("current", metavar="CUR")
 @click.option("-o", "--output", metavar="OUT", help="HTML report to write.")
 @click.option("--json", "as_json", is_flag=True, help="Print JSON instead of the summary.")
-@click.option(
-    "--columns", callback=_names, metavar="A,B,C", help="Columns to compare (default: all)."
-)
-@click.option(
-    "--exclude", callback=_names, metavar="X,Y", help="Columns to leave out (ids, keys, labels)."
-)
-@click.option(
-    "--max-categories",
-    type=click.IntRange(2, 65_535),
-    metavar="N",
-    default=128,
-    show_default=True,
-    help="Most codes per column; the rarest values beyond it share an 'other' code.",
-)
-@click.option(
-    "--bins",
-    type=click.IntRange(1, 65_534),
-    metavar="N",
-    default=10,
-    show_default=True,
-    help="Quantile bins for numeric columns.",
-)
-@click.option(
-    "--kind",
-    "kinds",
-    multiple=True,
-    callback=_kinds,
-    metavar="COL=KIND",
-    help="Model COL as categorical, numeric or auto, or ignore it (repeatable).",
-)
+@_encoding_options
 @click.option(
     "--level",
     type=click.FloatRange(0.0, 1.0, min_open=True, max_open=True),

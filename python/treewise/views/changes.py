@@ -6,7 +6,6 @@ nothing outside itself, and escapes every string that comes from the data or the
 
 from __future__ import annotations
 
-import datetime
 import os
 from collections.abc import Sequence
 from pathlib import Path
@@ -20,8 +19,8 @@ from treewise.checks import check_int
 from treewise.files import write_atomically
 from treewise.views.html import data_table, esc, label_cell, meter, p_value
 from treewise.views.plot import conditional_svg, figure_svg, plot_tree
-from treewise.views.report import STYLE
-from treewise.views.terminal import explain_ratios
+from treewise.views.report import page_html
+from treewise.views.terminal import explain_rows
 
 if TYPE_CHECKING:
     from treewise.compare import Comparison
@@ -296,7 +295,7 @@ def _rows(comparison: Comparison, rows: pa.Table, keys: Sequence[str]) -> str:
     head.append(("why (column = value: nats)", False))
     values = {n: rows[n].to_pylist() for n in [*keys, *names]}
     body = []
-    for r, reasons in enumerate(explain_ratios(rows, names)):
+    for r, reasons in enumerate(explain_rows(rows, names, prefix="ratio_")):
         why = "<br>".join(
             f"{label_cell(n)} = {label_cell(str(values[n][r]), 30)}: {v:+.2f}" for n, v in reasons
         )
@@ -352,37 +351,14 @@ def render_changes_report(
         body.append(_rows(comparison, rows, list(keys)))
     sections.append(("cautions", "Cautions"))
     body.append(CAUTIONS)
-    nav = "".join(f'<a href="#{anchor}">{name}</a>' for anchor, name in sections)
-    from treewise import __version__
-
-    when = datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
-    return f"""<!DOCTYPE html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<meta name="viewport" content="width=device-width, initial-scale=1">
-<meta name="generator" content="treewise {esc(__version__)}">
-<title>{esc(heading)}</title>
-<style>
-{STYLE}</style>
-</head>
-<body>
-<main>
-<header>
-<h1>{esc(heading)}</h1>
-<p>{comparison.n_current:,} current rows against {comparison.n_reference:,} reference rows,
-over {comparison.reference.n_features_in_:,} columns on one codebook. Written by treewise
-{esc(__version__)} on {when}.</p>
-</header>
-<nav>{nav}</nav>
-{"".join(body)}
-<footer>Every figure here comes from the two models' exact counts{
+    intro = (
+        f"{comparison.n_current:,} current rows against {comparison.n_reference:,} reference "
+        f"rows, over {comparison.reference.n_features_in_:,} columns on one codebook."
+    )
+    footer = "Every figure here comes from the two models' exact counts" + (
         "" if rows is None else " and the scored current rows"
-    }. The page needs no network and runs no scripts.</footer>
-</main>
-</body>
-</html>
-"""
+    )
+    return page_html(heading, intro, sections, body, footer)
 
 
 def write_changes_report(

@@ -25,7 +25,6 @@ __all__ = [
     "SCORE_CAUTION",
     "changed_columns_table",
     "changed_edges_table",
-    "explain_ratios",
     "explain_rows",
     "fidelity_table",
     "model_json",
@@ -113,28 +112,32 @@ def strongest_table(model: DependencyTree, k: int = 5) -> Table:
     return table
 
 
-def explain_rows(top: pa.Table, names: Sequence[str], k: int = 3) -> list[list[tuple[str, float]]]:
-    """For each row of ``top``, the ``k`` columns with the highest surprisal, highest first.
+def explain_rows(
+    top: pa.Table, names: Sequence[str], k: int = 3, prefix: str = "surprisal_"
+) -> list[list[tuple[str, float]]]:
+    """For each row of ``top``, the ``k`` columns with the highest ``<prefix><column>``.
 
     Parameters
     ----------
     top : pyarrow.Table
-        Rows as returned by ``DependencyTree.score_to_parquet``: one ``surprisal_<column>``
-        (in nats) per modelled column.
+        Rows as returned by ``DependencyTree.score_to_parquet`` (one ``surprisal_<column>`` in
+        nats per modelled column) or ``Comparison.top_rows`` (``ratio_<column>``).
     names : sequence of str
         The modelled columns.
     k : int, default 3
         How many columns per row.
+    prefix : str, default "surprisal_"
+        Which figures to rank: ``"surprisal_"`` or ``"ratio_"``.
 
     Returns
     -------
     list of list of (str, float)
-        Per row, ``(column, surprisal)`` pairs; ties keep the column order.
+        Per row, ``(column, value)`` pairs, highest first; ties keep the column order.
     """
     if top.num_rows == 0 or not names:
         return [[] for _ in range(top.num_rows)]
     matrix = np.column_stack(
-        [np.asarray(top[f"surprisal_{name}"], dtype=np.float64) for name in names]
+        [np.asarray(top[f"{prefix}{name}"], dtype=np.float64) for name in names]
     )
     order = np.argsort(-matrix, axis=1, kind="stable")[:, :k]
     return [[(names[c], float(matrix[r, c])) for c in order[r]] for r in range(top.num_rows)]
@@ -287,17 +290,6 @@ def changed_edges_table(comparison: Comparison, k: int = 5) -> Table:
     return table
 
 
-def explain_ratios(
-    top: pa.Table, names: Sequence[str], k: int = 3
-) -> list[list[tuple[str, float]]]:
-    """For each row of ``Comparison.top_rows``, the ``k`` columns that raise its score most."""
-    if top.num_rows == 0 or not names:
-        return [[] for _ in range(top.num_rows)]
-    matrix = np.column_stack([np.asarray(top[f"ratio_{name}"], dtype=np.float64) for name in names])
-    order = np.argsort(-matrix, axis=1, kind="stable")[:, :k]
-    return [[(names[c], float(matrix[r, c])) for c in order[r]] for r in range(top.num_rows)]
-
-
 def new_rows_table(top: pa.Table, names: Sequence[str], keys: Sequence[str], title: str) -> Table:
     """The rows most unlike the reference, with the columns that make them so.
 
@@ -314,7 +306,7 @@ def new_rows_table(top: pa.Table, names: Sequence[str], keys: Sequence[str], tit
     values = {name: top[name].to_pylist() for name in names}
     scores = top["score"].to_pylist()
     rows = top["row"].to_pylist()
-    for r, reasons in enumerate(explain_ratios(top, names)):
+    for r, reasons in enumerate(explain_rows(top, names, prefix="ratio_")):
         why = "\n".join(f"{name} = {values[name][r]}: {value:+.2f}" for name, value in reasons)
         cells = [str(key_values[key][r]) for key in keys]
         table.add_row(f"{rows[r]:,}", *cells, f"{scores[r]:+.2f}", why)
