@@ -425,34 +425,27 @@ def _compared(ref: DependencyTree, cur: DependencyTree, level: float) -> Compari
         key=lambda r: (not r["changed"], -r["tv_distance"], r["p_adjusted"], r["column"])
     )
     edge_rows.sort(key=lambda r: _edge_order(r))
-    column_schema = pa.schema(
-        [  # type: ignore[arg-type]
-            ("column", pa.string()),
-            ("tv_distance", pa.float64()),
-            ("g_statistic", pa.float64()),
-            ("dof", pa.int64()),
-            ("p_value", pa.float64()),
-            ("p_adjusted", pa.float64()),
-            ("changed", pa.bool_()),
-            ("moved", pa.list_(pa.string())),
-        ]
-    )
-    edge_schema = pa.schema(
-        [  # type: ignore[arg-type]
-            ("parent", pa.string()),
-            ("child", pa.string()),
-            ("tree", pa.string()),
-            ("mi_reference", pa.float64()),
-            ("mi_current", pa.float64()),
-            ("tv_conditional", pa.float64()),
-            ("g_statistic", pa.float64()),
-            ("dof", pa.int64()),
-            ("p_value", pa.float64()),
-            ("p_adjusted", pa.float64()),
-            ("changed", pa.bool_()),
-            ("moved", pa.list_(pa.string())),
-        ]
-    )
+    tests: list[pa.Field[Any]] = [
+        pa.field("g_statistic", pa.float64()),
+        pa.field("dof", pa.int64()),
+        pa.field("p_value", pa.float64()),
+        pa.field("p_adjusted", pa.float64()),
+        pa.field("changed", pa.bool_()),
+        pa.field("moved", pa.list_(pa.string())),
+    ]
+    column_fields: list[pa.Field[Any]] = [
+        pa.field("column", pa.string()),
+        pa.field("tv_distance", pa.float64()),
+    ]
+    edge_fields: list[pa.Field[Any]] = [
+        *(pa.field(name, pa.string()) for name in ("parent", "child", "tree")),
+        *(
+            pa.field(name, pa.float64())
+            for name in ("mi_reference", "mi_current", "tv_conditional")
+        ),
+    ]
+    column_schema = pa.schema(column_fields + tests)
+    edge_schema = pa.schema(edge_fields + tests)
     return Comparison(
         reference=ref,
         current=cur,
