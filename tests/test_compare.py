@@ -412,3 +412,15 @@ def test_a_model_against_data_with_a_new_value_says_to_pass_data() -> None:
     with pytest.raises(treewise.DataError, match="pass the data of both sides instead"):
         treewise.compare(model, cur, progress=False)
     assert quiet_compare(ref, cur).columns["column"][0].as_py() == "a"
+
+
+def test_holm_counts_only_real_tests() -> None:
+    # A constant column has nothing to compare (dof 0): p = 1, and it is not one of the m tests.
+    ref = pa.table({"a": ["x", "y"] * 300, "k": ["c"] * 600})
+    cur = pa.table({"a": ["x", "y", "y"] * 200, "k": ["c"] * 600})
+    comparison = quiet_compare(ref, cur)
+    rows = {r["column"]: r for r in comparison.columns.to_pylist()}
+    edge = comparison.edges.to_pylist()[0]
+    assert rows["k"]["dof"] == 0 and rows["k"]["p_value"] == 1.0 == rows["k"]["p_adjusted"]
+    tested = [r["p_value"] for r in [rows["a"], edge] if r["dof"]]
+    assert rows["a"]["p_adjusted"] == pytest.approx(min(1.0, len(tested) * rows["a"]["p_value"]))

@@ -416,10 +416,12 @@ def _compared(ref: DependencyTree, cur: DependencyTree, level: float) -> Compari
             }
         )
     edge_rows = [_edge_row(ref, cur, p, c, tree) for p, c, tree in _edge_union(ref, cur)]
-    p_all = [r["p_value"] for r in column_rows] + [r["p_value"] for r in edge_rows]
+    everything = column_rows + edge_rows
+    # A table with nothing left to compare (dof 0) is no test: p = 1, not counted by Holm.
+    p_all = [r["p_value"] if r["dof"] != 0 else math.nan for r in everything]
     adjusted = holm(np.array(p_all, dtype=np.float64))
-    for row, q in zip(column_rows + edge_rows, adjusted, strict=True):
-        row["p_adjusted"] = float(q)
+    for row, q in zip(everything, adjusted, strict=True):
+        row["p_adjusted"] = 1.0 if row["dof"] == 0 else float(q)
         row["changed"] = bool(q < level)
     column_rows.sort(
         key=lambda r: (not r["changed"], -r["tv_distance"], r["p_adjusted"], r["column"])
