@@ -424,3 +424,18 @@ def test_holm_counts_only_real_tests() -> None:
     assert rows["k"]["dof"] == 0 and rows["k"]["p_value"] == 1.0 == rows["k"]["p_adjusted"]
     tested = [r["p_value"] for r in [rows["a"], edge] if r["dof"]]
     assert rows["a"]["p_adjusted"] == pytest.approx(min(1.0, len(tested) * rows["a"]["p_value"]))
+
+
+def test_the_broken_tag_changes_only_cart_add_on_one_browser() -> None:
+    from treewise.datasets import BROKEN_TAG_BROWSER, shop_sessions, shop_sessions_broken_tag
+
+    healthy = shop_sessions(5_000, seed=3)
+    broken = shop_sessions_broken_tag(5_000, seed=3)
+    for name in healthy.column_names:
+        if name != "cart_add":
+            assert broken.column(name).equals(healthy.column(name)), name
+    browser = healthy.column("browser_family").to_pylist()
+    before, after = healthy.column("cart_add").to_pylist(), broken.column("cart_add").to_pylist()
+    for b, x, y in zip(browser, before, after, strict=True):
+        assert y == (x and b != BROKEN_TAG_BROWSER)
+    assert any(x and b == BROKEN_TAG_BROWSER for b, x in zip(browser, before, strict=True))
