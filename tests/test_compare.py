@@ -295,6 +295,10 @@ def test_one_codebook_over_both_sides_and_values_of_one_side_only() -> None:
     assert row["column"] == "a" and row["tv_distance"] == pytest.approx(0.5)
     assert row["moved"][:2] == ["y: 50.0% → 0.0%", "z: 0.0% → 50.0%"]
     assert comparison.n_reference == comparison.n_current == 400
+    assert repr(comparison) == (
+        "Comparison(400 reference rows, 400 current rows: 1 of 2 columns and 0 of 1 edges "
+        "changed at 0.001)"
+    )
 
 
 def test_edges_are_listed_once_with_the_tree_that_holds_them(

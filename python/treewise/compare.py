@@ -28,7 +28,7 @@ __all__ = ["Comparison", "compare"]
 MOVED = 3
 
 
-@dataclass
+@dataclass(repr=False)
 class Comparison:
     """What changed between a reference table and a current one (see :func:`compare`).
 
@@ -63,6 +63,15 @@ class Comparison:
     columns: pa.Table
     edges: pa.Table
     level: float
+
+    def __repr__(self) -> str:
+        columns = sum(bool(c) for c in self.columns["changed"].to_pylist())
+        edges = sum(bool(c) for c in self.edges["changed"].to_pylist())
+        return (
+            f"Comparison({self.n_reference:,} reference rows, {self.n_current:,} current rows: "
+            f"{columns} of {self.columns.num_rows} columns and {edges} of {self.edges.num_rows} "
+            f"edges changed at {self.level:g})"
+        )
 
     @property
     def can_drill_down(self) -> bool:
