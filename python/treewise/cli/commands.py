@@ -618,7 +618,7 @@ def compare(
     batch_rows: int | None,
     no_progress: bool,
 ) -> None:
-    """Compare CUR with REF: which columns shifted, which dependencies changed, which rows are new.
+    """Compare CUR with REF: shifted columns, changed dependencies, new rows.
 
     REF and CUR: Parquet, CSV or Arrow IPC files, directories or globs (read batch by batch),
     or saved models fitted on one codebook. With data on both sides, one codebook is learned
