@@ -618,7 +618,9 @@ def compare(
     batch_rows: int | None,
     no_progress: bool,
 ) -> None:
-    """Compare CUR with REF: shifted columns, changed dependencies, new rows.
+    """Compare CUR with REF: what changed, and where.
+
+    Which columns shifted, which dependencies changed, and which rows of CUR are new.
 
     REF and CUR: Parquet, CSV or Arrow IPC files, directories or globs (read batch by batch),
     or saved models fitted on one codebook. With data on both sides, one codebook is learned
