@@ -56,6 +56,7 @@ fmt: $(STAMP) ## Format Rust and Python sources
 bench: build ## Benchmark against the numpy reference; writes bench/RESULTS.md
 	$(PY) bench/fit_bench.py --write bench/RESULTS.md
 	$(PY) bench/compare.py --write bench/RESULTS.md
+	$(PY) bench/compare_tables.py --write bench/RESULTS.md
 	$(PY) bench/fidelity_real.py --write bench/RESULTS.md
 	$(PY) bench/demo_bench.py --write bench/RESULTS.md
 

@@ -394,7 +394,15 @@ def test_demo_tells_the_whole_story(tmp_path: Path) -> None:
     match = re.search(r"Recovered (\d+) of (\d+) hidden edges", out)
     assert match is not None and int(match.group(2)) == len(hidden_edges())
     assert int(match.group(1)) >= 0.8 * len(hidden_edges())
-    for name in ("sessions", "shop.treewise", "scores.parquet", "synthetic.parquet", "report.html"):
+    for name in (
+        "sessions",
+        "shop.treewise",
+        "scores.parquet",
+        "synthetic.parquet",
+        "report.html",
+        "week2",
+        "changes.html",
+    ):
         assert (folder / name).exists()
         assert str(folder / name) in out
     assert len(list((folder / "sessions").glob("*.parquet"))) == 8
@@ -413,6 +421,14 @@ def test_demo_tells_the_whole_story(tmp_path: Path) -> None:
     for anchor in ("tree", "edges", "scores", "surprising", "synthetic", "cautions"):
         assert f'<section id="{anchor}">' in page
     assert "<th>session_id</th>" in page
+    # The second week's broken tag (datasets.shop_sessions_broken_tag) is the top change.
+    assert "A second week of 5,000 sessions: what changed?" in out
+    assert re.search(r"Columns: 1 of 25 changed .* cart_add ", out), out
+    assert "'cart_add' changed most where browser_family=safari" in out
+    assert re.search(r"tree edges changed .* (product_views -> cart_add|cart_add ->)", out)
+    changes = (folder / "changes.html").read_text("utf-8")
+    for anchor in ("trees", "columns", "edges", "where", "rows", "cautions"):
+        assert f'<section id="{anchor}">' in changes
     # A second run over the same folder replaces its own files.
     ok("demo", "--rows", "500", "--dir", folder, "--no-progress")
     assert treewise.load(folder / "shop.treewise").n_rows_ == 500

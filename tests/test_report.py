@@ -395,13 +395,12 @@ class Rendered:
     screenshot: Path
 
 
-@pytest.fixture(scope="module")
-def rendered(with_data: Path, tmp_path_factory: pytest.TempPathFactory) -> Rendered:
+def browse(page: Path, folder: Path, height: int) -> Rendered:
+    """Open ``page`` in headless chromium: its DOM, its log and a 1280 x ``height`` screenshot."""
     browser = chromium()
     if browser is None:
         pytest.skip("chromium is not installed (CI installs it: apt-get install chromium)")
-    folder = tmp_path_factory.mktemp("browser")
-    shot = folder / "report.png"
+    shot = folder / "page.png"
     result = subprocess.run(
         [
             browser,
@@ -413,10 +412,10 @@ def rendered(with_data: Path, tmp_path_factory: pytest.TempPathFactory) -> Rende
             f"--user-data-dir={folder / 'profile'}",
             "--enable-logging=stderr",
             "--v=0",
-            "--window-size=1280,4000",
+            f"--window-size=1280,{height}",
             f"--screenshot={shot}",
             "--dump-dom",
-            with_data.as_uri(),
+            page.as_uri(),
         ],
         capture_output=True,
         text=True,
@@ -426,6 +425,11 @@ def rendered(with_data: Path, tmp_path_factory: pytest.TempPathFactory) -> Rende
     )
     assert result.returncode == 0, result.stderr[-2000:]
     return Rendered(result.stdout, result.stderr, shot)
+
+
+@pytest.fixture(scope="module")
+def rendered(with_data: Path, tmp_path_factory: pytest.TempPathFactory) -> Rendered:
+    return browse(with_data, tmp_path_factory.mktemp("browser"), 4000)
 
 
 def test_the_browser_draws_the_page(rendered: Rendered, loaded: treewise.DependencyTree) -> None:

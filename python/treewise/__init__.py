@@ -10,6 +10,7 @@ from treewise import _core
 from treewise._core import Codebook
 from treewise.categories import OTHER, Bin
 from treewise.classifier import TreeAugmentedClassifier
+from treewise.compare import Comparison, compare
 from treewise.errors import (
     CategoryCapWarning,
     ColumnKindWarning,
@@ -56,6 +57,7 @@ __all__ = [
     "CategoryCapWarning",
     "Codebook",
     "ColumnKindWarning",
+    "Comparison",
     "CorruptModelError",
     "DataError",
     "DependencyTree",
@@ -69,5 +71,6 @@ __all__ = [
     "TreewiseError",
     "UnseenCategoryWarning",
     "__version__",
+    "compare",
     "load",
 ]

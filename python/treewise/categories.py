@@ -6,7 +6,7 @@ import math
 from dataclasses import dataclass
 from typing import Any, Final
 
-__all__ = ["OTHER", "Bin", "column_categories"]
+__all__ = ["OTHER", "Bin", "category_label", "column_categories"]
 
 
 class _Other:
@@ -71,3 +71,14 @@ def column_categories(kind: str, values: Any, has_other: bool, has_null: bool) -
     if has_null:
         cats.append(None)
     return cats
+
+
+def category_label(value: object) -> str:
+    """How a category of ``categories_`` reads in reports and summaries (not escaped)."""
+    if value is OTHER:
+        return "(other)"
+    if value is None:
+        return "(null)"
+    if isinstance(value, Bin):
+        return f"[{value.low:.4g}, {value.high:.4g}{']' if value.closed else ')'}"
+    return str(value)

@@ -38,7 +38,14 @@ import numpy as np
 import numpy.typing as npt
 import pyarrow as pa
 
-__all__ = ["SHOP_HIDDEN_EDGES", "hidden_edges", "model_columns", "shop_sessions"]
+__all__ = [
+    "BROKEN_TAG_BROWSER",
+    "SHOP_HIDDEN_EDGES",
+    "hidden_edges",
+    "model_columns",
+    "shop_sessions",
+    "shop_sessions_broken_tag",
+]
 
 Level = str | bool
 Codes = npt.NDArray[np.int64]
@@ -111,6 +118,9 @@ LEVELS: Final[dict[str, tuple[Level, ...]]] = {
 }
 
 DEVICE_MARGINAL: Final = (0.38, 0.55, 0.07)
+
+#: The browser family whose ``cart_add`` tag stops firing in the second week.
+BROKEN_TAG_BROWSER: Final = "safari"
 
 #: P(child | parent) for each categorical child: its parent and one row of probabilities per
 #: parent level, aligned with LEVELS. Rows are normalised on use, so they need only be close to 1.
@@ -547,3 +557,32 @@ def shop_sessions(n: int = 100_000, seed: int = 0, anomaly_rate: float = 0.002) 
             null_code = no_payment if name == "payment_method" else None
             arrays[name] = _categorical(codes[name], LEVELS[name], null_code)
     return pa.table(arrays)
+
+
+def shop_sessions_broken_tag(
+    n: int = 100_000,
+    seed: int = 1,
+    anomaly_rate: float = 0.002,
+    browser: str = BROKEN_TAG_BROWSER,
+) -> pa.Table:
+    """A second week of the shop in which a broken tracking tag stops ``cart_add`` firing.
+
+    The sessions are drawn exactly as :func:`shop_sessions` draws them (use another ``seed``
+    than the first week's), so shoppers behave as before: they add to the cart and pay at the
+    same rates. Then, for every session whose ``browser_family`` is ``browser``, the release's
+    broken tag records ``cart_add`` as false. Only that column changes, and only for one
+    browser family; its dependencies on ``product_views`` and ``payment_method`` change with
+    it. This is the planted change that ``treewise.compare`` should find first.
+
+    Returns
+    -------
+    pyarrow.Table
+        The columns of :func:`shop_sessions`.
+    """
+    if browser not in LEVELS["browser_family"]:
+        raise ValueError(f"browser must be one of {LEVELS['browser_family']}, got {browser!r}")
+    table = shop_sessions(n=n, seed=seed, anomaly_rate=anomaly_rate)
+    broken = table.column("browser_family").to_numpy(zero_copy_only=False) == browser
+    fired = table.column("cart_add").to_numpy(zero_copy_only=False)
+    index = table.schema.get_field_index("cart_add")
+    return table.set_column(index, "cart_add", pa.array(fired & ~broken, pa.bool_()))

@@ -28,6 +28,7 @@ __all__ = [
     "count_pairs",
     "learn_and_count",
     "learn_codebook",
+    "learn_shared_codebook",
     "warn_caps",
     "warn_notes",
 ]
@@ -131,26 +132,54 @@ def learn_codebook(
     IPC files while its codebook is learned, and counted from them; they are removed when the
     block ends: one pass over the stream, exact counts, memory near one batch.
     """
+    with learn_shared_codebook(
+        [source], names, max_categories, n_bins, batch_rows, bar, types, kinds
+    ) as (codebook, counting):
+        yield codebook, counting[0]
+
+
+@contextmanager
+def learn_shared_codebook(
+    sources: list[Source],
+    names: list[str],
+    max_categories: int,
+    n_bins: int,
+    batch_rows: int,
+    bar: PassProgress,
+    types: TypeRecorder,
+    kinds: dict[str, str] | None = None,
+) -> Iterator[tuple[_core.Codebook, list[Source]]]:
+    """One codebook over the batches of several sources (each holding ``names``).
+
+    Yields the codebook and, per source, the source to count from next (the source itself, or
+    the spool of a one-shot stream), as :func:`learn_codebook` does for one source. Used to
+    encode the two sides of a comparison alike.
+    """
     builder = _core.CodebookBuilder(names)
-    spool = None if source.replayable else _Spool()
+    spools = [None if source.replayable else _Spool() for source in sources]
     try:
-        with BatchLoop(source, names, batch_rows, bar, "learning codes") as batches:
-            for batch in batches:
-                types.see(batch)
-                builder.observe(batch)
-                if spool is not None:
-                    spool.write(batch)
+        for source, spool in zip(sources, spools, strict=True):
+            with BatchLoop(source, names, batch_rows, bar, "learning codes") as batches:
+                for batch in batches:
+                    types.see(batch)
+                    builder.observe(batch)
+                    if spool is not None:
+                        spool.write(batch)
         codebook, caps, notes = builder.finish(max_categories, n_bins, list((kinds or {}).items()))
         warn_caps(caps, max_categories)
         warn_notes(notes)
-        if spool is None:
-            yield codebook, source
-        else:
-            spool.close()
-            yield codebook, open_source(spool.paths)
+        counting = []
+        for source, spool in zip(sources, spools, strict=True):
+            if spool is None:
+                counting.append(source)
+            else:
+                spool.close()
+                counting.append(open_source(spool.paths))
+        yield codebook, counting
     finally:
-        if spool is not None:
-            spool.remove()
+        for spool in spools:
+            if spool is not None:
+                spool.remove()
 
 
 class _Spool:

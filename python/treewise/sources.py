@@ -412,7 +412,12 @@ def _as_table(item: Any) -> pa.Table:
 
 
 def open_source(data: Any) -> Source:
-    """Describe any supported input as a :class:`Source` (nothing is read yet but metadata)."""
+    """Describe any supported input as a :class:`Source` (nothing is read yet but metadata).
+
+    A :class:`Source` is returned as it is.
+    """
+    if isinstance(data, Source):
+        return data
     if isinstance(data, (str, os.PathLike)):
         return _file_source(expand_paths(data))
     if (

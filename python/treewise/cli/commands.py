@@ -8,7 +8,7 @@ import secrets
 import sys
 import time
 import warnings
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -21,9 +21,13 @@ from rich.console import Console
 import treewise
 from treewise.sources import open_source
 from treewise.views.terminal import (
+    COMPARE_CAUTION,
     SAMPLE_CAUTION,
     SCORE_CAUTION,
+    changed_columns_table,
+    changed_edges_table,
     model_json,
+    new_rows_table,
     strongest_table,
     surprising_table,
     tree_view,
@@ -196,6 +200,54 @@ def _kinds(_ctx: click.Context, _param: click.Parameter, value: tuple[str, ...])
     return kinds
 
 
+def _encoding_options(command: Callable[..., Any]) -> Callable[..., Any]:
+    """Add the column options of fit and compare: columns, exclude, max-categories, bins, kind."""
+    for option in reversed(
+        [
+            click.option(
+                "--columns",
+                callback=_names,
+                metavar="A,B,C",
+                help="Columns to model, in this order (default: all).",
+            ),
+            click.option(
+                "--exclude",
+                callback=_names,
+                metavar="X,Y",
+                help="Columns to leave out (ids, keys, labels).",
+            ),
+            click.option(
+                "--max-categories",
+                type=click.IntRange(2, 65_535),
+                metavar="N",
+                default=128,
+                show_default=True,
+                help="Most codes per column; the rarest values beyond it share an 'other' code.",
+            ),
+            click.option(
+                "--bins",
+                type=click.IntRange(1, 65_534),
+                metavar="N",
+                default=10,
+                show_default=True,
+                help="Quantile bins for numeric columns; numbers with at most N distinct values "
+                "are categorical.",
+            ),
+            click.option(
+                "--kind",
+                "kinds",
+                multiple=True,
+                callback=_kinds,
+                metavar="COL=KIND",
+                help="Model COL as categorical, numeric or auto, or ignore it (repeatable). "
+                "See docs/column-kinds.md.",
+            ),
+        ]
+    ):
+        command = option(command)
+    return command
+
+
 @cli.command(
     epilog="""\b
 Example:
@@ -205,41 +257,7 @@ Example:
 )
 @click.argument("data", nargs=-1, required=True)
 @click.option("-o", "--output", required=True, metavar="MODEL", help="Where to save the model.")
-@click.option(
-    "--columns",
-    callback=_names,
-    metavar="A,B,C",
-    help="Columns to model, in this order (default: all).",
-)
-@click.option(
-    "--exclude", callback=_names, metavar="X,Y", help="Columns to leave out (ids, keys, labels)."
-)
-@click.option(
-    "--max-categories",
-    type=click.IntRange(2, 65_535),
-    metavar="N",
-    default=128,
-    show_default=True,
-    help="Most codes per column; the rarest values beyond it share an 'other' code.",
-)
-@click.option(
-    "--bins",
-    type=click.IntRange(1, 65_534),
-    metavar="N",
-    default=10,
-    show_default=True,
-    help="Quantile bins for numeric columns; numbers with at most N distinct values are "
-    "categorical.",
-)
-@click.option(
-    "--kind",
-    "kinds",
-    multiple=True,
-    callback=_kinds,
-    metavar="COL=KIND",
-    help="Model COL as categorical, numeric or auto, or ignore it (repeatable). "
-    "See docs/column-kinds.md.",
-)
+@_encoding_options
 @click.option(
     "--alpha",
     type=click.FloatRange(min=0.0),
@@ -534,6 +552,147 @@ def report(
         random_state=seed,
     )
     _console().print(f"Wrote the report to {output} in {_seconds(start)}.")
+
+
+def _side(spec: str) -> Any:
+    """A saved model (a file that starts with the treewise header), or a data path as given."""
+    path = Path(spec)
+    if path.is_file():
+        with open(path, "rb") as f:
+            if f.read(8) == b"TREEWISE":
+                return _load(spec)
+    return spec
+
+
+#: How many changed columns the JSON output drills down into.
+DRILL_DOWN = 3
+
+
+@cli.command(
+    epilog="""\b
+Example:
+  treewise compare week1/ week2/ -o changes.html --exclude session_id,planted_anomaly
+  treewise compare shop.treewise 'week2/*.parquet' --json > changes.json"""
+)
+@click.argument("reference", metavar="REF")
+@click.argument("current", metavar="CUR")
+@click.option("-o", "--output", metavar="OUT", help="HTML report to write.")
+@click.option("--json", "as_json", is_flag=True, help="Print JSON instead of the summary.")
+@_encoding_options
+@click.option(
+    "--level",
+    type=click.FloatRange(0.0, 1.0, min_open=True, max_open=True),
+    default=0.001,
+    show_default=True,
+    metavar="A",
+    help="Family-wise error rate (Holm) below which a column or edge counts as changed.",
+)
+@click.option(
+    "--top",
+    type=click.IntRange(0, 100_000),
+    metavar="K",
+    default=10,
+    show_default=True,
+    help="Rows of CUR most unlike REF to show (0: do not score the rows).",
+)
+@click.option(
+    "--key", "keys", multiple=True, metavar="COL", help="Column of CUR to show beside a row."
+)
+@click.option(
+    "--batch-rows", type=click.IntRange(min=1), metavar="N", help="Rows per batch read from disk."
+)
+@click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
+def compare(
+    reference: str,
+    current: str,
+    output: str | None,
+    as_json: bool,
+    columns: list[str] | None,
+    exclude: list[str] | None,
+    max_categories: int,
+    bins: int,
+    kinds: dict[str, str],
+    level: float,
+    top: int,
+    keys: tuple[str, ...],
+    batch_rows: int | None,
+    no_progress: bool,
+) -> None:
+    """Compare CUR with REF: what changed, and where.
+
+    Which columns shifted, which dependencies changed, and which rows of CUR are new.
+
+    REF and CUR: Parquet, CSV or Arrow IPC files, directories or globs (read batch by batch),
+    or saved models fitted on one codebook. With data on both sides, one codebook is learned
+    over both. Every column and tree edge gets an exact G-test on the two sides' counts, with
+    sparse levels pooled and Holm's correction over all the tests (docs/compare.md).
+    """
+    if output is not None:
+        _check_output(output)
+    ref, cur = _side(reference), _side(current)
+    if isinstance(cur, treewise.DependencyTree) and keys:
+        raise click.UsageError("--key needs CUR to be data, not a model")
+    data_side = next((s for s in (ref, cur) if isinstance(s, str)), None)
+    chosen = columns if data_side is None else _columns([data_side], columns, exclude)
+    start = time.perf_counter()
+    comparison = treewise.compare(
+        ref,
+        cur,
+        columns=chosen,
+        max_categories=max_categories,
+        n_bins=bins,
+        kinds=kinds or None,
+        level=level,
+        progress=_progress(no_progress),
+        batch_rows=batch_rows,
+    )
+    took = _seconds(start)
+    names = [str(n) for n in comparison.reference.feature_names_in_]
+    rows = None
+    if top and isinstance(cur, str):
+        rows = comparison.top_rows(cur, top=top, keys=keys)
+    if output is not None:
+        from treewise.views.changes import write_changes_report  # matplotlib loads only here
+
+        write_changes_report(
+            comparison,
+            output,
+            rows=rows,
+            keys=keys,
+            title=f"What changed: {Path(current).name} against {Path(reference).name}",
+        )
+    if as_json:
+        result = comparison.to_dict()
+        changed = [c["column"] for c in result["columns"] if c["changed"]][:DRILL_DOWN]
+        if comparison.can_drill_down:
+            result["drill_down"] = {
+                c: comparison.drill_down(c).slice(0, 3).to_pylist() for c in changed
+            }
+        if rows is not None:
+            result["rows"] = [
+                {k: v for k, v in r.items() if k in ("row", "score", *keys)}
+                for r in rows.to_pylist()
+            ]
+        click.echo(json.dumps(result, indent=2, allow_nan=False, default=str))
+        return
+    console = _console()
+    console.print(
+        f"Compared {comparison.n_current:,} current rows with {comparison.n_reference:,} "
+        f"reference rows over {len(names)} columns in {took}."
+    )
+    console.print(changed_columns_table(comparison))
+    first = comparison.columns.to_pylist()[0] if comparison.columns.num_rows else None
+    if first is not None and first["changed"] and comparison.can_drill_down:
+        where = comparison.drill_down(first["column"]).to_pylist()
+        if where:
+            console.print(f"{first['column']!r} changed most where {where[0]['moved']}.")
+    console.print(changed_edges_table(comparison))
+    if rows is not None and rows.num_rows:
+        title = f"The {rows.num_rows} rows of CUR most unlike REF"
+        console.print(new_rows_table(rows, names, keys, title))
+    if output is not None:
+        console.print(f"Wrote the report to {output}.")
+    console.print(COMPARE_CAUTION)
 
 
 @cli.command(

@@ -24,11 +24,19 @@ from rich.table import Table
 from rich.text import Text
 
 import treewise
-from treewise.datasets import hidden_edges, model_columns, shop_sessions
+from treewise.datasets import (
+    BROKEN_TAG_BROWSER,
+    hidden_edges,
+    model_columns,
+    shop_sessions,
+    shop_sessions_broken_tag,
+)
 from treewise.fidelity import compare_columns
 from treewise.views.terminal import (
     SAMPLE_CAUTION,
     SCORE_CAUTION,
+    changed_columns_table,
+    changed_edges_table,
     explain_rows,
     fidelity_table,
     surprising_table,
@@ -49,6 +57,10 @@ EXAMPLES = 5
 KEYS = ("session_id", "planted_anomaly")
 #: Rows sampled for the report's comparison of synthetic and real sessions.
 REPORT_SYNTHETIC_ROWS = 50_000
+#: The second week has this share of the first week's sessions (a smaller week keeps it quick).
+WEEK_TWO_SHARE = 0.25
+#: Rows of the second week shown as the most unlike the first.
+WEEK_TWO_ROWS = 5
 
 
 @contextmanager
@@ -151,6 +163,8 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     scores_path = directory / "scores.parquet"
     synthetic_path = directory / "synthetic.parquet"
     report_path = directory / "report.html"
+    week_two = directory / "week2"
+    changes_path = directory / "changes.html"
 
     with _step(console, 1, f"Generate {rows:,} sessions of an invented shop"):
         table = shop_sessions(n=rows, seed=seed)
@@ -262,6 +276,41 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
             "opens offline in any browser."
         )
 
+    n_week_two = max(1, int(rows * WEEK_TWO_SHARE))
+    with _step(console, 8, f"A second week of {n_week_two:,} sessions: what changed?"):
+        from treewise.views.changes import write_changes_report
+
+        week = shop_sessions_broken_tag(n=n_week_two, seed=seed + 1)
+        _write_sessions(week, week_two)
+        written.append(week_two)
+        del week
+        console.print(
+            f"Wrote {week_two}/. A release broke a tracking tag: cart_add no longer fires for "
+            f"{BROKEN_TAG_BROWSER} browsers. Shoppers behave as before; can compare tell?"
+        )
+        # Data on both sides: one codebook over both weeks, so values new in week two get
+        # codes of their own.
+        changes = treewise.compare(folder, week_two, columns=columns, progress=progress)
+        console.print(changed_columns_table(changes, k=3))
+        top_column = changes.columns["column"][0].as_py()
+        where = changes.drill_down(top_column).to_pylist()[0]
+        console.print(f"{top_column!r} changed most where {where['moved']}.")
+        console.print(changed_edges_table(changes, k=3))
+        new_rows = changes.top_rows(week_two, top=WEEK_TWO_ROWS, keys=["session_id"])
+        write_changes_report(
+            changes,
+            changes_path,
+            rows=new_rows,
+            keys=["session_id"],
+            title="What changed in the shop's second week",
+        )
+        written.append(changes_path)
+        console.print(
+            f"Wrote {changes_path}: both trees with the changed edges marked, the shifted "
+            "columns, both conditional tables of each changed edge, where the change sits, "
+            "and the sessions most unlike the first week."
+        )
+
     console.print()
     console.rule(Text("Done", style="bold"), align="left")
     console.print(f"In {time.perf_counter() - begin:.1f} s the demo wrote:")
@@ -274,3 +323,7 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     )
     console.print(f"  treewise sample {model_path} -n 10000 -o more-sessions.parquet --seed 1")
     console.print(f"  treewise report {model_path} -o shop-report.html")
+    console.print(
+        f"  treewise compare {folder} {week_two} -o week2-changes.html "
+        "--exclude session_id,planted_anomaly --key session_id"
+    )

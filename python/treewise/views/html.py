@@ -5,7 +5,7 @@ from __future__ import annotations
 import html
 from collections.abc import Sequence
 
-from treewise.categories import OTHER, Bin
+from treewise.categories import category_label
 from treewise.views.plot import shorten
 
 __all__ = [
@@ -32,17 +32,6 @@ def esc(text: object) -> str:
 def cut(text: str, limit: int = LABEL_CHARS) -> str:
     """``text`` cut to ``limit`` characters (not yet escaped)."""
     return shorten(text, limit)
-
-
-def category_label(value: object) -> str:
-    """How a category of ``categories_`` reads in the report (not yet escaped)."""
-    if value is OTHER:
-        return "(other)"
-    if value is None:
-        return "(null)"
-    if isinstance(value, Bin):
-        return f"[{value.low:.4g}, {value.high:.4g}{']' if value.closed else ')'}"
-    return str(value)
 
 
 def value_label(value: object) -> str:

@@ -12,6 +12,7 @@ import io
 import math
 import numbers
 import re
+from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
@@ -46,6 +47,8 @@ __all__ = [
 INK = "#1f2a33"
 #: Secondary text and outlines.
 MUTED = "#5b6b78"
+#: Edges marked by ``highlight`` (changed dependencies).
+CHANGED = "#c0392b"
 #: Box fill and outline of an ordinary column, and of a root.
 NODE_FILL, NODE_EDGE = "#f5f7f8", "#93a3b0"
 ROOT_FILL, ROOT_EDGE = "#dce8eb", "#2f5d6e"
@@ -160,6 +163,7 @@ def plot_tree(
     subtree: str | int | None = None,
     figsize: tuple[float, float] | None = None,
     orient: str = "auto",
+    highlight: Iterable[tuple[str, str]] = (),
 ) -> Figure:
     """Draw the fitted tree (or forest) in layers from its root(s).
 
@@ -186,6 +190,9 @@ def plot_tree(
     orient : {"auto", "right", "down"}, default "auto"
         Layers from left to right, or from top to bottom; "auto" takes the one that fits a
         page better (deep, narrow trees read down; wide ones read right).
+    highlight : iterable of (str, str), optional
+        Edges (pairs of column names, in either order) to mark with a dashed red line, such as
+        the dependencies that changed between two tables.
 
     Returns
     -------
@@ -261,6 +268,18 @@ def plot_tree(
         bar.set_label("mutual information with parent (nats)", color=MUTED, fontsize=8)
         bar.ax.tick_params(labelsize=7, colors=MUTED)
         bar.outline.set_visible(False)
+
+    marked_pairs = {frozenset(edge) for edge in highlight}
+    full = [str(n) for n in model.feature_names_in_]
+    marked = [
+        [tuple(pos[p]), tuple(pos[c])]
+        for p, c in chosen.edges
+        if frozenset((full[p], full[c])) in marked_pairs
+    ]
+    if marked:
+        ax.add_collection(
+            LineCollection(marked, colors=CHANGED, linewidths=2.0, linestyles="--", zorder=2)
+        )
 
     parent = model.parent_
     tops = {n for n in chosen.nodes if chosen.depth[n] == 0}

@@ -39,7 +39,7 @@ from treewise.views.plot import conditional_svg, figure_svg, plot_tree
 if TYPE_CHECKING:
     from treewise.estimator import DependencyTree
 
-__all__ = ["category_label", "render_report", "write_report"]
+__all__ = ["category_label", "page_html", "render_report", "write_report"]
 
 #: The most categories a column's bars show; the rest are summed in one line.
 MARGINAL_BARS = 12
@@ -343,7 +343,25 @@ def render_report(
             body.append(synthetic_section(found))
     sections.append(("cautions", "Cautions"))
     body.append(CAUTIONS)
-    nav = "".join(f'<a href="#{anchor}">{name}</a>' for anchor, name in sections)
+    intro = (
+        f"A Chow-Liu dependency tree over {model.n_features_in_:,} columns, fitted on "
+        f"{int(model.n_rows_):,} rows."
+    )
+    footer = "Every figure here comes from the model's exact counts" + (
+        "" if found is None else ", the scored data and rows sampled from the model"
+    )
+    return page_html(heading, intro, sections, body, footer)
+
+
+def page_html(
+    heading: str, intro: str, sections: Sequence[tuple[str, str]], body: Sequence[str], footer: str
+) -> str:
+    """The page shell every report shares: style sheet, heading, navigation, sections, footer.
+
+    ``intro`` (the line under the heading, to which the version and date are added) and
+    ``footer`` are escaped HTML; ``sections`` are (anchor, name) pairs for the navigation.
+    """
+    nav = "".join(f'<a href="#{anchor}">{esc(name)}</a>' for anchor, name in sections)
     from treewise import __version__
 
     when = datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
@@ -361,14 +379,11 @@ def render_report(
 <main>
 <header>
 <h1>{esc(heading)}</h1>
-<p>A Chow-Liu dependency tree over {model.n_features_in_:,} columns, fitted on
-{int(model.n_rows_):,} rows. Written by treewise {esc(__version__)} on {when}.</p>
+<p>{intro} Written by treewise {esc(__version__)} on {when}.</p>
 </header>
 <nav>{nav}</nav>
 {"".join(body)}
-<footer>Every figure here comes from the model's exact counts{
-        "" if found is None else ", the scored data and rows sampled from the model"
-    }. The page needs no network and runs no scripts.</footer>
+<footer>{footer}. The page needs no network and runs no scripts.</footer>
 </main>
 </body>
 </html>

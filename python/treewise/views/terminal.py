@@ -16,14 +16,19 @@ from rich.text import Text
 from rich.tree import Tree
 
 if TYPE_CHECKING:
+    from treewise.compare import Comparison
     from treewise.estimator import DependencyTree
 
 __all__ = [
+    "COMPARE_CAUTION",
     "SAMPLE_CAUTION",
     "SCORE_CAUTION",
+    "changed_columns_table",
+    "changed_edges_table",
     "explain_rows",
     "fidelity_table",
     "model_json",
+    "new_rows_table",
     "strongest_table",
     "surprising_table",
     "tree_view",
@@ -33,6 +38,12 @@ __all__ = [
 SCORE_CAUTION = (
     "A score is evidence, not a verdict: a surprising row is worth a look, but no decision "
     "about a person should rest on a score alone."
+)
+#: Printed once after a comparison.
+COMPARE_CAUTION = (
+    "A score is evidence, not a verdict: a changed column or a row unlike the reference is "
+    "worth a look, not proof of a fault, and no decision about a person should rest on it. "
+    "On large tables tiny changes are significant: read the effect sizes (TV)."
 )
 #: Printed once wherever synthetic rows are written.
 SAMPLE_CAUTION = (
@@ -101,28 +112,32 @@ def strongest_table(model: DependencyTree, k: int = 5) -> Table:
     return table
 
 
-def explain_rows(top: pa.Table, names: Sequence[str], k: int = 3) -> list[list[tuple[str, float]]]:
-    """For each row of ``top``, the ``k`` columns with the highest surprisal, highest first.
+def explain_rows(
+    top: pa.Table, names: Sequence[str], k: int = 3, prefix: str = "surprisal_"
+) -> list[list[tuple[str, float]]]:
+    """For each row of ``top``, the ``k`` columns with the highest ``<prefix><column>``.
 
     Parameters
     ----------
     top : pyarrow.Table
-        Rows as returned by ``DependencyTree.score_to_parquet``: one ``surprisal_<column>``
-        (in nats) per modelled column.
+        Rows as returned by ``DependencyTree.score_to_parquet`` (one ``surprisal_<column>`` in
+        nats per modelled column) or ``Comparison.top_rows`` (``ratio_<column>``).
     names : sequence of str
         The modelled columns.
     k : int, default 3
         How many columns per row.
+    prefix : str, default "surprisal_"
+        Which figures to rank: ``"surprisal_"`` or ``"ratio_"``.
 
     Returns
     -------
     list of list of (str, float)
-        Per row, ``(column, surprisal)`` pairs; ties keep the column order.
+        Per row, ``(column, value)`` pairs, highest first; ties keep the column order.
     """
     if top.num_rows == 0 or not names:
         return [[] for _ in range(top.num_rows)]
     matrix = np.column_stack(
-        [np.asarray(top[f"surprisal_{name}"], dtype=np.float64) for name in names]
+        [np.asarray(top[f"{prefix}{name}"], dtype=np.float64) for name in names]
     )
     order = np.argsort(-matrix, axis=1, kind="stable")[:, :k]
     return [[(names[c], float(matrix[r, c])) for c in order[r]] for r in range(top.num_rows)]
@@ -219,3 +234,80 @@ def model_json(model: DependencyTree) -> dict[str, Any]:
             for e in edges
         ],
     }
+
+
+def _p(p: float | None) -> str:
+    if p is None:
+        return "—"
+    return "< 1e-300" if p == 0.0 else f"{p:.2g}"
+
+
+def changed_columns_table(comparison: Comparison, k: int = 5) -> Table:
+    """The ``k`` columns that changed most (changed first, by total variation)."""
+    rows = comparison.columns.to_pylist()
+    n_changed = sum(r["changed"] for r in rows)
+    table = Table(
+        title=f"Columns: {n_changed} of {len(rows)} changed (Holm-adjusted p < "
+        f"{comparison.level:g})"
+    )
+    for head, justify in [("column", "left"), ("TV", "right"), ("G", "right"), ("dof", "right")]:
+        table.add_column(head, justify=justify)  # type: ignore[arg-type]
+    table.add_column("adj. p", justify="right")
+    table.add_column("moved most")
+    for r in rows[:k]:
+        table.add_row(
+            Text(r["column"], style="bold" if r["changed"] else ""),
+            f"{r['tv_distance']:.4f}",
+            f"{r['g_statistic']:,.1f}",
+            str(r["dof"]),
+            _p(r["p_adjusted"]),
+            "\n".join(r["moved"][:2]),
+        )
+    return table
+
+
+def changed_edges_table(comparison: Comparison, k: int = 5) -> Table:
+    """The ``k`` dependencies that changed most: P(child | parent) across the two sides."""
+    rows = comparison.edges.to_pylist()
+    n_changed = sum(r["changed"] for r in rows)
+    table = Table(title=f"Dependencies: {n_changed} of {len(rows)} tree edges changed")
+    table.add_column("parent -> child")
+    table.add_column("tree")
+    table.add_column("TV | parent", justify="right")
+    table.add_column("MI ref -> cur", justify="right")
+    table.add_column("adj. p", justify="right")
+    table.add_column("moved most")
+    for r in rows[:k]:
+        tv = r["tv_conditional"]
+        table.add_row(
+            Text(f"{r['parent']} -> {r['child']}", style="bold" if r["changed"] else ""),
+            r["tree"],
+            "—" if tv is None else f"{tv:.4f}",
+            f"{r['mi_reference']:.3f} -> {r['mi_current']:.3f}",
+            _p(r["p_adjusted"]),
+            "\n".join(r["moved"][:1]),
+        )
+    return table
+
+
+def new_rows_table(top: pa.Table, names: Sequence[str], keys: Sequence[str], title: str) -> Table:
+    """The rows most unlike the reference, with the columns that make them so.
+
+    Each row shows its log-likelihood ratio ln p_cur - ln p_ref and the three columns with the
+    largest share of it, with their values.
+    """
+    table = Table(title=title)
+    table.add_column("row", justify="right")
+    for key in keys:
+        table.add_column(key)
+    table.add_column("ln p_cur - ln p_ref", justify="right")
+    table.add_column("why (column = value: nats)")
+    key_values = {key: top[key].to_pylist() for key in keys}
+    values = {name: top[name].to_pylist() for name in names}
+    scores = top["score"].to_pylist()
+    rows = top["row"].to_pylist()
+    for r, reasons in enumerate(explain_rows(top, names, prefix="ratio_")):
+        why = "\n".join(f"{name} = {values[name][r]}: {value:+.2f}" for name, value in reasons)
+        cells = [str(key_values[key][r]) for key in keys]
+        table.add_row(f"{rows[r]:,}", *cells, f"{scores[r]:+.2f}", why)
+    return table
