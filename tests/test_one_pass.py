@@ -1,4 +1,4 @@
-"""The one-pass fit: counts taken with provisional codes and recoded equal a second pass, bit for bit.
+"""The one-pass fit: counts taken with provisional codes, then recoded, equal a second pass.
 
 The truth here is constructed: the two-pass fit (learn the codebook, then count again with it)
 is the specification, and the one-pass fit must give the same pickled model (codebook, pair

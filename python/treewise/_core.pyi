@@ -34,6 +34,12 @@ class OnePass:
     ) -> tuple[
         Codebook, list[tuple[str, int, int]], list[tuple[str, str, str]], PairStats | None
     ]: ...
+    @staticmethod
+    def finish_together(
+        passes: list[OnePass], max_categories: int, n_bins: int, kinds: list[tuple[str, str]] = ...
+    ) -> tuple[
+        Codebook, list[tuple[str, int, int]], list[tuple[str, str, str]], list[PairStats | None]
+    ]: ...
 
 PROVISIONAL_CODES: int
 

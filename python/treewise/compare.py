@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from contextlib import ExitStack
 from dataclasses import dataclass
 from typing import Any
 
@@ -18,7 +17,7 @@ from treewise.errors import DataError, NotFittedError, SchemaError
 from treewise.estimator import DependencyTree
 from treewise.homogeneity import MIN_EXPECTED, column_test, edge_test, holm
 from treewise.pairstats import PairStats
-from treewise.passes import TypeRecorder, learn_shared_codebook
+from treewise.passes import TypeRecorder, learn_and_count_many
 from treewise.progress import PassProgress, wants_progress
 from treewise.sources import BATCH_ROWS, BatchLoop, check_columns, open_source
 
@@ -378,24 +377,21 @@ def _fit_both(
     total = None if any(n is None for n in sizes) else sum(n for n in sizes if n is not None)
     types = TypeRecorder(names)
     models: list[DependencyTree] = []
-    with ExitStack() as stack:
-        with PassProgress(wants_progress(progress), total, sum(s.n_parts for s in sources)) as bar:
-            codebook, counting = stack.enter_context(
-                learn_shared_codebook(
-                    sources, names, max_categories, n_bins, rows, bar, types, checked_kinds
-                )
-            )
-        kept = list(codebook.names)
-        dtypes = types.select(kept).type_names(codebook)
-        root: str | None = None
-        for side, source in zip(("reference", "current"), counting, strict=True):
-            stats = PairStats(codebook, dtypes).update(source, progress=progress, batch_rows=rows)
-            if stats.n_rows == 0:
-                raise DataError(f"the {side} side has 0 rows; a comparison needs rows on both")
-            model = DependencyTree(columns=kept, alpha=alpha, root=root)
-            model.fit_stats(stats, copy=False)
-            root = _root_name(model)  # both trees hang from one root, so edges orient alike
-            models.append(model)
+    with PassProgress(wants_progress(progress), total, sum(s.n_parts for s in sources)) as bar:
+        codebook, counted, kept_types = learn_and_count_many(
+            sources, names, max_categories, n_bins, rows, bar, types, checked_kinds
+        )
+    kept = list(codebook.names)
+    dtypes = kept_types.type_names(codebook)
+    root: str | None = None
+    for side, counts in zip(("reference", "current"), counted, strict=True):
+        stats = PairStats.from_counts(codebook, counts, dtypes)
+        if stats.n_rows == 0:
+            raise DataError(f"the {side} side has 0 rows; a comparison needs rows on both")
+        model = DependencyTree(columns=kept, alpha=alpha, root=root)
+        model.fit_stats(stats, copy=False)
+        root = _root_name(model)  # both trees hang from one root, so edges orient alike
+        models.append(model)
     return models[0], models[1]
 
 

@@ -44,6 +44,20 @@ class PairStats:
         self._dtypes = None if dtypes is None else list(dtypes)
 
     @classmethod
+    def from_counts(
+        cls,
+        codebook: _core.Codebook,
+        counts: _core.PairStats,
+        dtypes: Sequence[str] | None = None,
+    ) -> PairStats:
+        """Wrap counts already taken with ``codebook`` (as the one-pass fit takes them)."""
+        if list(counts.cardinalities) != list(codebook.cardinalities):
+            raise SchemaError("these counts were not taken with this codebook")
+        stats = cls(codebook, dtypes)
+        stats._stats = counts
+        return stats
+
+    @classmethod
     def from_source(
         cls,
         data: Any,

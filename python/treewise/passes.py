@@ -27,6 +27,7 @@ __all__ = [
     "TypeRecorder",
     "count_pairs",
     "learn_and_count",
+    "learn_and_count_many",
     "learn_codebook",
     "learn_shared_codebook",
     "warn_caps",
@@ -262,36 +263,61 @@ def learn_and_count(
     ``ONE_PASS_CELLS``, the pass only tallies from then on and a second pass counts; the
     progress line says so. A one-shot stream is spooled meanwhile, in case it must be read again.
     """
-    counter = _core.OnePass(names, _cell_limit())
-    spool = None if source.replayable else _Spool()
+    codebook, (stats,), kept = learn_and_count_many(
+        [source], names, max_categories, n_bins, batch_rows, bar, types, kinds
+    )
+    return codebook, stats, kept
+
+
+def learn_and_count_many(
+    sources: list[Source],
+    names: list[str],
+    max_categories: int,
+    n_bins: int,
+    batch_rows: int,
+    bar: PassProgress,
+    types: TypeRecorder,
+    kinds: dict[str, str] | None = None,
+) -> tuple[_core.Codebook, list[_core.PairStats], TypeRecorder]:
+    """One codebook learned over several sources, each source's pairs counted on their own.
+
+    As :func:`learn_and_count`, for the two sides of a comparison.
+    """
+    limit = _cell_limit()
+    counters = [_core.OnePass(names, limit) for _ in sources]
+    spools = [None if source.replayable else _Spool() for source in sources]
     try:
-        with BatchLoop(source, names, batch_rows, bar, "learning codes, counting pairs") as batches:
-            for batch in batches:
-                types.see(batch)
-                counter.observe(batch)
-                if spool is not None:
-                    spool.write(batch)
-        fallback = counter.fallback
-        learned, caps, notes, stats = counter.finish(
-            max_categories, n_bins, list((kinds or {}).items())
+        for source, counter, spool in zip(sources, counters, spools, strict=True):
+            title = "learning codes, counting pairs"
+            with BatchLoop(source, names, batch_rows, bar, title) as batches:
+                for batch in batches:
+                    types.see(batch)
+                    counter.observe(batch)
+                    if spool is not None:
+                        spool.write(batch)
+        fallbacks = [counter.fallback for counter in counters]
+        learned, caps, notes, counted = _core.OnePass.finish_together(
+            counters, max_categories, n_bins, list((kinds or {}).items())
         )
         warn_caps(caps, max_categories)
         warn_notes(notes)
         kept = list(learned.names)
-        if stats is None:
-            stats = _core.PairStats(learned)
-            counting = source
-            seen = types
-            if spool is not None:
-                spool.close()
-                counting = open_source(spool.paths)
-                # A spooled stream holds decoded values: its types say nothing new.
-                seen = TypeRecorder(names)
-            why = f"second pass: {fallback}" if fallback else "second pass"
-            count_pairs(
-                counting, kept, learned, stats, batch_rows, bar, seen, f"counting pairs ({why})"
-            )
-        return learned, stats, types.select(kept)
+        all_stats: list[_core.PairStats] = []
+        for source, spool, stats, fallback in zip(sources, spools, counted, fallbacks, strict=True):
+            if stats is None:
+                stats = _core.PairStats(learned)
+                counting, seen = source, types
+                if spool is not None:
+                    spool.close()
+                    counting = open_source(spool.paths)
+                    # A spooled stream holds decoded values: its types say nothing new.
+                    seen = TypeRecorder(names)
+                why = f"second pass: {fallback}" if fallback else "second pass"
+                title = f"counting pairs ({why})"
+                count_pairs(counting, kept, learned, stats, batch_rows, bar, seen, title)
+            all_stats.append(stats)
+        return learned, all_stats, types.select(kept)
     finally:
-        if spool is not None:
-            spool.remove()
+        for spool in spools:
+            if spool is not None:
+                spool.remove()

@@ -77,6 +77,39 @@ impl PyOnePass {
             stats.map(|inner| PyPairStats { inner }),
         ))
     }
+
+    /// Fixes one codebook from the tallies of several passes over the same columns (the two
+    /// sides of a comparison) and returns the codebook, the caps, the notes, and each pass's
+    /// pair statistics over those codes (None for a pass that stopped counting).
+    #[staticmethod]
+    #[pyo3(signature = (passes, max_categories, n_bins, kinds = Vec::new()))]
+    fn finish_together(
+        py: Python<'_>,
+        passes: Vec<PyRefMut<'_, PyOnePass>>,
+        max_categories: usize,
+        n_bins: usize,
+        kinds: Vec<(String, String)>,
+    ) -> PyResult<(
+        PyCodebook,
+        Vec<CapTuple>,
+        Vec<NoteTuple>,
+        Vec<Option<PyPairStats>>,
+    )> {
+        let kinds = parse_kinds(kinds)?;
+        let mut inner = Vec::with_capacity(passes.len());
+        for mut pass in passes {
+            inner.push(pass.inner.take().ok_or_else(finished_error)?);
+        }
+        let (learned, stats) = detached(py, move || {
+            OnePass::finish_together(inner, max_categories, n_bins, &kinds)
+        })?;
+        let (codebook, caps, notes) = learned_parts(learned);
+        let stats = stats
+            .into_iter()
+            .map(|s| s.map(|inner| PyPairStats { inner }))
+            .collect();
+        Ok((codebook, caps, notes, stats))
+    }
 }
 
 fn finished_error() -> PyErr {

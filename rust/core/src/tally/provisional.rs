@@ -580,26 +580,53 @@ impl OnePass {
     /// Fixes the codes (see [`CodebookBuilder::finish`]) and, when the whole pass was counted,
     /// returns the pair statistics over the final codes.
     pub fn finish(
-        mut self,
+        self,
         max_categories: usize,
         n_bins: usize,
         kinds: &[(String, KindChoice)],
     ) -> Result<(Learned, Option<PairStats>)> {
-        let names: Vec<String> = self
-            .builder
-            .columns
-            .iter()
-            .map(|c| c.name.clone())
-            .collect();
-        let counting = self.counting.take();
-        if let Some(c) = &counting {
-            c.fill_tallies(&mut self.builder)?;
+        let (learned, mut stats) =
+            OnePass::finish_together(vec![self], max_categories, n_bins, kinds)?;
+        Ok((learned, stats.pop().flatten()))
+    }
+
+    /// Fixes one codebook from the tallies of several passes over the same columns (the two
+    /// sides of a comparison, say) and returns, per pass, its pair statistics over those codes
+    /// (None for a pass that stopped counting).
+    pub fn finish_together(
+        passes: Vec<OnePass>,
+        max_categories: usize,
+        n_bins: usize,
+        kinds: &[(String, KindChoice)],
+    ) -> Result<(Learned, Vec<Option<PairStats>>)> {
+        let mut merged: Option<CodebookBuilder> = None;
+        let mut countings = Vec::with_capacity(passes.len());
+        for mut pass in passes {
+            let counting = pass.counting.take();
+            if let Some(c) = &counting {
+                c.fill_tallies(&mut pass.builder)?;
+            }
+            countings.push(counting);
+            match &mut merged {
+                None => merged = Some(pass.builder),
+                Some(m) => m.merge(&pass.builder)?,
+            }
         }
-        let learned = self.builder.finish(max_categories, n_bins, kinds)?;
-        let Some(counting) = counting else {
-            return Ok((learned, None));
-        };
-        let cards = counting.stats.cardinalities();
+        let builder = merged.ok_or_else(|| Error::Invalid("no pass to finish".into()))?;
+        let names: Vec<String> = builder.columns.iter().map(|c| c.name.clone()).collect();
+        let learned = builder.finish(max_categories, n_bins, kinds)?;
+        let stats = countings
+            .into_iter()
+            .map(|c| c.map(|c| c.recoded(&names, &learned)).transpose())
+            .collect::<Result<Vec<_>>>()?;
+        Ok((learned, stats))
+    }
+}
+
+impl Counting {
+    /// The counts over the final codes of `learned` (columns named `names` while counting).
+    fn recoded(&self, names: &[String], learned: &Learned) -> Result<PairStats> {
+        let cards = self.stats.cardinalities();
         let keep = learned
             .codebook
             .columns()
@@ -608,15 +635,16 @@ impl OnePass {
                 let i = names.iter().position(|n| n == code.name()).ok_or_else(|| {
                     Error::Invalid("internal error: a kept column vanished".into())
                 })?;
-                let counts = counting.stats.marginal(i);
-                let map = counting.dicts[i].values[..cards[i]]
+                let counts = self.stats.marginal(i);
+                let map = self.dicts[i].values[..cards[i]]
                     .iter()
                     .zip(counts)
                     .map(|(v, &c)| match code.code_of(v.scalar()) {
                         // A code never counted adds nothing wherever it goes.
                         UNSEEN if c == 0 => Ok(0),
                         UNSEEN => Err(Error::Invalid(format!(
-                            "internal error: column '{}' has a counted value without a final code",
+                            "internal error: column '{}' has a counted value without a final \
+                             code",
                             code.name()
                         ))),
                         k => Ok(k),
@@ -625,14 +653,9 @@ impl OnePass {
                 Ok((i, map))
             })
             .collect::<Result<Vec<_>>>()?;
-        let stats = counting
-            .stats
-            .recode(&keep, learned.codebook.cardinalities())?;
-        Ok((learned, Some(stats)))
+        self.stats.recode(&keep, learned.codebook.cardinalities())
     }
-}
 
-impl Counting {
     fn fill_tallies(&self, builder: &mut CodebookBuilder) -> Result<()> {
         for (i, (dict, column)) in self.dicts.iter().zip(&mut builder.columns).enumerate() {
             dict.fill_tally(column, self.stats.marginal(i))?;
