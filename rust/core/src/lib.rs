@@ -1,6 +1,7 @@
 //! treewise-core: codebooks, exact pair counts, mutual information and Kruskal, with no Python.
 
 pub mod bytes;
+pub mod cancel;
 pub mod codebook;
 pub mod dtype;
 pub mod error;

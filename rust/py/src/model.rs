@@ -58,7 +58,7 @@ impl PyTreeModel {
             }
         };
         let codebook = codebook.inner.clone();
-        let stats = &stats.inner;
+        let stats = stats.counts()?;
         let inner = detached(py, move || {
             fit::fit_model(codebook, dtypes, stats, root, alpha, prune)
         })?;

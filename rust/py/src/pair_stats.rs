@@ -14,6 +14,8 @@ use crate::slices;
 #[pyclass(name = "PairStats", module = "treewise._core")]
 pub(crate) struct PyPairStats {
     pub(crate) inner: PairStats,
+    /// An interrupt stopped an update mid-batch: the tables may hold part of that batch.
+    pub(crate) interrupted: bool,
 }
 
 #[pymethods]
@@ -21,7 +23,7 @@ impl PyPairStats {
     #[new]
     fn new(codebook: &PyCodebook) -> PyResult<Self> {
         let inner = PairStats::new(codebook.inner.cardinalities()).map_err(to_py)?;
-        Ok(PyPairStats { inner })
+        Ok(PyPairStats::whole(inner))
     }
 
     /// Encodes one Arrow record batch with `codebook` and adds its counts.
@@ -32,13 +34,19 @@ impl PyPairStats {
         batch: &Bound<'_, PyAny>,
     ) -> PyResult<()> {
         let batch = import_batch(batch)?;
+        self.counts()?;
         let stats = &mut self.inner;
         let codebook = &codebook.inner;
         for slice in slices(&batch) {
-            detached(py, || {
+            let counted = detached(py, || {
                 let codes = codebook.encode(&slice, true)?;
                 stats.add_codes(&codes)
-            })?;
+            });
+            if let Err(e) = counted {
+                self.interrupted = is_interrupt(py, &e);
+                return Err(e);
+            }
+            // A slice done: its counts are whole, so a signal here leaves them consistent.
             py.check_signals()?;
         }
         Ok(())
@@ -52,7 +60,7 @@ impl PyPairStats {
         codebook: &PyCodebook,
         dtypes: Vec<String>,
     ) -> PyResult<Bound<'py, PyBytes>> {
-        if codebook.inner.cardinalities() != self.inner.cardinalities() {
+        if codebook.inner.cardinalities() != self.counts()?.cardinalities() {
             return Err(to_py(treewise_core::Error::Schema(
                 "these statistics were not counted with this codebook".into(),
             )));
@@ -68,15 +76,13 @@ impl PyPairStats {
         Ok((
             PyCodebook { inner: codebook },
             dtypes,
-            PyPairStats { inner: stats },
+            PyPairStats::whole(stats),
         ))
     }
 
     /// An independent copy of these counts.
-    fn copy(&self) -> PyPairStats {
-        PyPairStats {
-            inner: self.inner.clone(),
-        }
+    fn copy(&self) -> PyResult<PyPairStats> {
+        Ok(PyPairStats::whole(self.counts()?.clone()))
     }
 
     fn __eq__(&self, other: &PyPairStats) -> bool {
@@ -85,9 +91,14 @@ impl PyPairStats {
 
     /// Adds another PairStats' counts to these.
     fn merge(&mut self, py: Python<'_>, other: &PyPairStats) -> PyResult<()> {
+        self.counts()?;
+        let other = other.counts()?;
         let stats = &mut self.inner;
-        let other = &other.inner;
-        detached(py, || stats.merge(other))
+        let merged = detached(py, || stats.merge(other));
+        if let Err(e) = &merged {
+            self.interrupted = is_interrupt(py, e);
+        }
+        merged
     }
 
     /// Rows counted.
@@ -110,7 +121,7 @@ impl PyPairStats {
                 "no column {i} of {d}"
             ))));
         }
-        le_bytes(py, &[self.inner.marginal(i)])
+        le_bytes(py, &[self.counts()?.marginal(i)])
     }
 
     /// The table of columns i < j (row-major r_i x r_j), as little-endian u64 bytes.
@@ -121,6 +132,32 @@ impl PyPairStats {
                 "a table needs columns i < j < {d}, got ({i}, {j})"
             ))));
         }
-        le_bytes(py, &[self.inner.table(i, j)])
+        le_bytes(py, &[self.counts()?.table(i, j)])
     }
+}
+
+impl PyPairStats {
+    fn whole(inner: PairStats) -> Self {
+        PyPairStats {
+            inner,
+            interrupted: false,
+        }
+    }
+
+    /// The counts, unless an interrupt left them holding part of a batch.
+    pub(crate) fn counts(&self) -> PyResult<&PairStats> {
+        if self.interrupted {
+            return Err(to_py(treewise_core::Error::Invalid(
+                "these pair statistics were interrupted in the middle of a batch and may hold \
+                 part of it; count the data again into new PairStats"
+                    .into(),
+            )));
+        }
+        Ok(&self.inner)
+    }
+}
+
+/// Whether `e` is an interrupt (Ctrl-C), after which counts may hold part of a batch.
+pub(crate) fn is_interrupt(py: Python<'_>, e: &PyErr) -> bool {
+    e.is_instance_of::<pyo3::exceptions::PyKeyboardInterrupt>(py)
 }
