@@ -18,6 +18,9 @@ pub enum Error {
     /// The work would pass a memory or size limit.
     #[error("{0}")]
     ResourceLimit(String),
+    /// The work would pass the memory limit in force (`memory`).
+    #[error("{0}")]
+    MemoryLimit(String),
     /// An interrupt (Ctrl-C) stopped the call; see `cancel`.
     #[error("interrupted")]
     Cancelled,

@@ -9,6 +9,7 @@ pub mod fit;
 pub mod infer;
 pub mod io;
 pub mod kernels;
+pub mod memory;
 pub mod model;
 pub mod rng;
 pub mod shape;

@@ -23,6 +23,7 @@ fn class_name(e: &Error) -> &'static str {
         Error::TooManyCategories(_) => "TooManyCategoriesError",
         Error::CorruptModel(_) => "CorruptModelError",
         Error::ResourceLimit(_) => "ResourceLimitError",
+        Error::MemoryLimit(_) => "MemoryLimitError",
         Error::Invalid(_) | Error::Cancelled => "TreewiseError",
     }
 }

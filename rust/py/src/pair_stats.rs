@@ -2,13 +2,13 @@
 
 use pyo3::prelude::*;
 use pyo3::types::PyBytes;
-use treewise_core::PairStats;
+use treewise_core::{memory, PairStats};
 
 use crate::arrow_import::import_batch;
 use crate::buffers::le_bytes;
 use crate::codebook::PyCodebook;
 use crate::errors::{detached, to_py};
-use crate::slices;
+use crate::{slices, threads, SLICE_ROWS};
 
 /// Exact pair counts over one codebook's codes.
 #[pyclass(name = "PairStats", module = "treewise._core")]
@@ -20,9 +20,16 @@ pub(crate) struct PyPairStats {
 
 #[pymethods]
 impl PyPairStats {
+    /// Zero counts over `codebook`'s codes; refused when they, the scratch of counting a batch
+    /// and the model's tail tables would pass `memory_limit` bytes (None: no limit).
     #[new]
-    fn new(codebook: &PyCodebook) -> PyResult<Self> {
-        let inner = PairStats::new(codebook.inner.cardinalities()).map_err(to_py)?;
+    #[pyo3(signature = (codebook, memory_limit = None))]
+    fn new(codebook: &PyCodebook, memory_limit: Option<u64>) -> PyResult<Self> {
+        let cards = codebook.inner.cardinalities();
+        let threads = threads::pool()?.current_num_threads();
+        let tails = memory::tail_table_bytes(&codebook.inner);
+        memory::check_fit(&cards, SLICE_ROWS, threads, tails, memory_limit).map_err(to_py)?;
+        let inner = PairStats::new(cards).map_err(to_py)?;
         Ok(PyPairStats::whole(inner))
     }
 
