@@ -11,6 +11,11 @@
 //! thread-locals, so a parallel loop takes `let token = cancel::current();` before it starts
 //! and moves the token into its closures. Code that runs outside any [`Token::run`] (plain Rust
 //! callers, unit tests) gets a token from the epoch of the moment it asks.
+//!
+//! One imprecision is accepted: a pool thread that waits inside one call's parallel loop may run
+//! a job of another call, and a `cancel::current()` taken inside that job reads the first call's
+//! token. It can only cancel a call that started after an interrupt while an older call was still
+//! winding down, and only when two Python threads run core calls at once.
 
 use std::cell::Cell;
 use std::sync::atomic::{AtomicU64, Ordering};
