@@ -181,6 +181,7 @@ def test_estimator_conventions() -> None:
         "root": None,
         "alpha": 1.0,
         "backoff": 5.0,
+        "memory_limit": None,
     }
     with pytest.raises(treewise.NotFittedError):
         tan.predict(X)

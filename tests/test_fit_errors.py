@@ -21,6 +21,7 @@ from treewise import (
     ColumnKindWarning,
     DataError,
     DependencyTree,
+    MemoryLimitError,
     NotFittedError,
     ResourceLimitError,
     SchemaError,
@@ -516,8 +517,13 @@ def test_pair_tables_beyond_the_cell_limit_are_a_resource_limit_error() -> None:
     assert 3 * n * n > 2**33
     table = pa.table({name: np.arange(n, dtype=np.int32) for name in ("a", "b", "c")})
     wide = dict.fromkeys(("a", "b", "c"), "categorical")
+    # Past any memory limit the hard cap holds; the message says what to do, and the class is
+    # both a TreewiseError and a MemoryError.
     with pytest.raises(ResourceLimitError, match="cells") as caught:
-        DependencyTree(max_categories=65_535, kinds=wide).fit(table)
-    # The message says what to do; the class is both a TreewiseError and a MemoryError.
+        DependencyTree(max_categories=65_535, kinds=wide, memory_limit="1000TB").fit(table)
     assert "max_categories" in str(caught.value) and "fewer columns" in str(caught.value)
     assert isinstance(caught.value, TreewiseError) and isinstance(caught.value, MemoryError)
+    # Under a lower limit the memory limit refuses first, with the figure: 3 tables of
+    # 65,534^2 u64 cells.
+    with pytest.raises(MemoryLimitError, match=r"pair statistics 96\.0 GiB"):
+        DependencyTree(max_categories=65_535, kinds=wide, memory_limit="64GiB").fit(table)

@@ -34,6 +34,7 @@ PARAMS = {
     "root": None,
     "alpha": 0.5,
     "prune": None,
+    "memory_limit": None,
 }
 
 
@@ -126,6 +127,7 @@ def test_init_only_stores_parameters() -> None:
         "root": "zz",
         "alpha": -1,
         "prune": None,
+        "memory_limit": None,
     }
     with pytest.raises(ValueError, match="max_categories"):
         model.fit(table())

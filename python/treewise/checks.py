@@ -10,6 +10,7 @@ from collections.abc import Mapping
 import numpy as np
 
 from treewise.errors import SchemaError
+from treewise.memory import DEFAULT_SHARE, machine_memory, parse_size
 
 __all__ = [
     "MAX_CATEGORIES",
@@ -17,6 +18,7 @@ __all__ = [
     "RandomState",
     "check_alpha",
     "check_int",
+    "check_memory_limit",
     "check_nonnegative",
     "check_prune",
     "check_root",
@@ -38,6 +40,27 @@ def check_int(name: str, value: object, low: int, high: int) -> int:
     if not low <= int(value) <= high:
         raise ValueError(f"{name} must be between {low} and {high}, got {value}")
     return int(value)
+
+
+def check_memory_limit(value: object) -> int | None:
+    """``memory_limit`` in bytes.
+
+    None gives the default, ``DEFAULT_SHARE`` of the machine's memory (None, no bound, when it
+    cannot be read); an int is bytes; a string is bytes with a unit ("4GiB", "500MB") or a share
+    of the machine's memory ("50%").
+    """
+    whole = machine_memory()
+    if value is None:
+        return None if whole is None else int(whole * DEFAULT_SHARE)
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral | str):
+        raise TypeError(
+            f"memory_limit must be bytes (an int), a size such as '4GiB' or a share such as "
+            f"'50%', got {value!r}"
+        )
+    limit = parse_size(value, whole) if isinstance(value, str) else int(value)
+    if limit < 1:
+        raise ValueError(f"memory_limit must be at least one byte, got {value!r}")
+    return limit
 
 
 def check_nonnegative(name: str, value: object) -> float:

@@ -16,6 +16,7 @@ from treewise.checks import (
     MAX_CATEGORIES,
     check_alpha,
     check_int,
+    check_memory_limit,
     check_nonnegative,
     check_root,
 )
@@ -76,6 +77,9 @@ class TreeAugmentedClassifier(Params):
         With ``backoff=0``, also of every P(x_i | x_parent, c), as ``DependencyTree`` does.
     backoff : float, default 5.0
         Pseudo-rows pulling each P(x_i | x_parent, c) toward P(x_i | c); 0 turns it off.
+    memory_limit : int or str, optional
+        As for :class:`~treewise.DependencyTree`, shared equally by the classes' pair
+        statistics (they are held at once).
 
     Attributes
     ----------
@@ -101,7 +105,7 @@ class TreeAugmentedClassifier(Params):
     _alpha: float
     _backoff: float
 
-    _PARAMS = ("columns", "max_categories", "n_bins", "root", "alpha", "backoff")
+    _PARAMS = ("columns", "max_categories", "n_bins", "root", "alpha", "backoff", "memory_limit")
 
     def __init__(
         self,
@@ -112,6 +116,7 @@ class TreeAugmentedClassifier(Params):
         root: str | None = None,
         alpha: float = 0.5,
         backoff: float = 5.0,
+        memory_limit: int | str | None = None,
     ) -> None:
         self.columns = columns
         self.max_categories = max_categories
@@ -119,6 +124,7 @@ class TreeAugmentedClassifier(Params):
         self.root = root
         self.alpha = alpha
         self.backoff = backoff
+        self.memory_limit = memory_limit
 
     def __getstate__(self) -> dict[str, Any]:
         """Pickle support: each class's model travels as its validated model-file bytes."""
@@ -157,6 +163,7 @@ class TreeAugmentedClassifier(Params):
         n_bins = check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
         alpha = check_alpha(self.alpha)
         backoff = check_nonnegative("backoff", self.backoff)
+        limit = check_memory_limit(self.memory_limit)
         labels = _labels(y)
         source = open_source(X)
         names = check_columns(source.names, self.columns, source.description)
@@ -178,8 +185,9 @@ class TreeAugmentedClassifier(Params):
         dtypes = types.type_names()
         classes, index = np.unique(labels, return_inverse=True)
         per_class = []
+        share = None if limit is None else limit // len(classes)
         for k in range(len(classes)):
-            stats = _core.PairStats(codebook)
+            stats = _core.PairStats(codebook, share)
             with BatchLoop(open_source(table.filter(pa.array(index == k))), names) as batches:
                 for batch in batches:
                     stats.update(codebook, batch)

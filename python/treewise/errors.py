@@ -10,6 +10,7 @@ __all__ = [
     "CorruptModelError",
     "DataError",
     "ImpossibleEvidenceWarning",
+    "MemoryLimitError",
     "NotFittedError",
     "ResourceLimitError",
     "SchemaError",
@@ -42,6 +43,10 @@ class CorruptModelError(TreewiseError, ValueError):
 
 class ResourceLimitError(TreewiseError, MemoryError):
     """The work would pass a memory or size limit."""
+
+
+class MemoryLimitError(ResourceLimitError):
+    """The work would pass ``memory_limit``: the message says what needed how much, what to do."""
 
 
 class CategoryCapWarning(UserWarning):

@@ -21,6 +21,7 @@ from treewise.checks import (
     check_alpha,
     check_int,
     check_kinds,
+    check_memory_limit,
     check_prune,
     seed_of,
 )
@@ -88,6 +89,13 @@ class DependencyTree(ExactCounts, Params):
         edge while its G statistic exceeds dof·ln N (adding it lowers the BIC); a float in
         (0, 1) keeps it while the G-test rejects independence at that significance level.
         Kruskal's algorithm then runs over the edges that pass. None keeps the whole tree.
+    memory_limit : int or str, optional
+        The most memory the pair statistics (with the scratch of counting a batch and the tail
+        tables) and the rows of one ``sample`` call may take: bytes, a size such as ``"4GiB"``
+        or ``"500MB"``, or a share of the machine's memory such as ``"80%"``. Default: half of
+        the machine's memory (physical RAM, or the container's cgroup limit when lower). Work
+        that would pass it raises ``MemoryLimitError`` before allocating, saying what needs how
+        much and what to change.
 
     Attributes
     ----------
@@ -126,6 +134,7 @@ class DependencyTree(ExactCounts, Params):
         root: str | None = None,
         alpha: float = 0.5,
         prune: str | float | None = None,
+        memory_limit: int | str | None = None,
     ) -> None:
         self.columns = columns
         self.max_categories = max_categories
@@ -134,8 +143,18 @@ class DependencyTree(ExactCounts, Params):
         self.root = root
         self.alpha = alpha
         self.prune = prune
+        self.memory_limit = memory_limit
 
-    _PARAMS = ("columns", "max_categories", "n_bins", "kinds", "root", "alpha", "prune")
+    _PARAMS = (
+        "columns",
+        "max_categories",
+        "n_bins",
+        "kinds",
+        "root",
+        "alpha",
+        "prune",
+        "memory_limit",
+    )
 
     def __getstate__(self) -> dict[str, Any]:
         """Pickle support: the Rust objects travel as their own validated file bytes."""
@@ -216,6 +235,7 @@ class DependencyTree(ExactCounts, Params):
         n_bins = check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)
         alpha = check_alpha(self.alpha)
         check_prune(self.prune)
+        limit = check_memory_limit(self.memory_limit)
         rows = check_int("batch_rows", BATCH_ROWS if batch_rows is None else batch_rows, 1, 2**31)
         source = open_source(data)
         given = _as_codebook(codebook)
@@ -229,11 +249,11 @@ class DependencyTree(ExactCounts, Params):
             if given is None:
                 # Columns left out of the model (identifiers, all null) are not counted.
                 chosen, stats, types = learn_and_count(
-                    source, names, max_categories, n_bins, rows, bar, types, kinds
+                    source, names, max_categories, n_bins, rows, bar, types, kinds, limit
                 )
             else:
                 chosen = given.select(names)
-                stats = _core.PairStats(chosen)
+                stats = _core.PairStats(chosen, limit)
                 count_pairs(source, names, chosen, stats, rows, bar, types)
         if stats.n_rows == 0:
             raise DataError(
@@ -531,11 +551,12 @@ class DependencyTree(ExactCounts, Params):
         batch_rows = check_int("batch_rows", batch_rows, 1, MAX_SAMPLE_ROWS)
         step = max(block, batch_rows // block * block)
         seed = seed_of(random_state)
+        limit = check_memory_limit(getattr(self, "memory_limit", None))
         schema = self._output_schema()
         columns = self._column_values()
         for start in range(0, n, step):
             count = min(step, n - start)
-            codes, floats, tails = model.sample(start, count, seed)
+            codes, floats, tails = model.sample(start, count, seed, limit)
             matrix = np.frombuffer(codes, "<u2").reshape(self.n_features_in_, count)
             values = [None if f is None else np.frombuffer(f, "<f8") for f in floats]
             picked = [

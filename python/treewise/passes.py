@@ -241,8 +241,14 @@ def count_pairs(
             stats.update(codebook, batch)
 
 
-def _cell_limit() -> int:
-    return 0 if os.environ.get("TREEWISE_ONE_PASS", "").strip() == "0" else ONE_PASS_CELLS
+def _cell_limit(memory_limit: int | None) -> int:
+    """Cells the provisional tables may hold: ``ONE_PASS_CELLS``, and at most a quarter of
+    ``memory_limit`` (8 bytes a cell); 0, two passes, under ``TREEWISE_ONE_PASS=0``."""
+    if os.environ.get("TREEWISE_ONE_PASS", "").strip() == "0":
+        return 0
+    if memory_limit is None:
+        return ONE_PASS_CELLS
+    return min(ONE_PASS_CELLS, memory_limit // 32)
 
 
 def learn_and_count(
@@ -254,6 +260,7 @@ def learn_and_count(
     bar: PassProgress,
     types: TypeRecorder,
     kinds: dict[str, str] | None = None,
+    memory_limit: int | None = None,
 ) -> tuple[_core.Codebook, _core.PairStats, TypeRecorder]:
     """Learn the codebook and count every pair: the codebook, the counts, the kept columns' types.
 
@@ -264,7 +271,7 @@ def learn_and_count(
     progress line says so. A one-shot stream is spooled meanwhile, in case it must be read again.
     """
     codebook, (stats,), kept = learn_and_count_many(
-        [source], names, max_categories, n_bins, batch_rows, bar, types, kinds
+        [source], names, max_categories, n_bins, batch_rows, bar, types, kinds, memory_limit
     )
     return codebook, stats, kept
 
@@ -278,13 +285,14 @@ def learn_and_count_many(
     bar: PassProgress,
     types: TypeRecorder,
     kinds: dict[str, str] | None = None,
+    memory_limit: int | None = None,
 ) -> tuple[_core.Codebook, list[_core.PairStats], TypeRecorder]:
     """One codebook learned over several sources, each source's pairs counted on their own.
 
     As :func:`learn_and_count`, for the two sides of a comparison.
     """
-    limit = _cell_limit()
-    counters = [_core.OnePass(names, limit) for _ in sources]
+    cells = _cell_limit(memory_limit)
+    counters = [_core.OnePass(names, cells) for _ in sources]
     spools = [None if source.replayable else _Spool() for source in sources]
     try:
         for source, counter, spool in zip(sources, counters, spools, strict=True):
@@ -297,7 +305,7 @@ def learn_and_count_many(
                         spool.write(batch)
         fallbacks = [counter.fallback for counter in counters]
         learned, caps, notes, counted = _core.OnePass.finish_together(
-            counters, max_categories, n_bins, list((kinds or {}).items())
+            counters, max_categories, n_bins, list((kinds or {}).items()), memory_limit
         )
         warn_caps(caps, max_categories)
         warn_notes(notes)
@@ -305,7 +313,7 @@ def learn_and_count_many(
         all_stats: list[_core.PairStats] = []
         for source, spool, stats, fallback in zip(sources, spools, counted, fallbacks, strict=True):
             if stats is None:
-                stats = _core.PairStats(learned)
+                stats = _core.PairStats(learned, memory_limit)
                 counting, seen = source, types
                 if spool is not None:
                     spool.close()

@@ -19,6 +19,7 @@ import pyarrow.parquet as pq
 from rich.console import Console
 
 import treewise
+from treewise.checks import check_memory_limit
 from treewise.sources import open_source
 from treewise.views.terminal import (
     COMPARE_CAUTION,
@@ -187,6 +188,32 @@ def _prune(ctx: click.Context, param: click.Parameter, value: str | None) -> str
     return level
 
 
+def _memory_limit(_ctx: click.Context, _param: click.Parameter, value: str | None) -> str | None:
+    """``--memory-limit``: bytes, a size such as 4GiB or 500MB, or a share such as 50%."""
+    if value is None:
+        return None
+    try:
+        check_memory_limit(int(value) if value.strip().isdigit() else value)
+    except ValueError as e:
+        raise click.BadParameter(str(e)) from None
+    return value
+
+
+#: The --memory-limit option of the commands that count or sample.
+_MEMORY_LIMIT = click.option(
+    "--memory-limit",
+    callback=_memory_limit,
+    metavar="SIZE",
+    help="The most memory the pair statistics or sampled rows may take: bytes, 4GiB, 500MB, "
+    "or a share of the machine's memory such as 80% (default: 50%).",
+)
+
+
+def _limit(value: str | None) -> int | str | None:
+    """A checked ``--memory-limit`` as ``memory_limit``: plain digits are bytes."""
+    return int(value) if value is not None and value.strip().isdigit() else value
+
+
 def _kinds(_ctx: click.Context, _param: click.Parameter, value: tuple[str, ...]) -> dict[str, str]:
     kinds = {}
     for item in value:
@@ -280,6 +307,7 @@ Example:
 @click.option(
     "--batch-rows", type=click.IntRange(min=1), metavar="N", help="Rows per batch read from disk."
 )
+@_MEMORY_LIMIT
 @click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
 def fit(
     data: tuple[str, ...],
@@ -293,6 +321,7 @@ def fit(
     root: str | None,
     prune: str | float | None,
     batch_rows: int | None,
+    memory_limit: str | None,
     no_progress: bool,
 ) -> None:
     """Fit a dependency tree to DATA and save it to MODEL.
@@ -312,6 +341,7 @@ def fit(
         root=root,
         alpha=alpha,
         prune=prune,
+        memory_limit=_limit(memory_limit),
     )
     model.fit(_source(data), progress=_progress(no_progress), batch_rows=batch_rows)
     model.save(output)
@@ -407,6 +437,7 @@ Example:
 @click.option(
     "--batch-rows", type=click.IntRange(min=1), metavar="N", help="Rows per batch written."
 )
+@_MEMORY_LIMIT
 @click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
 def sample(
     model_path: str,
@@ -414,6 +445,7 @@ def sample(
     output: str,
     seed: int | None,
     batch_rows: int | None,
+    memory_limit: str | None,
     no_progress: bool,
 ) -> None:
     """Draw synthetic rows from MODEL and write them to OUT (Parquet).
@@ -423,6 +455,7 @@ def sample(
     it, and only the null code comes back as null.
     """
     model = _load(model_path)
+    model.set_params(memory_limit=_limit(memory_limit))
     _check_output(output)
     if seed is None:
         seed = secrets.randbits(63)

@@ -660,10 +660,12 @@ impl Codebook {
     /// Encodes every column of `batch` (in parallel over columns).
     pub fn encode(&self, batch: &RecordBatch, strict: bool) -> Result<Vec<Vec<u16>>> {
         self.check_batch(batch)?;
+        let token = crate::cancel::current();
         self.columns
             .par_iter()
             .zip(batch.columns().par_iter())
             .map(|(code, array)| {
+                token.check()?;
                 let mut out = Vec::with_capacity(array.len());
                 code.encode(array.as_ref(), strict, &mut out)?;
                 Ok(out)

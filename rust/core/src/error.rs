@@ -18,6 +18,12 @@ pub enum Error {
     /// The work would pass a memory or size limit.
     #[error("{0}")]
     ResourceLimit(String),
+    /// The work would pass the memory limit in force (`memory`).
+    #[error("{0}")]
+    MemoryLimit(String),
+    /// An interrupt (Ctrl-C) stopped the call; see `cancel`.
+    #[error("interrupted")]
+    Cancelled,
     /// A caller broke an invariant of the API (wrong lengths, mismatched shapes).
     #[error("{0}")]
     Invalid(String),

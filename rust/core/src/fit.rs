@@ -61,6 +61,7 @@ pub fn chow_liu(stats: &PairStats, root: usize, prune: Prune) -> Result<Structur
         }
     }
     let weights = weights::all_weights(stats);
+    crate::cancel::current().check()?;
     let mi: Vec<f64> = weights.iter().map(|w| w.mutual_info).collect();
     let n = stats.n_rows();
     let edges = tree::kruskal(d, &mi, |p| prune.keeps(&weights[p], n));

@@ -1,6 +1,7 @@
 //! treewise-core: codebooks, exact pair counts, mutual information and Kruskal, with no Python.
 
 pub mod bytes;
+pub mod cancel;
 pub mod codebook;
 pub mod dtype;
 pub mod error;
@@ -8,6 +9,7 @@ pub mod fit;
 pub mod infer;
 pub mod io;
 pub mod kernels;
+pub mod memory;
 pub mod model;
 pub mod rng;
 pub mod shape;

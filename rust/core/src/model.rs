@@ -596,10 +596,14 @@ impl TreeModel {
             .map(|col| col.iter().filter(|c| **c == UNSEEN).count() as u64)
             .collect();
         let mut total = vec![0.0; n];
+        let token = crate::cancel::current();
         total
             .par_chunks_mut(SCORE_CHUNK)
             .enumerate()
             .for_each(|(k, out)| {
+                if token.cancelled() {
+                    return;
+                }
                 let start = k * SCORE_CHUNK;
                 for (c, tail) in tails.iter().enumerate() {
                     let tail = tail.as_deref();
@@ -611,12 +615,16 @@ impl TreeModel {
                 .into_par_iter()
                 .map(|c| {
                     let mut col = vec![0.0; n];
+                    if token.cancelled() {
+                        return col;
+                    }
                     self.column_log_prob(&codes, tails[c].as_deref(), c, 0..n, &mut col, false);
                     col.iter_mut().for_each(|v| *v = -*v);
                     col
                 })
                 .collect()
         });
+        token.check()?;
         Ok(Scored {
             total,
             surprisal,
@@ -663,12 +671,16 @@ impl TreeModel {
         }
         let float_blocks = split_blocks(&mut out.floats, n_blocks);
         let tail_blocks = split_blocks(&mut out.tails, n_blocks);
+        let token = crate::cancel::current();
         code_blocks
             .into_par_iter()
             .zip(float_blocks.into_par_iter())
             .zip(tail_blocks.into_par_iter())
             .enumerate()
             .for_each(|(b, ((mut codes, mut floats), mut tails))| {
+                if token.cancelled() {
+                    return;
+                }
                 let mut rng = Rng::new(seed, first_block + b as u64);
                 // Column by column in breadth-first order, so each parent is drawn before its
                 // children; the draws per block are fixed, so a block's rows depend only on
@@ -707,6 +719,7 @@ impl TreeModel {
                     codes[c] = column;
                 }
             });
+        token.check()?;
         Ok(out)
     }
 }

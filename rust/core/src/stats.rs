@@ -9,7 +9,8 @@ use crate::kernels::{self, Kernel};
 
 mod remap;
 
-/// The largest number of table cells we agree to hold (2^33 cells = 64 GiB of u64).
+/// The largest number of table cells we agree to hold (2^33 cells = 64 GiB of u64): a hard cap
+/// below the memory limit in force, which `memory::check_fit` checks first.
 pub const MAX_CELLS: u64 = 1 << 33;
 
 /// Exact co-occurrence counts over a fixed set of coded columns.

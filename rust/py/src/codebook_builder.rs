@@ -7,6 +7,7 @@ use treewise_core::{CodebookBuilder, KindChoice, Learned};
 use crate::arrow_import::import_batch;
 use crate::codebook::PyCodebook;
 use crate::errors::{detached, to_py};
+use crate::pair_stats::is_interrupt;
 use crate::slices;
 
 /// What the cap did to one column: (column, values capped, rows capped).
@@ -34,7 +35,13 @@ impl PyCodebookBuilder {
         let batch = import_batch(batch)?;
         let builder = self.builder()?;
         for slice in slices(&batch) {
-            detached(py, || builder.observe(&slice))?;
+            if let Err(e) = detached(py, || builder.observe(&slice)) {
+                // Some columns may have tallied part of the slice: the builder is spent.
+                if is_interrupt(py, &e) {
+                    self.inner = None;
+                }
+                return Err(e);
+            }
             py.check_signals()?;
         }
         Ok(())
@@ -131,6 +138,8 @@ impl PyCodebookBuilder {
 
 fn finished_error() -> PyErr {
     to_py(treewise_core::Error::Invalid(
-        "this codebook builder has already finished".into(),
+        "this codebook builder has already finished (or was interrupted mid-batch); start a new \
+         one"
+        .into(),
     ))
 }

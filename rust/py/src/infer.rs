@@ -74,7 +74,7 @@ impl PyTreeInference {
         backoff: f64,
     ) -> PyResult<Self> {
         let codebook = codebook.inner.clone();
-        let stats = &stats.inner;
+        let stats = stats.counts()?;
         let inner = detached(py, move || {
             let model = fit::model_from_weights(codebook, dtypes, stats, weights, root, alpha)?;
             Inference::with_backoff(model, backoff)
@@ -93,7 +93,7 @@ impl PyTreeInference {
         alpha: f64,
     ) -> PyResult<Self> {
         let codebook = codebook.inner.clone();
-        let stats = &stats.inner;
+        let stats = stats.counts()?;
         let parent = parent
             .iter()
             .map(|&p| usize::try_from(p).ok())

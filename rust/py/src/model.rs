@@ -4,7 +4,7 @@ use pyo3::prelude::*;
 use pyo3::types::PyBytes;
 use treewise_core::fit::{self, Prune};
 use treewise_core::model::{Sampled, Scored, TreeModel};
-use treewise_core::{io, Error};
+use treewise_core::{io, memory, Error};
 
 use crate::arrow_import::import_batch;
 use crate::buffers::{codes_and_floats, le_bytes};
@@ -58,7 +58,7 @@ impl PyTreeModel {
             }
         };
         let codebook = codebook.inner.clone();
-        let stats = &stats.inner;
+        let stats = stats.counts()?;
         let inner = detached(py, move || {
             fit::fit_model(codebook, dtypes, stats, root, alpha, prune)
         })?;
@@ -163,13 +163,16 @@ impl PyTreeModel {
     }
 
     /// Scores a batch with the model's columns: (ln p per row as f64 bytes, per-column
-    /// surprisal bytes or None, per-column count of values without a code).
+    /// surprisal bytes or None, per-column count of values without a code). Refused when the
+    /// results would pass `memory_limit` bytes (None: no limit).
     #[allow(clippy::type_complexity)]
+    #[pyo3(signature = (batch, surprisal, memory_limit = None))]
     fn score<'py>(
         &self,
         py: Python<'py>,
         batch: &Bound<'py, PyAny>,
         surprisal: bool,
+        memory_limit: Option<u64>,
     ) -> PyResult<(
         Bound<'py, PyBytes>,
         Option<Vec<Bound<'py, PyBytes>>>,
@@ -177,6 +180,19 @@ impl PyTreeModel {
     )> {
         let batch = import_batch(batch)?;
         let model = &self.inner;
+        let d = model.codebook().columns().len();
+        let needed = memory::score_bytes(d, batch.num_rows(), SLICE_ROWS, surprisal);
+        memory::check(
+            &format!("scoring {} rows", batch.num_rows()),
+            // The results are copied once into Python bytes.
+            &[
+                ("scores and codes", needed),
+                ("their copy for Python", needed),
+            ],
+            memory_limit,
+            "score fewer rows at a time (smaller batches), or without surprisal",
+        )
+        .map_err(to_py)?;
         let mut scored = Scored::default();
         for slice in slices(&batch) {
             let part = detached(py, || model.score(&slice, surprisal))?;
@@ -196,15 +212,26 @@ impl PyTreeModel {
 
     /// Samples `count` rows from row `start` of the stream of `seed`: (u16 codes, column after
     /// column, as bytes; per column the f64 bytes of the numbers drawn in numeric bins, or None;
-    /// per column the u32 bytes of the tail entries drawn behind "other", or None).
+    /// per column the u32 bytes of the tail entries drawn behind "other", or None). Refused
+    /// when the rows would pass `memory_limit` bytes (None: no limit).
+    #[pyo3(signature = (start, count, seed, memory_limit = None))]
     fn sample<'py>(
         &self,
         py: Python<'py>,
         start: u64,
         count: usize,
         seed: u64,
+        memory_limit: Option<u64>,
     ) -> PyResult<SampledBytes<'py>> {
         let model = &self.inner;
+        let rows = memory::sample_bytes(model.codebook(), count);
+        memory::check(
+            &format!("sampling {count} rows"),
+            &[("sampled rows", rows), ("their copy for Python", rows)],
+            memory_limit,
+            "sample fewer rows at a time (smaller batch_rows, or sample_to_parquet)",
+        )
+        .map_err(to_py)?;
         // SLICE_ROWS is a multiple of the sampling block, so the rows do not change.
         let mut sampled = Sampled::default();
         // At least one call, so that even 0 rows come back with every column.

@@ -1,14 +1,17 @@
 //! The OnePass class: the codebook pass that also counts every pair (see `tally::provisional`).
 
 use pyo3::prelude::*;
+use treewise_core::memory;
 use treewise_core::tally::OnePass;
+use treewise_core::Codebook;
 
 use crate::arrow_import::import_batch;
 use crate::codebook::PyCodebook;
 use crate::codebook_builder::{learned_parts, parse_kinds, CapTuple, NoteTuple};
 use crate::errors::{detached, to_py};
 use crate::pair_stats::PyPairStats;
-use crate::slices;
+use crate::threads;
+use crate::{slices, SLICE_ROWS};
 
 /// Tallies every batch and counts its pairs with provisional codes, so that a fit reads the
 /// data once; `finish` returns the pair statistics too, or None when the pass had to stop
@@ -31,7 +34,11 @@ impl PyOnePass {
         let batch = import_batch(batch)?;
         let pass = self.inner.as_mut().ok_or_else(finished_error)?;
         for slice in slices(&batch) {
-            detached(py, || pass.observe(&slice))?;
+            if let Err(e) = detached(py, || pass.observe(&slice)) {
+                // Any error may leave part of the slice counted: the pass is spent.
+                self.inner = None;
+                return Err(e);
+            }
             py.check_signals()?;
         }
         Ok(())
@@ -70,25 +77,21 @@ impl PyOnePass {
         let pass = self.inner.take().ok_or_else(finished_error)?;
         let (learned, stats) = detached(py, move || pass.finish(max_categories, n_bins, &kinds))?;
         let (codebook, caps, notes) = learned_parts(learned);
-        Ok((
-            codebook,
-            caps,
-            notes,
-            stats.map(|inner| PyPairStats { inner }),
-        ))
+        Ok((codebook, caps, notes, stats.map(PyPairStats::whole)))
     }
 
     /// Fixes one codebook from the tallies of several passes over the same columns (the two
     /// sides of a comparison) and returns the codebook, the caps, the notes, and each pass's
     /// pair statistics over those codes (None for a pass that stopped counting).
     #[staticmethod]
-    #[pyo3(signature = (passes, max_categories, n_bins, kinds = Vec::new()))]
+    #[pyo3(signature = (passes, max_categories, n_bins, kinds = Vec::new(), memory_limit = None))]
     fn finish_together(
         py: Python<'_>,
         passes: Vec<PyRefMut<'_, PyOnePass>>,
         max_categories: usize,
         n_bins: usize,
         kinds: Vec<(String, String)>,
+        memory_limit: Option<u64>,
     ) -> PyResult<(
         PyCodebook,
         Vec<CapTuple>,
@@ -100,13 +103,20 @@ impl PyOnePass {
         for mut pass in passes {
             inner.push(pass.inner.take().ok_or_else(finished_error)?);
         }
+        let threads = threads::pool()?.current_num_threads();
+        // The counts over the final codes must fit the memory limit, as a PairStats must.
+        let check = move |codebook: &Codebook| {
+            let cards = codebook.cardinalities();
+            let tails = memory::tail_table_bytes(codebook);
+            memory::check_fit(&cards, SLICE_ROWS, threads, tails, memory_limit)
+        };
         let (learned, stats) = detached(py, move || {
-            OnePass::finish_together(inner, max_categories, n_bins, &kinds)
+            OnePass::finish_together(inner, max_categories, n_bins, &kinds, check)
         })?;
         let (codebook, caps, notes) = learned_parts(learned);
         let stats = stats
             .into_iter()
-            .map(|s| s.map(|inner| PyPairStats { inner }))
+            .map(|s| s.map(PyPairStats::whole))
             .collect();
         Ok((codebook, caps, notes, stats))
     }
@@ -114,6 +124,8 @@ impl PyOnePass {
 
 fn finished_error() -> PyErr {
     to_py(treewise_core::Error::Invalid(
-        "this one-pass fit has already finished".into(),
+        "this one-pass fit has already finished (or stopped at an error or an interrupt \
+         mid-batch); start a new one"
+            .into(),
     ))
 }

@@ -2,26 +2,35 @@
 
 use pyo3::prelude::*;
 use pyo3::types::PyBytes;
-use treewise_core::PairStats;
+use treewise_core::{memory, PairStats};
 
 use crate::arrow_import::import_batch;
 use crate::buffers::le_bytes;
 use crate::codebook::PyCodebook;
 use crate::errors::{detached, to_py};
-use crate::slices;
+use crate::{slices, threads, SLICE_ROWS};
 
 /// Exact pair counts over one codebook's codes.
 #[pyclass(name = "PairStats", module = "treewise._core")]
 pub(crate) struct PyPairStats {
     pub(crate) inner: PairStats,
+    /// An interrupt stopped an update mid-batch: the tables may hold part of that batch.
+    pub(crate) interrupted: bool,
 }
 
 #[pymethods]
 impl PyPairStats {
+    /// Zero counts over `codebook`'s codes; refused when they, the scratch of counting a batch
+    /// and the model's tail tables would pass `memory_limit` bytes (None: no limit).
     #[new]
-    fn new(codebook: &PyCodebook) -> PyResult<Self> {
-        let inner = PairStats::new(codebook.inner.cardinalities()).map_err(to_py)?;
-        Ok(PyPairStats { inner })
+    #[pyo3(signature = (codebook, memory_limit = None))]
+    fn new(codebook: &PyCodebook, memory_limit: Option<u64>) -> PyResult<Self> {
+        let cards = codebook.inner.cardinalities();
+        let threads = threads::pool()?.current_num_threads();
+        let tails = memory::tail_table_bytes(&codebook.inner);
+        memory::check_fit(&cards, SLICE_ROWS, threads, tails, memory_limit).map_err(to_py)?;
+        let inner = PairStats::new(cards).map_err(to_py)?;
+        Ok(PyPairStats::whole(inner))
     }
 
     /// Encodes one Arrow record batch with `codebook` and adds its counts.
@@ -32,13 +41,19 @@ impl PyPairStats {
         batch: &Bound<'_, PyAny>,
     ) -> PyResult<()> {
         let batch = import_batch(batch)?;
+        self.counts()?;
         let stats = &mut self.inner;
         let codebook = &codebook.inner;
         for slice in slices(&batch) {
-            detached(py, || {
+            let counted = detached(py, || {
                 let codes = codebook.encode(&slice, true)?;
                 stats.add_codes(&codes)
-            })?;
+            });
+            if let Err(e) = counted {
+                self.interrupted = is_interrupt(py, &e);
+                return Err(e);
+            }
+            // A slice done: its counts are whole, so a signal here leaves them consistent.
             py.check_signals()?;
         }
         Ok(())
@@ -52,7 +67,7 @@ impl PyPairStats {
         codebook: &PyCodebook,
         dtypes: Vec<String>,
     ) -> PyResult<Bound<'py, PyBytes>> {
-        if codebook.inner.cardinalities() != self.inner.cardinalities() {
+        if codebook.inner.cardinalities() != self.counts()?.cardinalities() {
             return Err(to_py(treewise_core::Error::Schema(
                 "these statistics were not counted with this codebook".into(),
             )));
@@ -68,15 +83,13 @@ impl PyPairStats {
         Ok((
             PyCodebook { inner: codebook },
             dtypes,
-            PyPairStats { inner: stats },
+            PyPairStats::whole(stats),
         ))
     }
 
     /// An independent copy of these counts.
-    fn copy(&self) -> PyPairStats {
-        PyPairStats {
-            inner: self.inner.clone(),
-        }
+    fn copy(&self) -> PyResult<PyPairStats> {
+        Ok(PyPairStats::whole(self.counts()?.clone()))
     }
 
     fn __eq__(&self, other: &PyPairStats) -> bool {
@@ -85,9 +98,14 @@ impl PyPairStats {
 
     /// Adds another PairStats' counts to these.
     fn merge(&mut self, py: Python<'_>, other: &PyPairStats) -> PyResult<()> {
+        self.counts()?;
+        let other = other.counts()?;
         let stats = &mut self.inner;
-        let other = &other.inner;
-        detached(py, || stats.merge(other))
+        let merged = detached(py, || stats.merge(other));
+        if let Err(e) = &merged {
+            self.interrupted = is_interrupt(py, e);
+        }
+        merged
     }
 
     /// Rows counted.
@@ -110,7 +128,7 @@ impl PyPairStats {
                 "no column {i} of {d}"
             ))));
         }
-        le_bytes(py, &[self.inner.marginal(i)])
+        le_bytes(py, &[self.counts()?.marginal(i)])
     }
 
     /// The table of columns i < j (row-major r_i x r_j), as little-endian u64 bytes.
@@ -121,6 +139,32 @@ impl PyPairStats {
                 "a table needs columns i < j < {d}, got ({i}, {j})"
             ))));
         }
-        le_bytes(py, &[self.inner.table(i, j)])
+        le_bytes(py, &[self.counts()?.table(i, j)])
     }
+}
+
+impl PyPairStats {
+    pub(crate) fn whole(inner: PairStats) -> Self {
+        PyPairStats {
+            inner,
+            interrupted: false,
+        }
+    }
+
+    /// The counts, unless an interrupt left them holding part of a batch.
+    pub(crate) fn counts(&self) -> PyResult<&PairStats> {
+        if self.interrupted {
+            return Err(to_py(treewise_core::Error::Invalid(
+                "these pair statistics were interrupted in the middle of a batch and may hold \
+                 part of it; count the data again into new PairStats"
+                    .into(),
+            )));
+        }
+        Ok(&self.inner)
+    }
+}
+
+/// Whether `e` is an interrupt (Ctrl-C), after which counts may hold part of a batch.
+pub(crate) fn is_interrupt(py: Python<'_>, e: &PyErr) -> bool {
+    e.is_instance_of::<pyo3::exceptions::PyKeyboardInterrupt>(py)
 }

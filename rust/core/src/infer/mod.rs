@@ -237,29 +237,36 @@ impl Inference {
     }
 
     /// Runs `f` on rows 0..n in parallel chunks, each chunk with its own scratch from `init`.
-    fn per_row<T, I, F>(&self, n: usize, init: I, f: F) -> Vec<T>
+    /// An interrupt stops it between chunks (`Error::Cancelled`).
+    fn per_row<T, I, F>(&self, n: usize, init: I, f: F) -> Result<Vec<T>>
     where
         T: Send,
         I: Fn(&Self) -> Scratch + Sync,
         F: Fn(&mut Scratch, usize) -> T + Sync,
     {
-        (0..n.div_ceil(CHUNK))
+        let token = crate::cancel::current();
+        let rows = (0..n.div_ceil(CHUNK))
             .into_par_iter()
             .flat_map_iter(|k| {
+                if token.cancelled() {
+                    return Vec::new();
+                }
                 let mut s = init(self);
                 let rows = k * CHUNK..((k + 1) * CHUNK).min(n);
                 rows.map(|i| f(&mut s, i)).collect::<Vec<_>>()
             })
-            .collect()
+            .collect();
+        token.check()?;
+        Ok(rows)
     }
 
     /// ln P(observed cells) per row; -inf where the evidence is impossible.
     pub fn log_evidence(&self, ev: &Evidence) -> Result<Vec<f64>> {
         self.check(ev)?;
-        Ok(self.per_row(ev.n_rows, Self::scratch, |s, i| {
+        self.per_row(ev.n_rows, Self::scratch, |s, i| {
             self.load(ev, i, None, s);
             self.upward(s)
-        }))
+        })
     }
 
     fn check(&self, ev: &Evidence) -> Result<()> {
@@ -309,7 +316,7 @@ impl Inference {
                     })
                     .collect(),
             )
-        });
+        })?;
         let mut out = Posterior {
             tables: targets
                 .iter()
@@ -383,7 +390,7 @@ impl Inference {
             };
             let u = (strategy != Strategy::Sample).then_some(0.5);
             done.then(|| self.cells(s, |c| s.slot[c] == Slot::Values, u, &mut rng))
-        });
+        })?;
         Ok(self.gather(ev.n_rows, rows))
     }
 
@@ -426,7 +433,7 @@ impl Inference {
                 (possible && self.sample_down(s, &mut rng))
                     .then(|| self.cells(s, |c| ev.null[c][e], None, &mut rng))
             },
-        );
+        )?;
         Ok(self.gather(count, rows))
     }
 

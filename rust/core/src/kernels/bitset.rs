@@ -84,6 +84,7 @@ pub(super) fn count_bitset(ctx: &Ctx<'_>, path: Popcount, pairs: Vec<PairTable<'
     let mut bits = vec![0u64; rows_total * stride];
     let mut start = 0;
     while start < n {
+        ctx.token.check()?;
         let end = (start + block_rows).min(n);
         let words = (end - start).div_ceil(64).div_ceil(4) * 4;
         // Build every needed column's bitsets for this block.
@@ -104,6 +105,9 @@ pub(super) fn count_bitset(ctx: &Ctx<'_>, path: Popcount, pairs: Vec<PairTable<'
         let bits = &bits;
         let row = |r: usize| &bits[r * stride..r * stride + words];
         tasks.par_iter_mut().for_each(|t| {
+            if ctx.token.cancelled() {
+                return;
+            }
             let len = ylist[t.col].len();
             let rows = t.out.len() / len.max(1);
             let a: Vec<&[u64]> = (0..rows).map(|x| row(base[t.col] + t.level + x)).collect();
@@ -113,6 +117,8 @@ pub(super) fn count_bitset(ctx: &Ctx<'_>, path: Popcount, pairs: Vec<PairTable<'
         start = end;
     }
     drop(tasks);
+    // The pair tables are untouched so far: a cancelled call stops here and leaves them so.
+    ctx.token.check()?;
     // Each pair's inner cells from the Gram rows, then its last row and column from marginals.
     let mut partner_at: Vec<Vec<usize>> = vec![Vec::new(); d];
     for c in 0..d {

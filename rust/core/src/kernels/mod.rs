@@ -31,6 +31,7 @@ use std::ops::Range;
 
 use rayon::prelude::*;
 
+use crate::cancel;
 use crate::error::{Error, Result};
 
 use bitset::count_bitset;
@@ -187,6 +188,7 @@ pub fn count(
 ) -> Result<()> {
     let n = codes.first().map_or(0, |c| c.len());
     let path = Popcount::detect();
+    let token = cancel::current();
     let ranges: Vec<Range<usize>> = (0..n.div_ceil(CHUNK_ROWS))
         .map(|c| c * CHUNK_ROWS..((c + 1) * CHUNK_ROWS).min(n))
         .collect();
@@ -195,9 +197,10 @@ pub fn count(
     // Every chunk's marginals first: they check every code before any count changes.
     let chunk_marginals = ranges
         .iter()
-        .map(|range| marginals(&slice(range), cards))
+        .map(|range| token.check().and_then(|()| marginals(&slice(range), cards)))
         .collect::<Result<Vec<_>>>()?;
     for (range, m) in ranges.iter().zip(&chunk_marginals) {
+        token.check()?;
         let chunk = slice(range);
         let plan = plan(kernel, range.len(), cards, m, path);
         count_chunk(&chunk, cards, m, &plan, path, tables)?;
@@ -259,24 +262,33 @@ pub(crate) fn count_chunk(
         }
     }
     let [naive, hist, bits, look_first, look_second, cooc] = by_method;
+    let token = cancel::current();
     let ctx = Ctx {
         codes,
         cards,
         m,
         dominant: &plan.dominant,
+        token,
     };
     if !naive.is_empty() {
         naive.into_par_iter().for_each(|p| {
+            if token.cancelled() {
+                return;
+            }
             count_pair_naive(codes[p.i], codes[p.j], cards[p.j], p.table);
         });
     }
     if !hist.is_empty() {
         hist.into_par_iter().for_each_init(Vec::new, |local, p| {
+            if token.cancelled() {
+                return;
+            }
             count_pair_histogram(
                 codes[p.i], codes[p.j], cards[p.i], cards[p.j], local, p.table,
             );
         });
     }
+    token.check()?;
     if !look_first.is_empty() || !look_second.is_empty() {
         count_lookup(&ctx, look_first, look_second)?;
     }
@@ -286,7 +298,7 @@ pub(crate) fn count_chunk(
     if !cooc.is_empty() {
         count_cooc(&ctx, cooc)?;
     }
-    Ok(())
+    token.check()
 }
 
 /// What every kernel reads: the chunk's codes, cardinalities, marginals and dominant levels.
@@ -295,6 +307,8 @@ struct Ctx<'a> {
     cards: &'a [usize],
     m: &'a [Vec<u64>],
     dominant: &'a [u16],
+    /// The call's cancellation token, checked once per block of rows or pair.
+    token: cancel::Token,
 }
 
 impl Ctx<'_> {

@@ -98,6 +98,8 @@ pub(super) fn count_cooc(ctx: &Ctx<'_>, pairs: Vec<PairTable<'_>>) -> Result<()>
             .for_each(|(x, &y)| *x += u64::from(y));
     }
     drop(partials);
+    // The pair tables are untouched so far: a cancelled call stops here and leaves them so.
+    ctx.token.check()?;
     pairs
         .into_par_iter()
         .try_for_each_init(Vec::new, |local: &mut Vec<u64>, p| {
@@ -166,7 +168,7 @@ fn cooc_range(ctx: &Ctx<'_>, set: &SparseSet, range: Range<usize>) -> Vec<u32> {
     let mut sorted: Vec<(u32, u16)> = Vec::new();
     let mut starts: Vec<u32> = Vec::new();
     let mut block = range.start;
-    while block < range.end {
+    while block < range.end && !ctx.token.cancelled() {
         let end = (block + set.block_rows).min(range.end);
         let len = end - block;
         ent_row.clear();

@@ -93,6 +93,7 @@ pub(super) fn count_lookup(
     tasks
         .into_par_iter()
         .try_for_each_init(Vec::new, |sums: &mut Vec<u64>, (on_first, p)| {
+            ctx.token.check()?;
             // Count straight into the table; the walked rows' totals per level of the other
             // column give the dominant line: marginal minus what was counted outside it.
             let (ri, rj) = (ctx.cards[p.i], ctx.cards[p.j]);

@@ -626,10 +626,12 @@ impl CodebookBuilder {
     /// Tallies one batch (in parallel over columns).
     pub fn observe(&mut self, batch: &RecordBatch) -> Result<()> {
         check_names(self.columns.iter().map(|c| c.name.as_str()), batch)?;
+        let token = crate::cancel::current();
         self.columns
             .par_iter_mut()
             .zip(batch.columns().par_iter())
             .try_for_each(|(col, array)| {
+                token.check()?;
                 col.observe(array.as_ref())?;
                 col.bound_distinct();
                 Ok::<(), Error>(())

@@ -586,18 +586,20 @@ impl OnePass {
         kinds: &[(String, KindChoice)],
     ) -> Result<(Learned, Option<PairStats>)> {
         let (learned, mut stats) =
-            OnePass::finish_together(vec![self], max_categories, n_bins, kinds)?;
+            OnePass::finish_together(vec![self], max_categories, n_bins, kinds, |_| Ok(()))?;
         Ok((learned, stats.pop().flatten()))
     }
 
     /// Fixes one codebook from the tallies of several passes over the same columns (the two
     /// sides of a comparison, say) and returns, per pass, its pair statistics over those codes
-    /// (None for a pass that stopped counting).
+    /// (None for a pass that stopped counting). `check` sees the codebook before any statistics
+    /// over it are allocated (the memory limit).
     pub fn finish_together(
         passes: Vec<OnePass>,
         max_categories: usize,
         n_bins: usize,
         kinds: &[(String, KindChoice)],
+        check: impl Fn(&crate::Codebook) -> Result<()>,
     ) -> Result<(Learned, Vec<Option<PairStats>>)> {
         let mut merged: Option<CodebookBuilder> = None;
         let mut countings = Vec::with_capacity(passes.len());
@@ -615,6 +617,9 @@ impl OnePass {
         let builder = merged.ok_or_else(|| Error::Invalid("no pass to finish".into()))?;
         let names: Vec<String> = builder.columns.iter().map(|c| c.name.clone()).collect();
         let learned = builder.finish(max_categories, n_bins, kinds)?;
+        if countings.iter().any(Option::is_some) {
+            check(&learned.codebook)?;
+        }
         let stats = countings
             .into_iter()
             .map(|c| c.map(|c| c.recoded(&names, &learned)).transpose())
