@@ -10,6 +10,7 @@ from treewise import _core
 from treewise._core import Codebook
 from treewise.categories import OTHER, Bin
 from treewise.classifier import TreeAugmentedClassifier
+from treewise.domains import public_codebook
 from treewise.errors import (
     CategoryCapWarning,
     ColumnKindWarning,
@@ -70,4 +71,5 @@ __all__ = [
     "UnseenCategoryWarning",
     "__version__",
     "load",
+    "public_codebook",
 ]

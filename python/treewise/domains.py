@@ -1,0 +1,338 @@
+"""Public domains for a private fit: the categories and ranges a user gives, the ones learned with
+noise (thresholded category counts, private quantiles), and the codebook made from them."""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from treewise import _core
+from treewise.errors import DataError, SchemaError
+from treewise.noise import IntegerSource
+
+__all__ = [
+    "GRID",
+    "Domain",
+    "DomainLearner",
+    "check_domains",
+    "family_of",
+    "build_codebook",
+    "public_codebook",
+    "read_domains",
+]
+
+#: Cells of the fine histogram over a public range from which bin edges are chosen privately.
+GRID = 256
+#: A column with more distinct values than this, while its categories are being learned, is
+#: refused as identifier-like without reading further.
+MAX_LEARNED_DISTINCT = 1 << 20
+
+
+@dataclass
+class Domain:
+    """One column's public domain: its categories, or a numeric range (with edges, or None to
+    choose them privately)."""
+
+    categories: list[Any] | None = None
+    low: float | None = None
+    high: float | None = None
+    edges: list[float] | None = None
+
+    @property
+    def numeric(self) -> bool:
+        return self.low is not None
+
+
+def _domain(name: str, spec: Any) -> Domain:
+    if isinstance(spec, Mapping):
+        unknown = set(spec) - {"categories", "range", "edges"}
+        if unknown or ("categories" in spec) == ("range" in spec):
+            raise ValueError(
+                f"domains[{name!r}] must be a list of categories, a (low, high) range, or a "
+                f"dict with 'categories' or 'range' (and optional 'edges'), got {spec!r}"
+            )
+        if "categories" in spec:
+            return _domain(name, list(spec["categories"]))
+        low_high = spec["range"]
+        domain = _domain(name, tuple(low_high))
+        if "edges" in spec:
+            domain.edges = sorted(float(e) for e in spec["edges"])
+            if any(not (domain.low < e <= domain.high) for e in domain.edges):  # type: ignore[operator]
+                raise ValueError(f"domains[{name!r}]: every edge must lie in (low, high]")
+        return domain
+    if isinstance(spec, tuple):
+        if len(spec) != 2 or not all(
+            isinstance(x, int | float) and not isinstance(x, bool) for x in spec
+        ):
+            raise ValueError(f"domains[{name!r}]: a range is a (low, high) pair, got {spec!r}")
+        low, high = float(spec[0]), float(spec[1])
+        if not (math.isfinite(low) and math.isfinite(high) and low < high):
+            raise ValueError(f"domains[{name!r}]: a range needs finite low < high, got {spec!r}")
+        return Domain(low=low, high=high)
+    if isinstance(spec, list):
+        values = [v for v in spec if v is not None]
+        if not values or len(set(values)) != len(values):
+            raise ValueError(f"domains[{name!r}]: the categories must be distinct and not empty")
+        return Domain(categories=values)
+    raise ValueError(
+        f"domains[{name!r}] must be a list of categories or a (low, high) range, got {spec!r}"
+    )
+
+
+def check_domains(domains: Mapping[str, Any] | None, names: Sequence[str]) -> dict[str, Domain]:
+    """The given domains, checked; every named column must be modelled."""
+    if domains is None:
+        return {}
+    if not isinstance(domains, Mapping):
+        raise TypeError(f"domains= takes a dict of column -> domain, got {domains!r}")
+    unknown = [n for n in domains if n not in names]
+    if unknown:
+        raise SchemaError(f"domains= names columns that are not modelled: {unknown}")
+    return {str(n): _domain(str(n), spec) for n, spec in domains.items()}
+
+
+def read_domains(path: str | os.PathLike[str]) -> dict[str, Any]:
+    """Domains from a JSON file: column -> list of categories, or {"range": [low, high]}."""
+    with open(path, encoding="utf-8") as f:
+        loaded = json.load(f)
+    if not isinstance(loaded, dict):
+        raise ValueError(f"{path}: a domains file holds one JSON object (column -> domain)")
+    return loaded
+
+
+def family_of(dtype: pa.DataType) -> str:
+    """The value family of an Arrow type (bool, int, uint, str, float, time)."""
+    if pa.types.is_dictionary(dtype):
+        return family_of(dtype.value_type)
+    if pa.types.is_boolean(dtype):
+        return "bool"
+    if pa.types.is_signed_integer(dtype):
+        return "int"
+    if pa.types.is_unsigned_integer(dtype):
+        return "uint"
+    if pa.types.is_floating(dtype):
+        return "float"
+    if pa.types.is_temporal(dtype):
+        return "time"
+    if pa.types.is_string(dtype) or pa.types.is_large_string(dtype) or _is_view(dtype):
+        return "str"
+    raise SchemaError(f"a private fit cannot model a column of type {dtype}")
+
+
+def _is_view(dtype: pa.DataType) -> bool:
+    return bool(getattr(pa.types, "is_string_view", lambda _t: False)(dtype))
+
+
+def _numbers(array: pa.Array[Any] | pa.ChunkedArray[Any]) -> npt.NDArray[np.float64]:
+    """The non-null, non-NaN values of a numeric or time column as float64."""
+    if pa.types.is_dictionary(array.type):
+        array = array.cast(array.type.value_type)
+    if pa.types.is_temporal(array.type):
+        array = array.cast(pa.int64())
+    values = np.asarray(pc.drop_null(array).to_numpy(zero_copy_only=False), dtype=np.float64)
+    return values[~np.isnan(values)]
+
+
+def _time_number(value: Any, dtype: pa.DataType) -> float:
+    """A range bound of a time column as its epoch number in the column's unit."""
+    if isinstance(value, int | float):
+        return float(value)
+    return float(pa.scalar(value, type=dtype).cast(pa.int64()).as_py())
+
+
+class DomainLearner:
+    """The exact counts that private domains are chosen from, gathered in one pass.
+
+    Categorical columns without a domain: the count of each distinct value (nulls apart).
+    Numeric columns with a range but no edges: a histogram of ``GRID`` equal cells over it.
+    """
+
+    def __init__(
+        self, names: Sequence[str], families: Mapping[str, str], domains: Mapping[str, Domain]
+    ) -> None:
+        self.categories: dict[str, dict[Any, int]] = {}
+        self.grids: dict[str, npt.NDArray[np.int64]] = {}
+        self.ranges: dict[str, Domain] = {}
+        self.rows: dict[str, int] = {}
+        for n in names:
+            domain = domains.get(n)
+            family = families[n]
+            if domain is None:
+                if family in ("str", "int", "uint"):
+                    self.categories[n] = {}
+                    self.rows[n] = 0
+                elif family != "bool":
+                    raise SchemaError(
+                        f"column {n!r} holds {family} values: a private fit needs its public "
+                        f"range, e.g. domains={{{n!r}: (low, high)}}, or a list of its values"
+                    )
+            elif domain.numeric and domain.edges is None:
+                self.grids[n] = np.zeros(GRID, dtype=np.int64)
+                self.ranges[n] = domain
+
+    @property
+    def needed(self) -> bool:
+        return bool(self.categories or self.grids)
+
+    def see(self, batch: pa.RecordBatch) -> None:
+        """Add one batch's values to the counts."""
+        for n, counts in self.categories.items():
+            column = batch.column(n)
+            if pa.types.is_dictionary(column.type):
+                column = column.cast(column.type.value_type)
+            for entry in pc.value_counts(pc.drop_null(column)).to_pylist():
+                v = entry["values"]
+                counts[v] = counts.get(v, 0) + int(entry["counts"])
+            self.rows[n] += len(column) - column.null_count
+            if len(counts) > MAX_LEARNED_DISTINCT:
+                raise _identifier(n)
+        for n, grid in self.grids.items():
+            d = self.ranges[n]
+            assert d.low is not None and d.high is not None
+            x = _numbers(batch.column(n))
+            cell = np.floor((np.clip(x, d.low, d.high) - d.low) / (d.high - d.low) * GRID)
+            grid += np.bincount(np.clip(cell, 0, GRID - 1).astype(np.int64), minlength=GRID)
+
+    def check_identifiers(self) -> None:
+        """Refuse a column whose values are nearly all distinct (column-kinds rule: strings or
+        integers with at least 95% distinct values in 20 or more rows)."""
+        for n, counts in self.categories.items():
+            rows = self.rows[n]
+            if rows >= 20 and len(counts) >= 0.95 * rows:
+                raise _identifier(n)
+
+    def release(
+        self,
+        draw: Any,
+        threshold: int,
+        max_values: int,
+        n_bins: int,
+        rng: IntegerSource,
+    ) -> dict[str, Domain]:
+        """The private domains: the values whose noisy count reaches ``threshold`` (at most
+        ``max_values``, the highest noisy counts first), and the bin edges at the quantiles of
+        the noisy histogram. ``draw(rng, size)`` gives the noise."""
+        out: dict[str, Domain] = {}
+        for n, counts in self.categories.items():
+            values = sorted(counts)
+            noisy = np.array([counts[v] for v in values], dtype=np.int64) + draw(rng, len(values))
+            passed = [(int(c), k) for k, c in enumerate(noisy) if c >= threshold]
+            passed.sort(key=lambda ck: (-ck[0], ck[1]))
+            kept = sorted((values[k] for _, k in passed[:max_values]))
+            out[n] = Domain(categories=kept)
+        for n, grid in self.grids.items():
+            d = self.ranges[n]
+            noisy = np.clip(grid + draw(rng, GRID), 0, None)
+            out[n] = Domain(low=d.low, high=d.high, edges=_quantile_edges(noisy, d, n_bins))
+        return out
+
+
+def _identifier(name: str) -> DataError:
+    return DataError(
+        f"column {name!r} looks like an identifier (nearly every value is distinct); a private "
+        "fit refuses it: leave it out with columns=, or give its public categories in domains="
+    )
+
+
+def _quantile_edges(noisy: npt.NDArray[np.int64], d: Domain, n_bins: int) -> list[float]:
+    """Edges at the k/n_bins quantiles of the noisy grid, on cell boundaries (equal width when
+    the noisy histogram is empty)."""
+    assert d.low is not None and d.high is not None
+    width = (d.high - d.low) / GRID
+    total = int(noisy.sum())
+    if total == 0:
+        cells = [round(k * GRID / n_bins) for k in range(1, n_bins)]
+    else:
+        cum = np.cumsum(noisy)
+        cells = [int(np.searchsorted(cum, k * total / n_bins)) + 1 for k in range(1, n_bins)]
+    edges = sorted({d.low + c * width for c in cells if 0 < c < GRID})
+    return [e for e in edges if d.low < e <= d.high]
+
+
+def public_codebook(
+    domains: Mapping[str, Any], schema: pa.Schema, *, n_bins: int = 10
+) -> _core.Codebook:
+    """The codebook of public domains for the columns of ``schema`` (in its order), to count
+    ``treewise.PairStats`` for a private ``fit_stats`` (streaming, many workers).
+
+    Every column needs a domain in ``domains`` (bool columns excepted): a list of categories,
+    or ``{"range": [low, high]}`` (cut into ``n_bins`` equal-width bins, since no data is seen
+    here) with optional ``"edges"``. Nothing in it comes from data.
+    """
+    names = list(schema.names)
+    types = {n: schema.field(n).type for n in names}
+    families = {n: family_of(t) for n, t in types.items()}
+    return build_codebook(names, families, types, check_domains(domains, names), n_bins)
+
+
+def build_codebook(
+    names: Sequence[str],
+    families: Mapping[str, str],
+    types: Mapping[str, pa.DataType],
+    domains: Mapping[str, Domain],
+    n_bins: int,
+) -> _core.Codebook:
+    """The codebook of public domains: no value of it comes from the data unless learned with
+    noise. Categorical columns but bool ones get an "other" code (values outside the domain), every column
+    a null code, so that nothing about the data decides whether they exist. A range without
+    edges is cut into ``n_bins`` equal-width bins (a fit from data chooses them privately
+    instead); float columns get a code for NaN."""
+    columns = []
+    for n in names:
+        family = families[n]
+        domain = domains.get(n)
+        if domain is None and family == "bool":
+            domain = Domain(categories=[False, True])
+        if domain is None:
+            raise SchemaError(f"column {n!r} has no public domain; give one in domains=")
+        integral = family in ("int", "uint", "time")
+        if domain.numeric:
+            low, high = domain.low, domain.high
+            assert low is not None and high is not None
+            if family == "time":
+                low, high = _time_number(low, types[n]), _time_number(high, types[n])
+            edges = domain.edges
+            if edges is None:
+                edges = [low + (high - low) * k / n_bins for k in range(1, n_bins)]
+            if integral:
+                edges = sorted({float(math.ceil(e)) for e in edges})
+                edges = [e for e in edges if low < e <= high]
+            specials = [math.nan] if family == "float" else []
+            columns.append(
+                (n, family, [], (list(edges), low, high, specials), False, True, integral)
+            )
+        else:
+            assert domain.categories is not None
+            values = _cast_categories(n, domain.categories, family)
+            columns.append((n, family, values, None, family != "bool", True, False))
+    return _core.Codebook.from_columns(columns)
+
+
+def _cast_categories(name: str, values: list[Any], family: str) -> list[Any]:
+    try:
+        if family == "str":
+            cast: list[Any] = [str(v) for v in values]
+        elif family in ("int", "uint", "time"):
+            cast = [int(v) for v in values]
+            if any(c != v for c, v in zip(cast, values, strict=True)):
+                raise ValueError
+        elif family == "float":
+            cast = [float(v) for v in values]
+        else:
+            cast = [bool(v) for v in values]
+    except (TypeError, ValueError):
+        raise SchemaError(
+            f"column {name!r} holds {family} values, but its domain lists {values[:5]!r}"
+        ) from None
+    if len(set(cast)) != len(cast):
+        raise SchemaError(f"column {name!r}: its domain's categories are not distinct")
+    return sorted(cast)
