@@ -88,16 +88,21 @@ def _domain(name: str, spec: Any) -> Domain:
     )
 
 
-def check_domains(domains: Mapping[str, Any] | None, names: Sequence[str]) -> dict[str, Domain]:
-    """The given domains, checked; every named column must be modelled."""
+def check_domains(
+    domains: Mapping[str, Any] | None,
+    names: Sequence[str],
+    available: Sequence[str] | None = None,
+) -> dict[str, Domain]:
+    """The given domains of the modelled columns ``names``, checked; a domain of a column that
+    the data does not have (``available``, by default ``names``) is an error."""
     if domains is None:
         return {}
     if not isinstance(domains, Mapping):
         raise TypeError(f"domains= takes a dict of column -> domain, got {domains!r}")
-    unknown = [n for n in domains if n not in names]
+    unknown = [n for n in domains if n not in (names if available is None else available)]
     if unknown:
-        raise SchemaError(f"domains= names columns that are not modelled: {unknown}")
-    return {str(n): _domain(str(n), spec) for n, spec in domains.items()}
+        raise SchemaError(f"domains= names columns that the data does not have: {unknown}")
+    return {str(n): _domain(str(n), spec) for n, spec in domains.items() if n in names}
 
 
 def read_domains(path: str | os.PathLike[str]) -> dict[str, Any]:

@@ -58,7 +58,7 @@ def count_private(
     Returns the exact statistics (to be released only through ``private_model``), the codebook,
     the column types, the budget plan and, per column, where its domain came from.
     """
-    given = check_domains(domains, names)
+    given = check_domains(domains, names, source.names)
     if not source.replayable:
         raise DataError(
             "a private fit reads its data more than once (types, domains, counts), and this is "
