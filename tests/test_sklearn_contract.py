@@ -34,6 +34,11 @@ PARAMS = {
     "root": None,
     "alpha": 0.5,
     "prune": None,
+    "epsilon": None,
+    "delta": None,
+    "domains": None,
+    "privacy_split": None,
+    "random_state": None,
 }
 
 
@@ -126,6 +131,11 @@ def test_init_only_stores_parameters() -> None:
         "root": "zz",
         "alpha": -1,
         "prune": None,
+        "epsilon": None,
+        "delta": None,
+        "domains": None,
+        "privacy_split": None,
+        "random_state": None,
     }
     with pytest.raises(ValueError, match="max_categories"):
         model.fit(table())
@@ -148,6 +158,7 @@ def test_fit_returns_self_and_fitted_attributes_end_in_underscore() -> None:
         "mutual_info_",
         "pairwise_mutual_info_",
         "n_parameters_",
+        "privacy_",
     }
     assert all(k.endswith("_") for k in public)
     assert model.get_params() == PARAMS  # fitting changes no parameter

@@ -96,9 +96,6 @@ def count_private(
             origin[n] = "categories learned with noise"
         for n in learner.grids:
             origin[n] = "range given; bin edges learned with noise"
-    for n in names:
-        if families.get(n) == "bool" and n not in given:
-            origin[n] = "public (bool)"
     codebook = build_codebook(names, families, arrow_types, domains_all, n_bins)
     stats = _core.PairStats(codebook)
     types = TypeRecorder(names)
@@ -144,7 +141,11 @@ def private_model(
         release.pair_mi,
         alpha,
     )
-    model.set_privacy(json.dumps(statement(plan, list(codebook.names), origin, seeded)))
+    origins = {
+        n: "public (bool)" if codebook.column(i)[0] == "bool" else origin.get(n, "given")
+        for i, n in enumerate(codebook.names)
+    }
+    model.set_privacy(json.dumps(statement(plan, list(codebook.names), origins, seeded)))
     return model
 
 
