@@ -572,3 +572,27 @@ def test_dask_adds_the_noise_once_whatever_the_partitioning() -> None:
     # the driver: the same release as a fit in memory.
     local = treewise.DependencyTree(**params).fit(df)
     assert model._fitted().to_bytes() == local._fitted().to_bytes()
+
+
+def test_the_command_line_fits_privately_and_states_the_guarantee(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from treewise.cli import main
+
+    shop(2000).to_parquet(tmp_path / "d.parquet")
+    domains = {"a": ["x", "y", "z"], "b": ["x", "y", "z"], "c": {"range": [0, 100]}}
+    (tmp_path / "domains.json").write_text(json.dumps(domains))
+    model, report = tmp_path / "m.tw", tmp_path / "r.html"
+    args = ["fit", str(tmp_path / "d.parquet"), "-o", str(model), "--epsilon", "1"]
+    args += ["--delta", "1e-6", "--domains", str(tmp_path / "domains.json"), "--no-progress"]
+    assert main(args) == 0
+    assert "(1, 1e-06)-DP" in capsys.readouterr().out
+    assert main(["show", str(model)]) == 0
+    shown = capsys.readouterr().out
+    assert "(1, 1e-06)-DP" in shown and "post-processing" in shown and "legal sense" in shown
+    assert main(["show", str(model), "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["privacy"]["epsilon"] == 1.0
+    assert main(["report", str(model), "-o", str(report)]) == 0
+    page = report.read_text()
+    assert "(1, 1e-06)-DP" in page and "released noisy counts" in page
+    assert main(["fit", str(tmp_path / "d.parquet"), "-o", str(model), "--delta", "0.1"]) != 0

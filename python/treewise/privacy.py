@@ -315,7 +315,13 @@ def release_model(
         del exact_counts
     tables = _consistent_tables(chosen_root, order, parent, noisy, cards)
     n_rows = int(tables[chosen_root].sum())
+    # An edge's weight is the mutual information of its released table; any other pair's is its
+    # noisy score over the released row count (both post-processing of what was released).
     pair_mi = [max(0.0, noisy_scores[i, j]) / n_rows for i, j in pairs]
+    for c, p in enumerate(parent):
+        if p >= 0:
+            table = tables[c].reshape(cards[p], cards[c])
+            pair_mi[pairs.index((min(p, c), max(p, c)))] = scaled_mutual_info(table) / n_rows
     return Release(
         root=chosen_root,
         parent=parent,

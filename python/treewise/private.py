@@ -18,7 +18,14 @@ from treewise.privacy import Plan, plan_budget, release_model, score_sensitivity
 from treewise.progress import PassProgress
 from treewise.sources import BatchLoop, Source
 
-__all__ = ["CAUTIONS", "check_public", "count_private", "private_model", "statement"]
+__all__ = [
+    "CAUTIONS",
+    "check_public",
+    "count_private",
+    "guarantee_lines",
+    "private_model",
+    "statement",
+]
 
 #: What a private model's statement says beside its guarantee (README, report and `show`).
 CAUTIONS = (
@@ -208,3 +215,22 @@ def statement(
         ),
         "cautions": CAUTIONS,
     }
+
+
+def guarantee_lines(p: Mapping[str, Any]) -> list[str]:
+    """The statement of a private model in plain sentences (for ``show``, fit and the report)."""
+    delta = float(p["delta"])
+    kind = f"({p['epsilon']:g}, {delta:g})-DP" if delta else f"{p['epsilon']:g}-DP (pure)"
+    split = ", ".join(f"{k} {100 * v:.0f}%" for k, v in p["split"].items() if v)
+    domains = ", ".join(f"{n}: {how}" for n, how in p["domains"].items())
+    lines = [
+        f"Differentially private: {kind}; neighbouring tables: {p['neighbouring']} "
+        f"({p['accounting']}).",
+        f"Protected: {p['protected']}.",
+        f"Budget split: {split}. Domains: {domains}.",
+        f"Sampling: {p['post_processing']}.",
+    ]
+    if "seed" in p["randomness"]:
+        lines.append(f"Randomness: {p['randomness']}.")
+    lines.append(p["cautions"])
+    return lines
