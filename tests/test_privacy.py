@@ -1,4 +1,4 @@
-"""Private fits: the exact samplers, the sensitivities, the released model and an empirical audit."""
+"""Private fits: the exact samplers, the sensitivities, the released model and an audit."""
 
 from __future__ import annotations
 
@@ -15,12 +15,11 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pytest
+import treewise
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats as scipy_stats
 from sklearn.metrics import mutual_info_score
-
-import treewise
 from treewise import _core, privacy, reference
 from treewise.errors import DataError, NotFittedError, SchemaError
 from treewise.noise import (
@@ -185,7 +184,7 @@ def test_privbayes_bound_for_replacing_a_row(
     n = len(rows)
     k = data.draw(st.integers(0, n - 1))
     new = (data.draw(st.integers(0, 3)), data.draw(st.integers(0, 3)))
-    other = rows[:k] + [new] + rows[k + 1 :]
+    other = [*rows[:k], new, *rows[k + 1 :]]
     moved = abs(scaled_mutual_info(table_of(rows)) - scaled_mutual_info(table_of(other))) / n
     bound = (2 / n) * math.log((n + 1) / 2) + ((n - 1) / n) * math.log((n + 1) / (n - 1))
     assert moved <= bound + 1e-12
@@ -224,8 +223,9 @@ def test_each_released_table_moves_by_one_cell(
 
 
 def test_the_budget_converts_back_to_epsilon() -> None:
-    plan = plan_budget(1.0, 1e-6, privacy.DEFAULT_SPLIT, n_columns=5, learned_categories=0,
-                       learned_ranges=0)
+    plan = plan_budget(
+        1.0, 1e-6, privacy.DEFAULT_SPLIT, n_columns=5, learned_categories=0, learned_ranges=0
+    )
     assert plan.rho is not None
     # Bun & Steinke 2016, Proposition 1.3: rho-zCDP implies (rho + 2 sqrt(rho ln(1/delta)),
     # delta)-DP.
@@ -235,12 +235,14 @@ def test_the_budget_converts_back_to_epsilon() -> None:
     kind, variance = plan.noise["tables"]
     assert kind == "gaussian"
     assert 5 / (2 * float(variance)) <= plan.rho * (0.6 / 0.9) * (1 + 1e-9)
-    pure = plan_budget(2.0, 0.0, privacy.DEFAULT_SPLIT, n_columns=3, learned_categories=0,
-                       learned_ranges=0)
+    pure = plan_budget(
+        2.0, 0.0, privacy.DEFAULT_SPLIT, n_columns=3, learned_categories=0, learned_ranges=0
+    )
     assert pure.rho is None and pure.noise["tables"][0] == "laplace"
     with pytest.raises(ValueError, match="delta > 0"):
-        plan_budget(1.0, 0.0, privacy.DEFAULT_SPLIT, n_columns=3, learned_categories=1,
-                    learned_ranges=0)
+        plan_budget(
+            1.0, 0.0, privacy.DEFAULT_SPLIT, n_columns=3, learned_categories=1, learned_ranges=0
+        )
 
 
 # -- the private fit -------------------------------------------------------------------------------
@@ -554,7 +556,6 @@ def test_the_statement_is_json() -> None:
 def test_dask_adds_the_noise_once_whatever_the_partitioning() -> None:
     dd = pytest.importorskip("dask.dataframe")
     import dask
-
     from treewise.distributed import fit_dask
 
     df = shop(3000)

@@ -1,5 +1,8 @@
-"""Public domains for a private fit: the categories and ranges a user gives, the ones learned with
-noise (thresholded category counts, private quantiles), and the codebook made from them."""
+"""Public domains for a private fit, and the codebook made from them.
+
+The categories and ranges a user gives, and the ones learned with noise (thresholded category
+counts, private quantiles).
+"""
 
 from __future__ import annotations
 
@@ -23,9 +26,9 @@ __all__ = [
     "GRID",
     "Domain",
     "DomainLearner",
+    "build_codebook",
     "check_domains",
     "family_of",
-    "build_codebook",
     "public_codebook",
     "read_domains",
 ]
@@ -39,8 +42,7 @@ MAX_LEARNED_DISTINCT = 1 << 20
 
 @dataclass
 class Domain:
-    """One column's public domain: its categories, or a numeric range (with edges, or None to
-    choose them privately)."""
+    """One column's public domain: its categories, or a numeric range (edges None: learned)."""
 
     categories: list[Any] | None = None
     low: float | None = None
@@ -49,6 +51,7 @@ class Domain:
 
     @property
     def numeric(self) -> bool:
+        """Whether the domain is a numeric range."""
         return self.low is not None
 
 
@@ -93,8 +96,11 @@ def check_domains(
     names: Sequence[str],
     available: Sequence[str] | None = None,
 ) -> dict[str, Domain]:
-    """The given domains of the modelled columns ``names``, checked; a domain of a column that
-    the data does not have (``available``, by default ``names``) is an error."""
+    """The given domains of the modelled columns ``names``, checked.
+
+    A domain of a column that the data does not have (``available``, by default ``names``) is
+    an error.
+    """
     if domains is None:
         return {}
     if not isinstance(domains, Mapping):
@@ -186,6 +192,7 @@ class DomainLearner:
 
     @property
     def needed(self) -> bool:
+        """Whether any domain must be learned from the data."""
         return bool(self.categories or self.grids)
 
     def see(self, batch: pa.RecordBatch) -> None:
@@ -194,9 +201,11 @@ class DomainLearner:
             column = batch.column(n)
             if pa.types.is_dictionary(column.type):
                 column = column.cast(column.type.value_type)
-            for entry in pc.value_counts(pc.drop_null(column)).to_pylist():
-                v = entry["values"]
-                counts[v] = counts.get(v, 0) + int(entry["counts"])
+            found: Any = pc.value_counts(pc.drop_null(column))
+            for v, c in zip(
+                found.field("values").to_pylist(), found.field("counts").to_pylist(), strict=True
+            ):
+                counts[v] = counts.get(v, 0) + int(c)
             self.rows[n] += len(column) - column.null_count
             if len(counts) > MAX_LEARNED_DISTINCT:
                 raise _identifier(n)
@@ -208,8 +217,11 @@ class DomainLearner:
             grid += np.bincount(np.clip(cell, 0, GRID - 1).astype(np.int64), minlength=GRID)
 
     def check_identifiers(self) -> None:
-        """Refuse a column whose values are nearly all distinct (column-kinds rule: strings or
-        integers with at least 95% distinct values in 20 or more rows)."""
+        """Refuse a column whose values are nearly all distinct.
+
+        The rule of docs/column-kinds.md: strings or integers with at least 95% distinct values
+        in 20 or more rows.
+        """
         for n, counts in self.categories.items():
             rows = self.rows[n]
             if rows >= 20 and len(counts) >= 0.95 * rows:
@@ -223,9 +235,12 @@ class DomainLearner:
         n_bins: int,
         rng: IntegerSource,
     ) -> dict[str, Domain]:
-        """The private domains: the values whose noisy count reaches ``threshold`` (at most
-        ``max_values``, the highest noisy counts first), and the bin edges at the quantiles of
-        the noisy histogram. ``draw(rng, size)`` gives the noise."""
+        """The private domains, from noisy counts.
+
+        The values whose noisy count reaches ``threshold`` (at most ``max_values``, the highest
+        noisy counts first), and the bin edges at the quantiles of the noisy histogram.
+        ``draw(rng, size)`` gives the noise.
+        """
         out: dict[str, Domain] = {}
         for n, counts in self.categories.items():
             values = sorted(counts)
@@ -249,8 +264,10 @@ def _identifier(name: str) -> DataError:
 
 
 def _quantile_edges(noisy: npt.NDArray[np.int64], d: Domain, n_bins: int) -> list[float]:
-    """Edges at the k/n_bins quantiles of the noisy grid, on cell boundaries (equal width when
-    the noisy histogram is empty)."""
+    """Edges at the k/n_bins quantiles of the noisy grid, on cell boundaries.
+
+    Equal-width edges when the noisy histogram is empty.
+    """
     assert d.low is not None and d.high is not None
     width = (d.high - d.low) / GRID
     total = int(noisy.sum())
@@ -266,8 +283,9 @@ def _quantile_edges(noisy: npt.NDArray[np.int64], d: Domain, n_bins: int) -> lis
 def public_codebook(
     domains: Mapping[str, Any], schema: pa.Schema, *, n_bins: int = 10
 ) -> _core.Codebook:
-    """The codebook of public domains for the columns of ``schema`` (in its order), to count
-    ``treewise.PairStats`` for a private ``fit_stats`` (streaming, many workers).
+    """The codebook of public domains for the columns of ``schema``, in its order.
+
+    Count ``treewise.PairStats`` with it for a private ``fit_stats`` (streaming, many workers).
 
     Every column needs a domain in ``domains`` (bool columns excepted): a list of categories,
     or ``{"range": [low, high]}`` (cut into ``n_bins`` equal-width bins, since no data is seen
@@ -286,12 +304,24 @@ def build_codebook(
     domains: Mapping[str, Domain],
     n_bins: int,
 ) -> _core.Codebook:
-    """The codebook of public domains: no value of it comes from the data unless learned with
-    noise. Categorical columns but bool ones get an "other" code (values outside the domain), every column
-    a null code, so that nothing about the data decides whether they exist. A range without
+    """The codebook of public domains: no value of it comes from the data unless learned with noise.
+
+    Categorical columns but bool ones get an "other" code (values outside the domain), every
+    column a null code, so that nothing about the data decides whether they exist. A range without
     edges is cut into ``n_bins`` equal-width bins (a fit from data chooses them privately
-    instead); float columns get a code for NaN."""
-    columns = []
+    instead); float columns get a code for NaN.
+    """
+    columns: list[
+        tuple[
+            str,
+            str,
+            list[Any],
+            tuple[list[float], float, float, list[float]] | None,
+            bool,
+            bool,
+            bool,
+        ]
+    ] = []
     for n in names:
         family = families[n]
         domain = domains.get(n)

@@ -29,12 +29,12 @@ from treewise.counts import ExactCounts
 from treewise.decode import ColumnValues, decode_column, type_from_name
 from treewise.errors import DataError, NotFittedError, SchemaError
 from treewise.files import read_model_file, write_atomically
-from treewise.pairstats import PairStats
 from treewise.noise import IntegerSource, integer_source
+from treewise.pairstats import PairStats
 from treewise.params import Params
 from treewise.passes import TypeRecorder, count_pairs, learn_codebook
-from treewise.private import check_public, count_private, private_model
 from treewise.privacy import Plan, check_privacy, plan_budget
+from treewise.private import check_public, count_private, private_model
 from treewise.progress import PassProgress, wants_progress
 from treewise.sources import (
     BATCH_ROWS,
@@ -281,7 +281,9 @@ class DependencyTree(ExactCounts, Params):
                     plan = plan_budget(
                         *budget, n_columns=len(names), learned_categories=0, learned_ranges=0
                     )
-                    found = (stats, public, recorder.type_names(public), plan, {})
+                    found: tuple[
+                        _core.PairStats, _core.Codebook, list[str], Plan, dict[str, str]
+                    ] = (stats, public, recorder.type_names(public), plan, {})
                 else:
                     found = count_private(
                         source, names, self.domains, n_bins, max_categories, rows, bar, budget, rng
@@ -454,9 +456,7 @@ class DependencyTree(ExactCounts, Params):
         if seed is None:
             return None
         if isinstance(seed, bool) or not isinstance(seed, int):
-            raise TypeError(
-                f"random_state of a private fit must be an int or None, got {seed!r}"
-            )
+            raise TypeError(f"random_state of a private fit must be an int or None, got {seed!r}")
         return seed
 
     def _root_index(self, names: list[str]) -> int | None:

@@ -27,7 +27,9 @@ __all__ = [
 class IntegerSource(Protocol):
     """What the samplers need of a random source: uniform integers in [0, n)."""
 
-    def randrange(self, n: int, /) -> int: ...
+    def randrange(self, n: int, /) -> int:
+        """A uniform integer in [0, n)."""
+        ...
 
 
 def integer_source(seed: int | None) -> IntegerSource:
@@ -47,8 +49,10 @@ def bernoulli(p: Fraction, rng: IntegerSource) -> bool:
 
 
 def _bernoulli_exp_unit(num: int, den: int, rng: IntegerSource) -> bool:
-    """True with probability exp(-num/den), 0 <= num <= den (CKS 2020, Algorithm 1, first part:
-    draw Bernoulli(gamma / k) for k = 1, 2, ... until one fails; true when k is odd)."""
+    """True with probability exp(-num/den), 0 <= num <= den (CKS 2020, Algorithm 1, first part).
+
+    Draw Bernoulli(gamma / k) for k = 1, 2, ... until one fails; true when k is odd.
+    """
     k = 1
     while rng.randrange(den * k) < num:
         k += 1
@@ -97,8 +101,10 @@ def discrete_laplace(scale: Fraction, rng: IntegerSource) -> int:
 
 
 def discrete_gaussian(sigma2: Fraction, rng: IntegerSource) -> int:
-    """One draw with P(x) proportional to exp(-x^2 / (2 sigma2)) over the integers (CKS 2020,
-    Algorithm 3). A variance of 0 gives 0 (no noise)."""
+    """One draw with P(x) proportional to exp(-x^2 / (2 sigma2)) over the integers.
+
+    CKS 2020, Algorithm 3. A variance of 0 gives 0 (no noise).
+    """
     if sigma2 < 0:
         raise ValueError(f"a discrete Gaussian variance must be >= 0, got {sigma2}")
     if sigma2 == 0:

@@ -1,5 +1,8 @@
-"""Differentially private release of a tree: the budget, the sensitivities, the noisy structure
-and tables, and their post-processing into a consistent model (derivations in docs/privacy.md)."""
+"""Differentially private release of a tree: the budget, the noisy structure and tables.
+
+The budget plan, the sensitivities, the noisy structure and tables, and their post-processing
+into a consistent model (derivations in docs/privacy.md).
+"""
 
 from __future__ import annotations
 
@@ -23,8 +26,8 @@ __all__ = [
     "check_privacy",
     "plan_budget",
     "release_model",
-    "score_sensitivity",
     "scaled_mutual_info",
+    "score_sensitivity",
 ]
 
 #: How the budget is shared by default between learning domains (when some are not given),
@@ -46,7 +49,7 @@ def _xlogx(x: npt.NDArray[np.float64]) -> list[float]:
 
 
 def scaled_mutual_info(table: npt.NDArray[np.integer[Any]]) -> float:
-    """n * I(X; Y) in nats for a contingency table of n rows, summed with ``math.fsum``.
+    """N * I(X; Y) in nats for a contingency table of n rows, summed with ``math.fsum``.
 
     n I = sum c ln c + n ln n - sum a ln a - sum b ln b, over the cells c, the row sums a and
     the column sums b. This is half the G statistic.
@@ -55,7 +58,7 @@ def scaled_mutual_info(table: npt.NDArray[np.integer[Any]]) -> float:
     n = float(t.sum())
     if n == 0:
         return 0.0
-    terms = _xlogx(t.ravel()) + [n * math.log(n)]
+    terms = [*_xlogx(t.ravel()), n * math.log(n)]
     minus = _xlogx(t.sum(axis=1)) + _xlogx(t.sum(axis=0))
     return max(0.0, math.fsum(terms + [-m for m in minus]))
 
@@ -120,12 +123,10 @@ def check_privacy(
         raise ValueError(f"delta must be a number in [0, 1), got {delta!r}")
     chosen = dict(DEFAULT_SPLIT if split is None else split)
     if set(chosen) != set(DEFAULT_SPLIT) or any(
-        not isinstance(v, int | float) or not (v >= 0 and math.isfinite(v))
-        for v in chosen.values()
+        not isinstance(v, int | float) or not (v >= 0 and math.isfinite(v)) for v in chosen.values()
     ):
         raise ValueError(
-            f"privacy_split must map each of {sorted(DEFAULT_SPLIT)} to a share >= 0, "
-            f"got {split!r}"
+            f"privacy_split must map each of {sorted(DEFAULT_SPLIT)} to a share >= 0, got {split!r}"
         )
     if chosen["structure"] <= 0 or chosen["tables"] <= 0:
         raise ValueError("privacy_split must give the structure and the tables a share > 0")
@@ -220,8 +221,10 @@ def plan_budget(
 
 
 def _apportion(total: int, weights: npt.NDArray[np.float64]) -> npt.NDArray[np.int64]:
-    """Non-negative integers summing to ``total`` in proportion to ``weights`` (largest
-    remainder, ties to the lower index); uniform when every weight is 0."""
+    """Non-negative integers summing to ``total`` in proportion to ``weights``.
+
+    Largest remainders, ties to the lower index; uniform when every weight is 0.
+    """
     w = np.clip(np.asarray(weights, dtype=np.float64), 0.0, None)
     if w.sum() <= 0:
         w = np.ones_like(w)
@@ -231,7 +234,7 @@ def _apportion(total: int, weights: npt.NDArray[np.float64]) -> npt.NDArray[np.i
     order = sorted(range(len(w)), key=lambda k: (-(exact[k] - base[k]), k))
     for k in order[:rest]:
         base[k] += 1
-    return base
+    return np.asarray(base, dtype=np.int64)
 
 
 def _consistent_tables(
@@ -241,8 +244,9 @@ def _consistent_tables(
     noisy: Mapping[int, npt.NDArray[np.int64]],
     cards: Sequence[int],
 ) -> dict[int, npt.NDArray[np.int64]]:
-    """Post-process the noisy tables into non-negative integer tables that agree on every
-    shared column (the method is in docs/privacy.md).
+    """Post-process the noisy tables into non-negative tables that agree on shared columns.
+
+    The method is in docs/privacy.md.
 
     Top-down from the root: the root's marginal is its noisy counts clipped at 0; then, in
     breadth-first order, each child's table keeps its parent's (already fixed) marginal as its

@@ -1,5 +1,7 @@
-"""The private fit: its passes over the data, the release of the model, and the statement of the
-guarantee that the model carries (``privacy_``); the derivations are in docs/privacy.md."""
+"""The private fit: its passes over the data, the release, and the statement of its guarantee.
+
+The statement is what the model carries as ``privacy_``; the derivations are in docs/privacy.md.
+"""
 
 from __future__ import annotations
 
@@ -204,8 +206,7 @@ def statement(
         "domains": {n: origin.get(n, "given") for n in names},
         "mechanisms": mechanisms,
         "randomness": (
-            "seeded (random_state): reproducible, and NOT private against anyone who knows "
-            "the seed"
+            "seeded (random_state): reproducible, and NOT private against anyone who knows the seed"
             if seeded
             else "the operating system's (secrets)"
         ),

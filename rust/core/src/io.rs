@@ -415,6 +415,21 @@ mod tests {
     }
 
     #[test]
+    fn a_private_model_keeps_its_statement() -> Result<()> {
+        let model = small_model()?;
+        let plain = model_to_bytes(&model);
+        assert_eq!(model_and_statement_from_bytes(&plain)?.1, None);
+        let statement = r#"{"epsilon": 1.0}"#;
+        let bytes = private_model_to_bytes(&model, statement);
+        let (again, read) = model_and_statement_from_bytes(&bytes)?;
+        assert_eq!(read.as_deref(), Some(statement));
+        assert_eq!(private_model_to_bytes(&again, statement), bytes);
+        // The plain reader accepts the file and drops the statement.
+        assert_eq!(model_to_bytes(&model_from_bytes(&bytes)?), plain);
+        Ok(())
+    }
+
+    #[test]
     fn save_load_save_is_byte_identical() -> Result<()> {
         let model = small_model()?;
         let bytes = model_to_bytes(&model);
