@@ -34,13 +34,14 @@ from treewise.privacy import plan_budget, release_model, scaled_mutual_info, sco
 
 
 def laplace_pmf(x: int, t: float) -> float:
-    # Canonne, Kamath & Steinke 2020, Definition 28 (discrete Laplace):
+    # Canonne, Kamath & Steinke 2020, the discrete Laplace pmf (definition number not checked;
+    # the formula from memory):
     # P[X = x] = (e^{1/t} - 1) / (e^{1/t} + 1) * e^{-|x|/t}.
     return (math.exp(1 / t) - 1) / (math.exp(1 / t) + 1) * math.exp(-abs(x) / t)
 
 
 def gaussian_pmf(sigma2: float, support: range) -> np.ndarray:
-    # Canonne, Kamath & Steinke 2020, Definition 1 (discrete Gaussian):
+    # Canonne, Kamath & Steinke 2020, Definition 1, the discrete Gaussian (from memory):
     # P[X = x] = e^{-x^2 / (2 sigma^2)} / sum_y e^{-y^2 / (2 sigma^2)}; the sum over |y| <= 80
     # misses less than 1e-300 of the mass for the variances used here.
     weights = np.array([math.exp(-(y * y) / (2 * sigma2)) for y in range(-80, 81)])
@@ -227,11 +228,11 @@ def test_the_budget_converts_back_to_epsilon() -> None:
         1.0, 1e-6, privacy.DEFAULT_SPLIT, n_columns=5, learned_categories=0, learned_ranges=0
     )
     assert plan.rho is not None
-    # Bun & Steinke 2016, Proposition 1.3: rho-zCDP implies (rho + 2 sqrt(rho ln(1/delta)),
+    # Bun & Steinke 2016, Proposition 1.3 (from memory): rho-zCDP implies (rho + 2 sqrt(rho ln(1/delta)),
     # delta)-DP.
     assert plan.rho + 2 * math.sqrt(plan.rho * math.log(1e6)) == pytest.approx(1.0)
     # The tables: 5 tables of sensitivity 1 each, zCDP of a discrete Gaussian is
-    # Delta^2 / (2 sigma^2) (Canonne, Kamath & Steinke 2020, Theorem 4), summed.
+    # Delta^2 / (2 sigma^2) (Canonne, Kamath & Steinke 2020; from memory), summed.
     kind, variance = plan.noise["tables"]
     assert kind == "gaussian"
     assert 5 / (2 * float(variance)) <= plan.rho * (0.6 / 0.9) * (1 + 1e-9)
