@@ -598,3 +598,26 @@ def test_the_command_line_fits_privately_and_states_the_guarantee(
     page = report.read_text()
     assert "(1, 1e-06)-DP" in page and "released noisy counts" in page
     assert main(["fit", str(tmp_path / "d.parquet"), "-o", str(model), "--delta", "0.1"]) != 0
+
+
+def test_time_and_integer_ranges_stay_in_their_types_and_ranges() -> None:
+    rng = np.random.default_rng(0)
+    start = pd.Timestamp("2024-01-01", tz="UTC")
+    df = pd.DataFrame(
+        {
+            "t": start + pd.to_timedelta(rng.integers(0, 86_400 * 30, 2000), unit="s"),
+            "k": rng.integers(0, 1000, 2000),
+            "s": rng.choice(["a", "b"], 2000),
+        }
+    )
+    end = pd.Timestamp("2024-02-01", tz="UTC")
+    model = private(domains={"t": (start, end), "k": (0, 999)}).fit(df)
+    rows = model.sample(500, random_state=1)
+    assert pa.types.is_timestamp(rows.schema.field("t").type)
+    assert pa.types.is_integer(rows.schema.field("k").type)
+    t = rows.column("t").to_pandas()
+    assert t.min() >= start and t.max() <= end
+    k = rows.column("k").to_numpy()
+    assert k.min() >= 0 and k.max() <= 999
+    with pytest.raises(ValueError, match="not a"):
+        private(domains={"t": ("soon", "later"), "k": (0, 999)}).fit(df)

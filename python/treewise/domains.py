@@ -55,7 +55,19 @@ class Domain:
         return self.low is not None
 
 
-def _domain(name: str, spec: Any) -> Domain:
+def _bound(name: str, value: Any, dtype: pa.DataType | None) -> float:
+    """A range bound as a number: itself, or a time column's value as its epoch number."""
+    if isinstance(value, int | float) and not isinstance(value, bool):
+        return float(value)
+    if dtype is not None and pa.types.is_temporal(dtype):
+        try:
+            return _time_number(value, dtype)
+        except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError, ValueError) as e:
+            raise ValueError(f"domains[{name!r}]: {value!r} is not a {dtype} value: {e}") from None
+    raise ValueError(f"domains[{name!r}]: a range bound must be a number, got {value!r}")
+
+
+def _domain(name: str, spec: Any, dtype: pa.DataType | None = None) -> Domain:
     if isinstance(spec, Mapping):
         unknown = set(spec) - {"categories", "range", "edges"}
         if unknown or ("categories" in spec) == ("range" in spec):
@@ -64,20 +76,18 @@ def _domain(name: str, spec: Any) -> Domain:
                 f"dict with 'categories' or 'range' (and optional 'edges'), got {spec!r}"
             )
         if "categories" in spec:
-            return _domain(name, list(spec["categories"]))
+            return _domain(name, list(spec["categories"]), dtype)
         low_high = spec["range"]
-        domain = _domain(name, tuple(low_high))
+        domain = _domain(name, tuple(low_high), dtype)
         if "edges" in spec:
             domain.edges = sorted(float(e) for e in spec["edges"])
             if any(not (domain.low < e <= domain.high) for e in domain.edges):  # type: ignore[operator]
                 raise ValueError(f"domains[{name!r}]: every edge must lie in (low, high]")
         return domain
     if isinstance(spec, tuple):
-        if len(spec) != 2 or not all(
-            isinstance(x, int | float) and not isinstance(x, bool) for x in spec
-        ):
+        if len(spec) != 2:
             raise ValueError(f"domains[{name!r}]: a range is a (low, high) pair, got {spec!r}")
-        low, high = float(spec[0]), float(spec[1])
+        low, high = _bound(name, spec[0], dtype), _bound(name, spec[1], dtype)
         if not (math.isfinite(low) and math.isfinite(high) and low < high):
             raise ValueError(f"domains[{name!r}]: a range needs finite low < high, got {spec!r}")
         return Domain(low=low, high=high)
@@ -95,11 +105,13 @@ def check_domains(
     domains: Mapping[str, Any] | None,
     names: Sequence[str],
     available: Sequence[str] | None = None,
+    types: Mapping[str, pa.DataType] | None = None,
 ) -> dict[str, Domain]:
     """The given domains of the modelled columns ``names``, checked.
 
     A domain of a column that the data does not have (``available``, by default ``names``) is
-    an error.
+    an error. With the columns' ``types``, a time column's range may be given in its own values
+    (datetimes, dates); it is kept as epoch numbers in the column's unit.
     """
     if domains is None:
         return {}
@@ -108,7 +120,12 @@ def check_domains(
     unknown = [n for n in domains if n not in (names if available is None else available)]
     if unknown:
         raise SchemaError(f"domains= names columns that the data does not have: {unknown}")
-    return {str(n): _domain(str(n), spec) for n, spec in domains.items() if n in names}
+    types = types or {}
+    return {
+        str(n): _domain(str(n), spec, types.get(str(n)))
+        for n, spec in domains.items()
+        if n in names
+    }
 
 
 def read_domains(path: str | os.PathLike[str]) -> dict[str, Any]:
@@ -294,13 +311,12 @@ def public_codebook(
     names = list(schema.names)
     types = {n: schema.field(n).type for n in names}
     families = {n: family_of(t) for n, t in types.items()}
-    return build_codebook(names, families, types, check_domains(domains, names), n_bins)
+    return build_codebook(names, families, check_domains(domains, names, None, types), n_bins)
 
 
 def build_codebook(
     names: Sequence[str],
     families: Mapping[str, str],
-    types: Mapping[str, pa.DataType],
     domains: Mapping[str, Domain],
     n_bins: int,
 ) -> _core.Codebook:
@@ -333,8 +349,6 @@ def build_codebook(
         if domain.numeric:
             low, high = domain.low, domain.high
             assert low is not None and high is not None
-            if family == "time":
-                low, high = _time_number(low, types[n]), _time_number(high, types[n])
             edges = domain.edges
             if edges is None:
                 edges = [low + (high - low) * k / n_bins for k in range(1, n_bins)]

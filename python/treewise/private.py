@@ -67,7 +67,6 @@ def count_private(
     Returns the exact statistics (to be released only through ``private_model``), the codebook,
     the column types, the budget plan and, per column, where its domain came from.
     """
-    given = check_domains(domains, names, source.names)
     if not source.replayable:
         raise DataError(
             "a private fit reads its data more than once (types, domains, counts), and this is "
@@ -75,6 +74,7 @@ def count_private(
             "with a public codebook and use fit_stats"
         )
     arrow_types = _families(source, names, batch_rows)
+    given = check_domains(domains, names, source.names, arrow_types)
     families = {n: family_of(t) for n, t in arrow_types.items()}
     learner = DomainLearner(names, families, given)
     epsilon, delta, split = budget
@@ -105,7 +105,7 @@ def count_private(
             origin[n] = "categories learned with noise"
         for n in learner.grids:
             origin[n] = "range given; bin edges learned with noise"
-    codebook = build_codebook(names, families, arrow_types, domains_all, n_bins)
+    codebook = build_codebook(names, families, domains_all, n_bins)
     stats = _core.PairStats(codebook)
     types = TypeRecorder(names)
     count_pairs(source, names, codebook, stats, batch_rows, bar, types)
