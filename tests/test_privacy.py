@@ -228,8 +228,8 @@ def test_the_budget_converts_back_to_epsilon() -> None:
         1.0, 1e-6, privacy.DEFAULT_SPLIT, n_columns=5, learned_categories=0, learned_ranges=0
     )
     assert plan.rho is not None
-    # Bun & Steinke 2016, Proposition 1.3 (from memory): rho-zCDP implies (rho + 2 sqrt(rho ln(1/delta)),
-    # delta)-DP.
+    # Bun & Steinke 2016, Proposition 1.3 (from memory): rho-zCDP implies
+    # (rho + 2 sqrt(rho ln(1/delta)), delta)-DP.
     assert plan.rho + 2 * math.sqrt(plan.rho * math.log(1e6)) == pytest.approx(1.0)
     # The tables: 5 tables of sensitivity 1 each, zCDP of a discrete Gaussian is
     # Delta^2 / (2 sigma^2) (Canonne, Kamath & Steinke 2020; from memory), summed.
