@@ -621,3 +621,18 @@ def test_time_and_integer_ranges_stay_in_their_types_and_ranges() -> None:
     assert k.min() >= 0 and k.max() <= 999
     with pytest.raises(ValueError, match="not a"):
         private(domains={"t": ("soon", "later"), "k": (0, 999)}).fit(df)
+
+
+def test_edge_stability_refuses_a_private_estimator() -> None:
+    from treewise.stability import edge_stability
+
+    with pytest.raises(ValueError, match="budget again"):
+        edge_stability(private(), shop(200), n_resamples=2)
+
+
+def test_a_single_column_private_fit() -> None:
+    model = private(columns=["a"]).fit(shop(500))
+    assert list(model.parent_) == [-1]
+    assert model.privacy_ is not None
+    assert "structure" not in model.privacy_["mechanisms"]
+    assert model.marginal_counts("a").sum() == model.n_rows_
