@@ -285,6 +285,7 @@ def test_a_private_fit_states_its_guarantee() -> None:
     assert p["domains"]["c"] == "range given; bin edges learned with noise"
     assert p["domains"]["a"] == "given"
     assert "seed" in p["randomness"]
+    assert "differentially private (ε = 1, δ = 1e-06)" in model._repr_html_()
     assert treewise.DependencyTree().fit(shop()).privacy_ is None
 
 
