@@ -52,6 +52,7 @@ class Codebook:
                 bool,
                 bool,
                 bool,
+                list[list[float]] | None,
             ]
         ],
     ) -> Codebook: ...

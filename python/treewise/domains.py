@@ -48,6 +48,9 @@ class Domain:
     low: float | None = None
     high: float | None = None
     edges: list[float] | None = None
+    #: The noisy histogram of ``GRID`` cells over the range that learned edges came from; the
+    #: values inside each bin are drawn from it (post-processing).
+    grid: list[int] | None = None
 
     @property
     def numeric(self) -> bool:
@@ -269,7 +272,8 @@ class DomainLearner:
         for n, grid in self.grids.items():
             d = self.ranges[n]
             noisy = np.clip(grid + draw(rng, GRID), 0, None)
-            out[n] = Domain(low=d.low, high=d.high, edges=_quantile_edges(noisy, d, n_bins))
+            edges = _quantile_edges(noisy, d, n_bins)
+            out[n] = Domain(low=d.low, high=d.high, edges=edges, grid=[int(c) for c in noisy])
         return out
 
 
@@ -295,6 +299,38 @@ def _quantile_edges(noisy: npt.NDArray[np.int64], d: Domain, n_bins: int) -> lis
         cells = [int(np.searchsorted(cum, k * total / n_bins)) + 1 for k in range(1, n_bins)]
     edges = sorted({d.low + c * width for c in cells if 0 < c < GRID})
     return [e for e in edges if d.low < e <= d.high]
+
+
+#: Points per bin of a ``Steps`` summary (the core's QUANTILES + 1).
+STEP_POINTS = 65
+
+
+def bin_steps(
+    grid: Sequence[int], low: float, high: float, edges: Sequence[float]
+) -> list[list[float]]:
+    """Each bin's 65 equal-mass points under the histogram ``grid`` over [low, high].
+
+    The density is uniform inside each grid cell; a bin with no mass gets evenly spaced points.
+    """
+    counts = np.asarray(grid, dtype=np.float64)
+    bounds = np.linspace(low, high, len(counts) + 1)
+    cuts = [low, *edges, high]
+    out = []
+    for lo, hi in zip(cuts[:-1], cuts[1:], strict=True):
+        inner = bounds[(bounds > lo) & (bounds < hi)]
+        xs = np.concatenate([[lo], inner, [hi]])
+        mids = (xs[:-1] + xs[1:]) / 2
+        cell = np.clip(np.searchsorted(bounds, mids, side="right") - 1, 0, len(counts) - 1)
+        mass = counts[cell] * (xs[1:] - xs[:-1]) / (bounds[1] - bounds[0])
+        total = float(mass.sum())
+        if total <= 0:
+            points = np.linspace(lo, hi, STEP_POINTS)
+        else:
+            cum = np.concatenate([[0.0], np.cumsum(mass)])
+            points = np.interp(np.linspace(0, total, STEP_POINTS), cum, xs)
+        points = np.clip(np.maximum.accumulate(points), lo, hi)
+        out.append([float(p) for p in points])
+    return out
 
 
 def public_codebook(
@@ -336,6 +372,7 @@ def build_codebook(
             bool,
             bool,
             bool,
+            list[list[float]] | None,
         ]
     ] = []
     for n in names:
@@ -356,13 +393,14 @@ def build_codebook(
                 edges = sorted({float(math.ceil(e)) for e in edges})
                 edges = [e for e in edges if low < e <= high]
             specials = [math.nan] if family == "float" else []
-            columns.append(
-                (n, family, [], (list(edges), low, high, specials), False, True, integral)
-            )
+            # Learned edges come with their noisy histogram: draws inside a bin follow it.
+            steps = None if domain.grid is None else bin_steps(domain.grid, low, high, edges)
+            bins = (list(edges), low, high, specials)
+            columns.append((n, family, [], bins, False, True, integral, steps))
         else:
             assert domain.categories is not None
             values = _cast_categories(n, domain.categories, family)
-            columns.append((n, family, values, None, family != "bool", True, False))
+            columns.append((n, family, values, None, family != "bool", True, False, None))
     return _core.Codebook.from_columns(columns)
 
 

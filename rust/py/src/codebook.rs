@@ -92,10 +92,11 @@ impl PyCodebook {
         Ok((col.model_kind().to_string(), shape.integral, tail, within))
     }
 
-    /// A codebook made from given values, with no summary of any data (no tail tables, no values
-    /// inside bins): for public domains. Each column is (name, family, values, bins, has_other,
-    /// has_null, integral), where bins is (edges, low, high, specials) for a numeric column
-    /// (values are then ignored) and None for a categorical one.
+    /// A codebook made from given values, with no summary of exact data (no tail tables): for
+    /// public domains. Each column is (name, family, values, bins, has_other, has_null,
+    /// integral, steps), where bins is (edges, low, high, specials) for a numeric column (values
+    /// are then ignored) and None for a categorical one, and steps, when given, holds each bin's
+    /// 65 equal-mass points (for example from a noisy histogram; see docs/privacy.md).
     #[staticmethod]
     #[allow(clippy::type_complexity)]
     fn from_columns(
@@ -107,10 +108,11 @@ impl PyCodebook {
             bool,
             bool,
             bool,
+            Option<Vec<Vec<f64>>>,
         )>,
     ) -> PyResult<PyCodebook> {
         let mut built = Vec::with_capacity(columns.len());
-        for (name, family, values, bins, has_other, has_null, integral) in columns {
+        for (name, family, values, bins, has_other, has_null, integral, steps) in columns {
             let kind = Kind::from_name(&family).ok_or_else(|| {
                 to_py(treewise_core::Error::Invalid(format!(
                     "column '{name}': unknown value family {family:?}"
@@ -139,6 +141,11 @@ impl PyCodebook {
             };
             let shape = Shape {
                 integral,
+                within: steps
+                    .unwrap_or_default()
+                    .into_iter()
+                    .map(Within::Steps)
+                    .collect(),
                 ..Shape::default()
             };
             built.push(
