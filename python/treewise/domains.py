@@ -6,6 +6,7 @@ counts, private quantiles).
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 import os
@@ -316,7 +317,7 @@ def bin_steps(
     bounds = np.linspace(low, high, len(counts) + 1)
     cuts = [low, *edges, high]
     out = []
-    for lo, hi in zip(cuts[:-1], cuts[1:], strict=True):
+    for lo, hi in itertools.pairwise(cuts):
         inner = bounds[(bounds > lo) & (bounds < hi)]
         xs = np.concatenate([[lo], inner, [hi]])
         mids = (xs[:-1] + xs[1:]) / 2
