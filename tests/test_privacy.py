@@ -653,3 +653,11 @@ def test_values_inside_learned_bins_follow_the_noisy_histogram() -> None:
     # Given edges have no histogram: uniform inside each bin.
     given = {"x": {"range": [0.0, 100.0], "edges": [5, 10, 20, 40]}, "s": ["a", "b"]}
     assert private(domains=given).fit(df).codebook_.shape(0)[3] == []
+
+
+def test_a_damaged_statement_is_a_corrupt_model(tmp_path: Path) -> None:
+    model = private().fit(shop(300))._fitted()
+    model.set_privacy("not json")
+    (tmp_path / "m.tw").write_bytes(model.to_bytes())
+    with pytest.raises(treewise.CorruptModelError, match="privacy statement"):
+        treewise.load(tmp_path / "m.tw")

@@ -27,7 +27,7 @@ from treewise.checks import (
 )
 from treewise.counts import ExactCounts
 from treewise.decode import ColumnValues, decode_column, type_from_name
-from treewise.errors import DataError, NotFittedError, SchemaError
+from treewise.errors import CorruptModelError, DataError, NotFittedError, SchemaError
 from treewise.files import read_model_file, write_atomically
 from treewise.noise import IntegerSource, integer_source
 from treewise.pairstats import PairStats
@@ -494,9 +494,7 @@ class DependencyTree(ExactCounts, Params):
         self.n_parameters_ = model.n_parameters
         self.kinds_ = {str(name): codebook.shape(i)[0] for i, name in enumerate(codebook.names)}
         self.codebook_ = codebook
-        self.privacy_: dict[str, Any] | None = (
-            None if model.privacy is None else json.loads(model.privacy)
-        )
+        self.privacy_: dict[str, Any] | None = _statement(model.privacy)
         self._values: list[ColumnValues] | None = None
 
     # -- fitted views ----------------------------------------------------------------------------
@@ -813,6 +811,22 @@ class DependencyTree(ExactCounts, Params):
             type_from_name(t)
         estimator._set_model(model)
         return estimator
+
+
+def _statement(text: str | None) -> dict[str, Any] | None:
+    """A private model's statement from its file: a JSON object, or the file is damaged."""
+    if text is None:
+        return None
+    try:
+        statement = json.loads(text)
+    except ValueError:
+        statement = None
+    if not isinstance(statement, dict):
+        raise CorruptModelError(
+            "the model's privacy statement is not a JSON object; the file is damaged or was not "
+            "written by treewise"
+        )
+    return statement
 
 
 def _as_codebook(codebook: object) -> _core.Codebook | None:
