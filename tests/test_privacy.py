@@ -418,6 +418,7 @@ def test_bad_privacy_parameters() -> None:
         ({"epsilon": "1"}, TypeError),
         ({"delta": 1.0}, ValueError),
         ({"privacy_split": {"structure": 1}}, ValueError),
+        ({"privacy_split": {"structure": 1, "tables": 1, "domains": 0}}, ValueError),
         ({"random_state": 1.5}, TypeError),
         ({"domains": {"zz": ["a"]}}, SchemaError),
         ({"domains": {"c": (5, 1)}}, ValueError),

@@ -149,6 +149,11 @@ def plan_budget(
     converted back with epsilon = rho + 2 sqrt(rho ln(1/delta)), and in pure epsilon otherwise.
     """
     learned = learned_categories + learned_ranges
+    if learned and split["domains"] <= 0:
+        raise ValueError(
+            f"{learned} column(s) need their domains learned from the data, but privacy_split "
+            "gives the domains no share; give them a share, or give every domain in domains="
+        )
     steps = ["structure", "tables"] + (["domains"] if learned else [])
     total = sum(split[s] for s in steps)
     share = {s: split[s] / total for s in steps}
