@@ -662,3 +662,11 @@ def test_a_damaged_statement_is_a_corrupt_model(tmp_path: Path) -> None:
     (tmp_path / "m.tw").write_bytes(model.to_bytes())
     with pytest.raises(treewise.CorruptModelError, match="privacy statement"):
         treewise.load(tmp_path / "m.tw")
+
+
+def test_an_ordered_categorical_does_not_release_its_levels() -> None:
+    df = shop(500)
+    df["a"] = pd.Categorical(df["a"], categories=["z", "y", "x", "secret-level"], ordered=True)
+    model = private().fit(df)
+    assert "secret-level" not in model._fitted().to_bytes().decode("latin-1")
+    assert pa.types.is_string(model.sample(5, random_state=0).schema.field("a").type)

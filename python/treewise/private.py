@@ -12,6 +12,7 @@ from typing import Any
 import pyarrow as pa
 
 from treewise import _core
+from treewise.decode import FAMILY_TYPES, family, ordered_levels
 from treewise.domains import DomainLearner, build_codebook, check_domains, family_of
 from treewise.errors import DataError, SchemaError
 from treewise.noise import IntegerSource
@@ -137,7 +138,12 @@ def private_model(
     origin: Mapping[str, str],
     seeded: bool,
 ) -> _core.TreeModel:
-    """Release the model from exact statistics: noise once, then post-processing only."""
+    """Release the model from exact statistics: noise once, then post-processing only.
+
+    An ordered categorical's type names its levels, which may have been taken from the data:
+    a private model gives such a column back as plain strings.
+    """
+    dtypes = [FAMILY_TYPES[family(t)] if ordered_levels(t) is not None else t for t in dtypes]
     eligible = [r > 1 for r in codebook.cardinalities]
     release = release_model(stats, plan, rng, root, eligible)
     model = _core.TreeModel.from_counts(
