@@ -385,6 +385,11 @@ def test_identifiers_and_unranged_numbers_are_refused() -> None:
         private(domains={"a": ["x", "y", "z"]}, columns=["a", "c"]).fit(df)
 
 
+def test_kinds_ignore_leaves_a_column_out() -> None:
+    model = private(kinds={"d": "ignore"}).fit(shop(500))
+    assert list(model.feature_names_in_) == ["a", "b", "c"]
+
+
 def test_partial_fit_and_pruning_are_refused() -> None:
     model = private().fit(shop(500))
     with pytest.raises(NotFittedError, match="released once"):

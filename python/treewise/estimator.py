@@ -270,6 +270,8 @@ class DependencyTree(ExactCounts, Params):
             raise SchemaError(f"root={self.root!r} is not one of the modelled columns {names}")
         budget = self._privacy_budget()
         if budget is not None:
+            # A private fit models a column by its domain; of the kinds, only "ignore" applies.
+            names = [n for n in names if kinds.get(n) != "ignore"]
             rng = integer_source(self._noise_seed())
             with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
                 if given is not None:
