@@ -102,7 +102,8 @@ class DependencyTree(ExactCounts, Params):
         Public domains per column, for a private fit: a list of categories, or a ``(low,
         high)`` range of a number or time column (its bin edges are then chosen privately),
         or ``{"range": [low, high], "edges": [...]}``. A column without one has its
-        categories learned with noise (needs delta > 0); bool columns need none.
+        categories learned with noise (needs delta > 0); bool columns need none. In a private
+        fit the domains decide how each column is modelled; of ``kinds``, only "ignore" applies.
     privacy_split : dict, optional
         Shares of the budget: ``{"domains": 0.1, "structure": 0.3, "tables": 0.6}`` by
         default; the domains' share is spent only when some domain is learned.
