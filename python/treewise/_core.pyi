@@ -22,6 +22,19 @@ class CodebookBuilder:
         self, max_categories: int, n_bins: int, kinds: list[tuple[str, str]] = ...
     ) -> tuple[Codebook, list[tuple[str, int, int]], list[tuple[str, str, str]]]: ...
 
+#: A column of Codebook.from_columns: (name, family, values, bins (edges, low, high, specials)
+#: or None, has_other, has_null, integral, steps per bin or None).
+ColumnSpec = tuple[
+    str,
+    str,
+    list[Any],
+    tuple[list[float], float, float, list[float]] | None,
+    bool,
+    bool,
+    bool,
+    list[list[float]] | None,
+]
+
 class Codebook:
     @property
     def names(self) -> list[str]: ...
@@ -42,20 +55,7 @@ class Codebook:
     def from_bytes(data: bytes) -> Codebook: ...
     def select(self, names: list[str]) -> Codebook: ...
     @staticmethod
-    def from_columns(
-        columns: list[
-            tuple[
-                str,
-                str,
-                list[Any],
-                tuple[list[float], float, float, list[float]] | None,
-                bool,
-                bool,
-                bool,
-                list[list[float]] | None,
-            ]
-        ],
-    ) -> Codebook: ...
+    def from_columns(columns: list[ColumnSpec]) -> Codebook: ...
     def __eq__(self, other: object) -> bool: ...
 
 class PairStats:

@@ -12,7 +12,7 @@ import math
 import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import numpy.typing as npt
@@ -20,6 +20,9 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from treewise import _core
+
+if TYPE_CHECKING:
+    from treewise._core import ColumnSpec
 from treewise.errors import DataError, SchemaError
 from treewise.noise import IntegerSource
 
@@ -364,18 +367,7 @@ def build_codebook(
     edges is cut into ``n_bins`` equal-width bins (a fit from data chooses them privately
     instead); float columns get a code for NaN.
     """
-    columns: list[
-        tuple[
-            str,
-            str,
-            list[Any],
-            tuple[list[float], float, float, list[float]] | None,
-            bool,
-            bool,
-            bool,
-            list[list[float]] | None,
-        ]
-    ] = []
+    columns: list[ColumnSpec] = []
     for n in names:
         family = families[n]
         domain = domains.get(n)
