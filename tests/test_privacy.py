@@ -390,6 +390,17 @@ def test_kinds_ignore_leaves_a_column_out() -> None:
     assert list(model.feature_names_in_) == ["a", "b", "c"]
 
 
+def test_one_shot_streams_and_learned_codebooks_are_refused() -> None:
+    table = pa.Table.from_pandas(shop(300), preserve_index=False)
+    with pytest.raises(DataError, match="one-shot"):
+        private().fit(pa.RecordBatchReader.from_batches(table.schema, table.to_batches()))
+    learned = treewise.DependencyTree().fit(table)
+    with pytest.raises(SchemaError, match="public codebook"):
+        private().fit(table, codebook=learned)
+    public = treewise.public_codebook(DOMAINS, table.schema)
+    assert private().fit(table, codebook=public).privacy_ is not None
+
+
 def test_partial_fit_and_pruning_are_refused() -> None:
     model = private().fit(shop(500))
     with pytest.raises(NotFittedError, match="released once"):
