@@ -73,6 +73,13 @@ def main() -> None:
                 (decode / f"{name}-{kind}-file").write_bytes(b"\x00" + data)
                 mode = bytes([4 + KINDS[kind] - 1])
                 (decode / f"{name}-{kind}-payload").write_bytes(mode + data[HEADER:])
+        # A private model: its file ends in the privacy statement (model file field 9).
+        private = treewise.DependencyTree(
+            epsilon=1.0, delta=1e-6, domains={"f": (0.0, 10.0)}, random_state=0
+        ).fit(tables()["mixed"])
+        data = private._fitted().to_bytes()
+        (decode / "private-model-file").write_bytes(b"\x00" + data)
+        (decode / "private-model-payload").write_bytes(bytes([4]) + data[HEADER:])
     rng = np.random.default_rng(5)
     # Repeat bytes (see counts.rs): rows as given, tiled 4 times, and tiled 64 and 512 times
     # (160 rows x 512 = past the 70,000-row cap), so the block boundaries are in the seeds.

@@ -35,6 +35,11 @@ PARAMS = {
     "alpha": 0.5,
     "prune": None,
     "memory_limit": None,
+    "epsilon": None,
+    "delta": None,
+    "domains": None,
+    "privacy_split": None,
+    "random_state": None,
 }
 
 
@@ -128,6 +133,11 @@ def test_init_only_stores_parameters() -> None:
         "alpha": -1,
         "prune": None,
         "memory_limit": None,
+        "epsilon": None,
+        "delta": None,
+        "domains": None,
+        "privacy_split": None,
+        "random_state": None,
     }
     with pytest.raises(ValueError, match="max_categories"):
         model.fit(table())
@@ -150,6 +160,7 @@ def test_fit_returns_self_and_fitted_attributes_end_in_underscore() -> None:
         "mutual_info_",
         "pairwise_mutual_info_",
         "n_parameters_",
+        "privacy_",
     }
     assert all(k.endswith("_") for k in public)
     assert model.get_params() == PARAMS  # fitting changes no parameter

@@ -11,6 +11,7 @@ from treewise._core import Codebook
 from treewise.categories import OTHER, Bin
 from treewise.classifier import TreeAugmentedClassifier
 from treewise.compare import Comparison, compare
+from treewise.domains import public_codebook
 from treewise.errors import (
     CategoryCapWarning,
     ColumnKindWarning,
@@ -75,4 +76,5 @@ __all__ = [
     "__version__",
     "compare",
     "load",
+    "public_codebook",
 ]

@@ -46,6 +46,18 @@ class OnePass:
     ]: ...
 
 PROVISIONAL_CODES: int
+#: A column of Codebook.from_columns: (name, family, values, bins (edges, low, high, specials)
+#: or None, has_other, has_null, integral, steps per bin or None).
+ColumnSpec = tuple[
+    str,
+    str,
+    list[Any],
+    tuple[list[float], float, float, list[float]] | None,
+    bool,
+    bool,
+    bool,
+    list[list[float]] | None,
+]
 
 class Codebook:
     @property
@@ -66,6 +78,8 @@ class Codebook:
     @staticmethod
     def from_bytes(data: bytes) -> Codebook: ...
     def select(self, names: list[str]) -> Codebook: ...
+    @staticmethod
+    def from_columns(columns: list[ColumnSpec]) -> Codebook: ...
     def __eq__(self, other: object) -> bool: ...
 
 class PairStats:
@@ -101,8 +115,22 @@ class TreeModel:
         level: float = 0.0,
     ) -> TreeModel: ...
     @staticmethod
+    def from_counts(
+        codebook: Codebook,
+        dtypes: list[str],
+        n_rows: int,
+        root: int,
+        parent: list[int],
+        counts: list[list[int]],
+        pair_mi: list[float],
+        alpha: float,
+    ) -> TreeModel: ...
+    @staticmethod
     def from_bytes(data: bytes) -> TreeModel: ...
     def to_bytes(self) -> bytes: ...
+    @property
+    def privacy(self) -> str | None: ...
+    def set_privacy(self, statement: str) -> None: ...
     @property
     def alpha(self) -> float: ...
     def set_alpha(self, alpha: float) -> None: ...

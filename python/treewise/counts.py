@@ -59,7 +59,10 @@ class ExactCounts:
         )
 
     def marginal_counts(self, column: str | int) -> npt.NDArray[np.uint64]:
-        """The exact count of each code of ``column``, aligned with ``categories_``."""
+        """The exact count of each code of ``column``, aligned with ``categories_``.
+
+        For a private model, the released noisy counts (after post-processing).
+        """
         i = self._index(column)
         counts = u64(self._fitted().counts(i)).reshape(-1, len(self.categories_[i]))
         total: npt.NDArray[np.uint64] = counts.sum(axis=0, dtype=np.uint64)
@@ -68,7 +71,9 @@ class ExactCounts:
     def joint_counts(self, first: str | int, second: str | int) -> npt.NDArray[np.uint64]:
         """The exact contingency table of two columns, rows by ``first``'s codes.
 
-        Every pair is available right after ``fit``; a loaded model keeps only its edges.
+        Every pair is available right after ``fit``; a loaded model keeps only its edges. For a
+        private model, the released noisy table of an edge (after post-processing); it has no
+        other pairs.
         """
         i, j = self._index(first), self._index(second)
         if i == j:
@@ -78,6 +83,12 @@ class ExactCounts:
             return u64(self._fitted().counts(j)).reshape(shape)
         if self.parent_[i] == j:
             return u64(self._fitted().counts(i)).reshape(shape[::-1]).T.copy()
+        if self._stats is None and self._fitted().privacy is not None:
+            names = self.feature_names_in_
+            raise NotFittedError(
+                f"{names[i]!r} and {names[j]!r} are not joined by an edge, and a private model "
+                "releases only the tables of its edges"
+            )
         if self._stats is None:
             names = self.feature_names_in_
             raise NotFittedError(

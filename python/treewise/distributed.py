@@ -1,7 +1,8 @@
 """Fitting on a Dask cluster, bit-identical to a local fit.
 
 Each partition's codebook tally and pair counts are computed on the workers and tree-reduced by
-addition; the driver only fixes the codes and builds the tree.
+addition; the driver only fixes the codes and builds the tree. A private fit (``epsilon=``)
+counts with a codebook of public domains and adds its noise once, on the driver.
 
 Both reductions are exact (tallies and counts are integers; float tallies coarsen in an
 order-free way), so the result is bit-identical to a local fit of the same rows.
@@ -13,6 +14,8 @@ import os
 from collections.abc import Callable
 from typing import Any
 
+import pyarrow as pa
+
 from treewise import _core
 from treewise.checks import (
     MAX_CATEGORIES,
@@ -22,6 +25,7 @@ from treewise.checks import (
     check_prune,
     check_root,
 )
+from treewise.domains import public_codebook
 from treewise.errors import DataError
 from treewise.estimator import DependencyTree
 from treewise.pairstats import PairStats
@@ -44,6 +48,14 @@ def _tally(part: Any, names: list[str]) -> bytes:
         for batch in batches:
             builder.observe(batch)
     return builder.to_bytes()
+
+
+def _schema(part: Any, names: list[str]) -> pa.Schema:
+    """Worker task: the Arrow schema of one partition's columns (from its first batch)."""
+    with _batches(part, names) as batches:
+        for batch in batches:
+            return batch.schema
+    raise DataError("the first Dask partition has no rows; a private fit needs its schema")
 
 
 def _merge_tallies(a: bytes, b: bytes) -> bytes:
@@ -113,7 +125,8 @@ def fit_dask(data: Any, *, split_every: int = 8, **params: Any) -> DependencyTre
         How many partial results each reduction task adds up.
     **params
         The parameters of :class:`DependencyTree` (columns, max_categories, n_bins, root,
-        alpha, prune).
+        alpha, prune; epsilon, delta, domains, privacy_split, random_state for a private fit,
+        where every column but bool ones needs a public domain).
 
     Returns
     -------
@@ -142,13 +155,19 @@ def fit_dask(data: Any, *, split_every: int = 8, **params: Any) -> DependencyTre
     if estimator.root is not None:
         check_root(estimator.root, names)  # before any task runs
 
-    tallies = [delayed(_tally, pure=True)(p, names) for p in parts]
-    (tally,) = compute(_tree_reduce(tallies, _merge_tallies, split_every))
-    codebook, caps, notes = _core.CodebookBuilder.from_bytes(tally).finish(
-        max_categories, n_bins, list(kinds.items())
-    )
-    warn_caps(caps, max_categories)
-    warn_notes(notes)
+    if estimator.epsilon is not None:
+        # A private fit counts with a codebook of public domains; the noise is added once, on
+        # the driver, to the merged exact counts (in fit_stats), whatever the partitioning.
+        (schema,) = compute(delayed(_schema)(parts[0], names))
+        codebook = public_codebook(estimator.domains or {}, schema, n_bins=n_bins)
+    else:
+        tallies = [delayed(_tally, pure=True)(p, names) for p in parts]
+        (tally,) = compute(_tree_reduce(tallies, _merge_tallies, split_every))
+        codebook, caps, notes = _core.CodebookBuilder.from_bytes(tally).finish(
+            max_categories, n_bins, list(kinds.items())
+        )
+        warn_caps(caps, max_categories)
+        warn_notes(notes)
     # Columns left out of the model (identifiers, all null) are not counted.
     names = list(codebook.names)
     encoded = codebook.to_bytes()

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import math
 import numbers
 import os
@@ -27,11 +28,14 @@ from treewise.checks import (
 )
 from treewise.counts import ExactCounts
 from treewise.decode import ColumnValues, decode_column, type_from_name
-from treewise.errors import DataError, NotFittedError, SchemaError
+from treewise.errors import CorruptModelError, DataError, NotFittedError, SchemaError
 from treewise.files import read_model_file, write_atomically
+from treewise.noise import IntegerSource, integer_source
 from treewise.pairstats import PairStats
 from treewise.params import Params
 from treewise.passes import TypeRecorder, count_pairs, learn_and_count
+from treewise.privacy import Plan, check_privacy, plan_budget
+from treewise.private import check_public, count_private, private_model
 from treewise.progress import PassProgress, wants_progress
 from treewise.sources import (
     BATCH_ROWS,
@@ -96,6 +100,24 @@ class DependencyTree(ExactCounts, Params):
         the machine's memory (physical RAM, or the container's cgroup limit when lower). Work
         that would pass it raises ``MemoryLimitError`` before allocating, saying what needs how
         much and what to change.
+    epsilon : float, optional
+        Fit with differential privacy: the model released satisfies (epsilon, delta)-DP for
+        adding or removing one row (docs/privacy.md). None (the default) is an ordinary fit.
+    delta : float, optional
+        The delta of the guarantee (default 0: pure epsilon-DP). With delta > 0 the structure
+        and tables are accounted in zCDP, and unknown categories can be learned privately.
+    domains : dict, optional
+        Public domains per column, for a private fit: a list of categories, or a ``(low,
+        high)`` range of a number or time column (its bin edges are then chosen privately),
+        or ``{"range": [low, high], "edges": [...]}``. A column without one has its
+        categories learned with noise (needs delta > 0); bool columns need none. In a private
+        fit the domains decide how each column is modelled; of ``kinds``, only "ignore" applies.
+    privacy_split : dict, optional
+        Shares of the budget: ``{"domains": 0.1, "structure": 0.3, "tables": 0.6}`` by
+        default; the domains' share is spent only when some domain is learned.
+    random_state : int, optional
+        Seeds the privacy noise, for tests and reproducible demos only: a seeded release is
+        not private against anyone who knows the seed. None draws from the operating system.
 
     Attributes
     ----------
@@ -119,6 +141,10 @@ class DependencyTree(ExactCounts, Params):
     codebook_ : Codebook
         The encoding of every column, to reuse with ``fit(..., codebook=model.codebook_)`` or
         ``PairStats``.
+    privacy_ : dict or None
+        For a private fit, its guarantee: epsilon, delta, the accounting, the neighbouring
+        relation, what was protected, the budget split and the noise of each step. None for an
+        ordinary fit.
     """
 
     _model: _core.TreeModel | None
@@ -135,6 +161,11 @@ class DependencyTree(ExactCounts, Params):
         alpha: float = 0.5,
         prune: str | float | None = None,
         memory_limit: int | str | None = None,
+        epsilon: float | None = None,
+        delta: float | None = None,
+        domains: Mapping[str, Any] | None = None,
+        privacy_split: Mapping[str, float] | None = None,
+        random_state: int | None = None,
     ) -> None:
         self.columns = columns
         self.max_categories = max_categories
@@ -144,6 +175,11 @@ class DependencyTree(ExactCounts, Params):
         self.alpha = alpha
         self.prune = prune
         self.memory_limit = memory_limit
+        self.epsilon = epsilon
+        self.delta = delta
+        self.domains = domains
+        self.privacy_split = privacy_split
+        self.random_state = random_state
 
     _PARAMS = (
         "columns",
@@ -154,6 +190,11 @@ class DependencyTree(ExactCounts, Params):
         "alpha",
         "prune",
         "memory_limit",
+        "epsilon",
+        "delta",
+        "domains",
+        "privacy_split",
+        "random_state",
     )
 
     def __getstate__(self) -> dict[str, Any]:
@@ -244,6 +285,36 @@ class DependencyTree(ExactCounts, Params):
         kinds = check_kinds(self.kinds, names)
         if self.root is not None and self.root not in names:
             raise SchemaError(f"root={self.root!r} is not one of the modelled columns {names}")
+        budget = self._privacy_budget()
+        if budget is not None:
+            # A private fit models a column by its domain; of the kinds, only "ignore" applies.
+            names = [n for n in names if kinds.get(n) != "ignore"]
+            rng = integer_source(self._noise_seed())
+            with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
+                if given is not None:
+                    check_public(given.select(names))
+                    public = given.select(names)
+                    stats = _core.PairStats(public)
+                    recorder = TypeRecorder(names)
+                    count_pairs(source, names, public, stats, rows, bar, recorder)
+                    plan = plan_budget(
+                        *budget, n_columns=len(names), learned_categories=0, learned_ranges=0
+                    )
+                    found: tuple[
+                        _core.PairStats, _core.Codebook, list[str], Plan, dict[str, str]
+                    ] = (stats, public, recorder.type_names(public), plan, {})
+                else:
+                    found = count_private(
+                        source, names, self.domains, n_bins, max_categories, rows, bar, budget, rng
+                    )
+            stats, chosen, dtypes, plan, origin = found
+            if stats.n_rows == 0:
+                raise DataError(
+                    f"{source.description} has 0 rows; a dependency tree needs at least one"
+                )
+            return self._adopt(
+                stats, chosen, dtypes, self._root_index(names), alpha, (plan, rng, origin)
+            )
         types = TypeRecorder(names)
         with PassProgress(wants_progress(progress), source.total_rows, source.n_parts) as bar:
             if given is None:
@@ -278,6 +349,12 @@ class DependencyTree(ExactCounts, Params):
                 return self.fit(data)
             return self.fit(data, codebook=codebook)
         model = self._fitted()
+        if self._privacy_budget() is not None or model.privacy is not None:
+            raise NotFittedError(
+                "a private model is released once, with noise on all its data: partial_fit "
+                "would release again and spend more budget; count every batch into "
+                "treewise.PairStats (with a public codebook) and call fit_stats once"
+            )
         if self._stats is None:
             raise NotFittedError(
                 "this model was loaded from a file, which keeps only its edges' counts; "
@@ -333,6 +410,21 @@ class DependencyTree(ExactCounts, Params):
             )
         counts = stats._stats.copy() if copy else stats._stats
         root = self._root_index(names)
+        budget = self._privacy_budget()
+        if budget is not None:
+            check_public(stats.codebook)
+            plan = plan_budget(
+                *budget, n_columns=len(names), learned_categories=0, learned_ranges=0
+            )
+            rng = integer_source(self._noise_seed())
+            return self._adopt(
+                stats._stats,
+                stats.codebook,
+                stats.dtypes,
+                root,
+                check_alpha(self.alpha),
+                (plan, rng, {}),
+            )
         return self._adopt(counts, stats.codebook, stats.dtypes, root, check_alpha(self.alpha))
 
     def _adopt(
@@ -342,12 +434,42 @@ class DependencyTree(ExactCounts, Params):
         dtypes: list[str],
         root: int | None,
         alpha: float,
+        private: tuple[Plan, IntegerSource, dict[str, str]] | None = None,
     ) -> DependencyTree:
-        """The end of every fit: build the tree from the counts and adopt it with its counts."""
+        """The end of every fit: build the tree from the counts and adopt it with its counts.
+
+        A private fit adopts only the released model: the exact counts are dropped here.
+        """
         kind, level = check_prune(self.prune)
+        if private is not None:
+            plan, rng, origin = private
+            seeded = self.random_state is not None
+            released = private_model(
+                stats, codebook, dtypes, plan, rng, root, alpha, origin, seeded
+            )
+            self._set_model(released)
+            return self
         self._set_model(_core.TreeModel.fit(codebook, stats, dtypes, root, alpha, kind, level))
         self._stats = stats
         return self
+
+    def _privacy_budget(self) -> tuple[float, float, dict[str, float]] | None:
+        """(epsilon, delta, split) of a private fit, checked; None for an ordinary fit."""
+        split = check_privacy(self.epsilon, self.delta, self.privacy_split)
+        if split is None:
+            return None
+        if self.prune is not None:
+            raise ValueError("prune= is not available in a private fit (the tree is released)")
+        assert self.epsilon is not None
+        return float(self.epsilon), float(self.delta or 0.0), split
+
+    def _noise_seed(self) -> int | None:
+        seed = self.random_state
+        if seed is None:
+            return None
+        if isinstance(seed, bool) or not isinstance(seed, int):
+            raise TypeError(f"random_state of a private fit must be an int or None, got {seed!r}")
+        return seed
 
     def _root_index(self, names: list[str]) -> int | None:
         """The root's index, or None to let the core pick the centre of the tree."""
@@ -384,6 +506,7 @@ class DependencyTree(ExactCounts, Params):
         self.n_parameters_ = model.n_parameters
         self.kinds_ = {str(name): codebook.shape(i)[0] for i, name in enumerate(codebook.names)}
         self.codebook_ = codebook
+        self.privacy_: dict[str, Any] | None = _statement(model.privacy)
         self._values: list[ColumnValues] | None = None
 
     # -- fitted views ----------------------------------------------------------------------------
@@ -701,6 +824,22 @@ class DependencyTree(ExactCounts, Params):
             type_from_name(t)
         estimator._set_model(model)
         return estimator
+
+
+def _statement(text: str | None) -> dict[str, Any] | None:
+    """A private model's statement from its file: a JSON object, or the file is damaged."""
+    if text is None:
+        return None
+    try:
+        statement = json.loads(text)
+    except ValueError:
+        statement = None
+    if not isinstance(statement, dict):
+        raise CorruptModelError(
+            "the model's privacy statement is not a JSON object; the file is damaged or was not "
+            "written by treewise"
+        )
+    return statement
 
 
 def _as_codebook(codebook: object) -> _core.Codebook | None:

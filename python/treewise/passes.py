@@ -242,8 +242,11 @@ def count_pairs(
 
 
 def _cell_limit(memory_limit: int | None) -> int:
-    """Cells the provisional tables may hold: ``ONE_PASS_CELLS``, and at most a quarter of
-    ``memory_limit`` (8 bytes a cell); 0, two passes, under ``TREEWISE_ONE_PASS=0``."""
+    """Cells the provisional tables may hold (8 bytes each).
+
+    ``ONE_PASS_CELLS``, and at most a quarter of ``memory_limit``; 0 (two passes) under
+    ``TREEWISE_ONE_PASS=0``.
+    """
     if os.environ.get("TREEWISE_ONE_PASS", "").strip() == "0":
         return 0
     if memory_limit is None:

@@ -69,6 +69,11 @@ def edge_stability(
         raise TypeError(
             f"model must be a DependencyTree or a dict of its parameters, got {model!r}"
         )
+    if params.get("epsilon") is not None:
+        raise ValueError(
+            "edge_stability refits the data many times, and each private refit would spend the "
+            "budget again; it is not available with epsilon= (docs/privacy.md)"
+        )
     n_resamples = check_int("n_resamples", n_resamples, 1, 1_000_000)
     if method not in METHODS:
         raise ValueError(f"method must be one of {METHODS}, got {method!r}")

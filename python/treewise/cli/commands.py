@@ -20,6 +20,8 @@ from rich.console import Console
 
 import treewise
 from treewise.checks import check_memory_limit
+from treewise.domains import read_domains
+from treewise.private import guarantee_lines
 from treewise.sources import open_source
 from treewise.views.terminal import (
     COMPARE_CAUTION,
@@ -214,6 +216,24 @@ def _limit(value: str | None) -> int | str | None:
     return int(value) if value is not None and value.strip().isdigit() else value
 
 
+def _split(
+    _ctx: click.Context, _param: click.Parameter, value: str | None
+) -> dict[str, float] | None:
+    """--privacy-split structure=0.3,tables=0.6,domains=0.1 as a dict (missing steps: 0)."""
+    if value is None:
+        return None
+    split = {"domains": 0.0, "structure": 0.0, "tables": 0.0}
+    for part in value.split(","):
+        key, _, share = part.partition("=")
+        if key.strip() not in split:
+            raise click.BadParameter(f"{key!r}: the steps are structure, tables and domains")
+        try:
+            split[key.strip()] = float(share)
+        except ValueError:
+            raise click.BadParameter(f"{part!r} needs a number, like tables=0.6") from None
+    return split
+
+
 def _kinds(_ctx: click.Context, _param: click.Parameter, value: tuple[str, ...]) -> dict[str, str]:
     kinds = {}
     for item in value:
@@ -308,6 +328,39 @@ Example:
     "--batch-rows", type=click.IntRange(min=1), metavar="N", help="Rows per batch read from disk."
 )
 @_MEMORY_LIMIT
+@click.option(
+    "--epsilon",
+    type=click.FloatRange(min=0.0, min_open=True),
+    metavar="EPS",
+    help="Fit with differential privacy at this epsilon (docs/privacy.md).",
+)
+@click.option(
+    "--delta",
+    type=click.FloatRange(0.0, 1.0, max_open=True),
+    metavar="DELTA",
+    help="The delta of a private fit (default 0: pure epsilon-DP).",
+)
+@click.option(
+    "--domains",
+    "domains_path",
+    type=click.Path(exists=True, dir_okay=False),
+    metavar="FILE",
+    help='Public domains of a private fit, as JSON: {"col": ["a", "b"], '
+    '"num": {"range": [0, 100]}}.',
+)
+@click.option(
+    "--privacy-split",
+    callback=_split,
+    metavar="structure=S,tables=T,domains=D",
+    help="Shares of the privacy budget (default structure=0.3,tables=0.6,domains=0.1).",
+)
+@click.option(
+    "--noise-seed",
+    type=int,
+    metavar="N",
+    help="Seed the privacy noise, for tests and demos only: a seeded release is NOT private "
+    "against anyone who knows the seed.",
+)
 @click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
 def fit(
     data: tuple[str, ...],
@@ -322,6 +375,11 @@ def fit(
     prune: str | float | None,
     batch_rows: int | None,
     memory_limit: str | None,
+    epsilon: float | None,
+    delta: float | None,
+    domains_path: str | None,
+    privacy_split: dict[str, float] | None,
+    noise_seed: int | None,
     no_progress: bool,
 ) -> None:
     """Fit a dependency tree to DATA and save it to MODEL.
@@ -342,15 +400,24 @@ def fit(
         alpha=alpha,
         prune=prune,
         memory_limit=_limit(memory_limit),
+        epsilon=epsilon,
+        delta=delta,
+        domains=None if domains_path is None else read_domains(domains_path),
+        privacy_split=privacy_split,
+        random_state=noise_seed,
     )
     model.fit(_source(data), progress=_progress(no_progress), batch_rows=batch_rows)
     model.save(output)
     console = _console()
+    rows = "about " if model.privacy_ else ""
     console.print(
-        f"Fitted {model.n_rows_:,} rows x {model.n_features_in_} columns: "
+        f"Fitted {rows}{model.n_rows_:,} rows x {model.n_features_in_} columns: "
         f"{int(np.sum(model.parent_ >= 0))} edges, {model.n_parameters_:,} free parameters."
     )
     console.print(strongest_table(model))
+    if model.privacy_:
+        for line in guarantee_lines(model.privacy_):
+            console.print(line, highlight=False)
     console.print(f"Saved the model to {output} in {_seconds(start)}.")
 
 
@@ -490,6 +557,9 @@ def show(model_path: str, as_json: bool) -> None:
         click.echo(json.dumps(model_json(model), indent=2, allow_nan=False))
         return
     _console().print(tree_view(model, model_path))
+    if model.privacy_:
+        for line in guarantee_lines(model.privacy_):
+            _console().print(line, highlight=False)
 
 
 @cli.command(

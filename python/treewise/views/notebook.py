@@ -41,6 +41,13 @@ def model_html(model: DependencyTree) -> str:
         f"{int(model.n_parameters_):,} free parameters",
         f"alpha {float(model.alpha):g}",
     ]
+    privacy = getattr(model, "privacy_", None)
+    if privacy:
+        delta = float(privacy["delta"])
+        facts.append(
+            f"differentially private (ε = {privacy['epsilon']:g}"
+            + (f", δ = {delta:g})" if delta else ")")
+        )
     capped = n_edges > NOTEBOOK_EDGES
     figure = plot_tree(model, max_edges=NOTEBOOK_EDGES if capped else None)
     svg = figure_svg(figure, salt=f"treewise-notebook-{id(model)}")

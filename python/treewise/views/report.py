@@ -82,6 +82,22 @@ STYLE = resources.files("treewise.views").joinpath("report.css").read_text(encod
 # -- the parts about the model ------------------------------------------------------------------
 
 
+def _privacy(model: DependencyTree) -> str:
+    """The guarantee of a private model, next to its cautions."""
+    from treewise.private import guarantee_lines
+
+    assert model.privacy_ is not None
+    lines = "".join(f"<p>{esc(line)}</p>" for line in guarantee_lines(model.privacy_))
+    return f"""
+<section id="privacy">
+<h2>Privacy</h2>
+{lines}
+<p class="note">The guarantee covers the model: every table, count and edge on this page
+about the model is a released noisy figure. Sections about data given to this report (scores,
+surprising rows, the synthetic comparison) use that data directly and are not covered.</p>
+</section>"""
+
+
 def _edge_rows(model: DependencyTree) -> list[dict[str, Any]]:
     """The edges of ``edges()``, strongest first (ties by child column order)."""
     rows: list[dict[str, Any]] = model.edges().to_pylist()
@@ -316,8 +332,10 @@ def render_report(
     edges = _edge_rows(model)
     found = None if data is None else find(model, data, keys, top, synthetic_rows, random_state)
     heading = title or "Dependency tree report"
+    private = model.privacy_ is not None
     sections = [
         ("summary", "Summary"),
+        *([("privacy", "Privacy")] if private else []),
         ("tree", "The tree"),
         ("edges", "Edges"),
         ("conditional", "Conditional tables"),
@@ -327,6 +345,7 @@ def render_report(
         sections.remove(("conditional", "Conditional tables"))
     body = [
         _summary(model, len(edges), None if found is None else len(found.scores)),
+        *([_privacy(model)] if private else []),
         _tree(model, len(edges), tree_edges),
         _edges(model, edges, stability),
         _conditionals(model, edges, heatmaps),
@@ -347,7 +366,8 @@ def render_report(
         f"A Chow-Liu dependency tree over {model.n_features_in_:,} columns, fitted on "
         f"{int(model.n_rows_):,} rows."
     )
-    footer = "Every figure here comes from the model's exact counts" + (
+    counts = "released noisy counts" if private else "exact counts"
+    footer = f"Every figure here comes from the model's {counts}" + (
         "" if found is None else ", the scored data and rows sampled from the model"
     )
     return page_html(heading, intro, sections, body, footer)

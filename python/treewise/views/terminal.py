@@ -222,6 +222,7 @@ def model_json(model: DependencyTree) -> dict[str, Any]:
         "parent": [names[int(p)] if p >= 0 else None for p in model.parent_],
         "n_rows": int(model.n_rows_),
         "alpha": float(model.alpha),
+        "privacy": model.privacy_,
         "edges": [
             {
                 "parent": e["parent"],

@@ -176,6 +176,10 @@ impl<'a> Reader<'a> {
         let n = self.len(8)?;
         (0..n).map(|_| self.f64()).collect()
     }
+    /// Whether every byte has been read.
+    pub fn is_done(&self) -> bool {
+        self.pos == self.buf.len()
+    }
     /// Fails unless every byte was read.
     pub fn end(&self) -> Result<()> {
         if self.pos != self.buf.len() {

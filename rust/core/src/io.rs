@@ -191,6 +191,18 @@ pub fn read_codebook(r: &mut Reader<'_>) -> Result<Codebook> {
 
 /// The bytes of a model file.
 pub fn model_to_bytes(model: &TreeModel) -> Vec<u8> {
+    model_writer(model).finish(KIND_MODEL)
+}
+
+/// The bytes of the model file of a private fit: the model, then its privacy statement (a
+/// UTF-8 text, docs/model-format.md field 9).
+pub fn private_model_to_bytes(model: &TreeModel, statement: &str) -> Vec<u8> {
+    let mut w = model_writer(model);
+    w.str(statement);
+    w.finish(KIND_MODEL)
+}
+
+fn model_writer(model: &TreeModel) -> Writer {
     let mut w = Writer::default();
     write_codebook(&mut w, model.codebook());
     w.len(model.dtypes().len());
@@ -203,11 +215,16 @@ pub fn model_to_bytes(model: &TreeModel) -> Vec<u8> {
     }
     model.counts().iter().for_each(|c| w.u64s(c));
     w.f64s(model.pair_mi());
-    w.finish(KIND_MODEL)
+    w
 }
 
 /// Reads and validates a model file.
 pub fn model_from_bytes(file: &[u8]) -> Result<TreeModel> {
+    model_and_statement_from_bytes(file).map(|(model, _)| model)
+}
+
+/// Reads and validates a model file, with the privacy statement of a private fit (if any).
+pub fn model_and_statement_from_bytes(file: &[u8]) -> Result<(TreeModel, Option<String>)> {
     let mut r = Reader::open(file, KIND_MODEL)?;
     let codebook = read_codebook(&mut r)?;
     let d = codebook.columns().len();
@@ -224,10 +241,12 @@ pub fn model_from_bytes(file: &[u8]) -> Result<TreeModel> {
         .collect::<Result<Vec<_>>>()?;
     let counts = (0..d).map(|_| r.u64s()).collect::<Result<Vec<_>>>()?;
     let pair_mi = r.f64s()?;
+    let statement = if r.is_done() { None } else { Some(r.str()?) };
     r.end()?;
     TreeModel::new(
         codebook, dtypes, n_rows, root, parent, counts, pair_mi, alpha,
     )
+    .map(|model| (model, statement))
     .map_err(|e| match e {
         Error::CorruptModel(m) => Error::CorruptModel(m),
         other => bad(other),
@@ -392,6 +411,21 @@ mod tests {
             codebook_from_bytes(&codebook_to_bytes(&codebook))?,
             codebook
         );
+        Ok(())
+    }
+
+    #[test]
+    fn a_private_model_keeps_its_statement() -> Result<()> {
+        let model = small_model()?;
+        let plain = model_to_bytes(&model);
+        assert_eq!(model_and_statement_from_bytes(&plain)?.1, None);
+        let statement = r#"{"epsilon": 1.0}"#;
+        let bytes = private_model_to_bytes(&model, statement);
+        let (again, read) = model_and_statement_from_bytes(&bytes)?;
+        assert_eq!(read.as_deref(), Some(statement));
+        assert_eq!(private_model_to_bytes(&again, statement), bytes);
+        // The plain reader accepts the file and drops the statement.
+        assert_eq!(model_to_bytes(&model_from_bytes(&bytes)?), plain);
         Ok(())
     }
 

@@ -2,8 +2,9 @@
 
 use pyo3::prelude::*;
 use pyo3::types::{PyBytes, PyList, PyTuple};
-use treewise_core::codebook::Values;
+use treewise_core::codebook::{ColumnCode, Shape, Values};
 use treewise_core::shape::Within;
+use treewise_core::values::Kind;
 use treewise_core::Codebook;
 
 use crate::errors::{detached, to_py};
@@ -89,6 +90,71 @@ impl PyCodebook {
             })
             .collect();
         Ok((col.model_kind().to_string(), shape.integral, tail, within))
+    }
+
+    /// A codebook made from given values, with no summary of exact data (no tail tables): for
+    /// public domains. Each column is (name, family, values, bins, has_other, has_null,
+    /// integral, steps), where bins is (edges, low, high, specials) for a numeric column (values
+    /// are then ignored) and None for a categorical one, and steps, when given, holds each bin's
+    /// 65 equal-mass points (for example from a noisy histogram; see docs/privacy.md).
+    #[staticmethod]
+    #[allow(clippy::type_complexity)]
+    fn from_columns(
+        columns: Vec<(
+            String,
+            String,
+            Bound<'_, PyAny>,
+            Option<(Vec<f64>, f64, f64, Vec<f64>)>,
+            bool,
+            bool,
+            bool,
+            Option<Vec<Vec<f64>>>,
+        )>,
+    ) -> PyResult<PyCodebook> {
+        let mut built = Vec::with_capacity(columns.len());
+        for (name, family, values, bins, has_other, has_null, integral, steps) in columns {
+            let kind = Kind::from_name(&family).ok_or_else(|| {
+                to_py(treewise_core::Error::Invalid(format!(
+                    "column '{name}': unknown value family {family:?}"
+                )))
+            })?;
+            let values = match bins {
+                Some((edges, low, high, specials)) => Values::Bins {
+                    edges,
+                    low,
+                    high,
+                    specials,
+                },
+                None => match kind {
+                    Kind::Bool => Values::Bool(values.extract()?),
+                    Kind::Int | Kind::Time => Values::Int(values.extract()?),
+                    Kind::UInt => Values::UInt(values.extract()?),
+                    Kind::Str => Values::Str(
+                        values
+                            .extract::<Vec<String>>()?
+                            .into_iter()
+                            .map(String::into_boxed_str)
+                            .collect(),
+                    ),
+                    Kind::Float => Values::Float(values.extract()?),
+                },
+            };
+            let shape = Shape {
+                integral,
+                within: steps
+                    .unwrap_or_default()
+                    .into_iter()
+                    .map(Within::Steps)
+                    .collect(),
+                ..Shape::default()
+            };
+            built.push(
+                ColumnCode::build(name, kind, values, has_other, has_null, shape).map_err(to_py)?,
+            );
+        }
+        Ok(PyCodebook {
+            inner: Codebook::new(built).map_err(to_py)?,
+        })
     }
 
     fn __len__(&self) -> usize {

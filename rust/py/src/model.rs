@@ -28,6 +28,8 @@ type EdgeTuple = (usize, usize, f64, f64, u64, f64);
 #[pyclass(name = "TreeModel", module = "treewise._core")]
 pub struct PyTreeModel {
     pub(crate) inner: TreeModel,
+    /// The privacy statement of a private fit (saved with the model), None otherwise.
+    pub(crate) statement: Option<String>,
 }
 
 #[pymethods]
@@ -62,21 +64,77 @@ impl PyTreeModel {
         let inner = detached(py, move || {
             fit::fit_model(codebook, dtypes, stats, root, alpha, prune)
         })?;
-        Ok(PyTreeModel { inner })
+        Ok(PyTreeModel {
+            inner,
+            statement: None,
+        })
+    }
+
+    /// A model from given counts (for example released noisy ones): per column its counts with
+    /// its parent (parent x child, row-major) or, for a root, its marginal; `parent` is -1 for a
+    /// root. Every count and link is checked as for a model file.
+    #[staticmethod]
+    #[allow(clippy::too_many_arguments)]
+    fn from_counts(
+        codebook: &PyCodebook,
+        dtypes: Vec<String>,
+        n_rows: u64,
+        root: usize,
+        parent: Vec<i64>,
+        counts: Vec<Vec<u64>>,
+        pair_mi: Vec<f64>,
+        alpha: f64,
+    ) -> PyResult<Self> {
+        let parent = parent
+            .into_iter()
+            .map(|p| usize::try_from(p).ok())
+            .collect();
+        let inner = TreeModel::new(
+            codebook.inner.clone(),
+            dtypes,
+            n_rows,
+            root,
+            parent,
+            counts,
+            pair_mi,
+            alpha,
+        )
+        .map_err(to_py)?;
+        Ok(PyTreeModel {
+            inner,
+            statement: None,
+        })
     }
 
     /// Reads a model file's bytes, validating everything before use.
     #[staticmethod]
     fn from_bytes(py: Python<'_>, data: &[u8]) -> PyResult<Self> {
-        let inner = detached(py, || io::model_from_bytes(data))?;
-        Ok(PyTreeModel { inner })
+        let (inner, statement) = detached(py, || io::model_and_statement_from_bytes(data))?;
+        Ok(PyTreeModel { inner, statement })
     }
 
-    /// The model file's bytes.
+    /// The model file's bytes (with the privacy statement of a private fit).
     fn to_bytes<'py>(&self, py: Python<'py>) -> PyResult<Bound<'py, PyBytes>> {
         let model = &self.inner;
-        let bytes = detached(py, || Ok(io::model_to_bytes(model)))?;
+        let statement = self.statement.as_deref();
+        let bytes = detached(py, || {
+            Ok(match statement {
+                Some(s) => io::private_model_to_bytes(model, s),
+                None => io::model_to_bytes(model),
+            })
+        })?;
         Ok(PyBytes::new(py, &bytes))
+    }
+
+    /// The privacy statement of a private fit (a JSON text), None for any other model.
+    #[getter]
+    fn privacy(&self) -> Option<String> {
+        self.statement.clone()
+    }
+
+    /// Attaches the privacy statement of a private fit.
+    fn set_privacy(&mut self, statement: String) {
+        self.statement = Some(statement);
     }
 
     #[getter]
