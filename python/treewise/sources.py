@@ -13,7 +13,9 @@ from __future__ import annotations
 import glob as globbing
 import itertools
 import os
+import queue
 import sys
+import threading
 from collections import Counter
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from contextlib import contextmanager
@@ -47,6 +49,10 @@ __all__ = [
 #: Rows per batch handed to the Rust core: large enough to amortise the call, small enough that
 #: memory stays bounded and Ctrl-C (checked between batches) is felt within a fraction of a second.
 BATCH_ROWS = 262_144
+
+#: Batches a file source reads ahead on its own thread while the core counts the one before:
+#: at most this many wait in the queue, one more is being read and one counted.
+READ_AHEAD = 2
 
 _PARQUET = (".parquet", ".pq", ".parq")
 _CSV = (".csv", ".csv.gz", ".csv.bz2", ".tsv")
@@ -327,6 +333,8 @@ class Source:
     total_rows: int | None = None
     description: str = "data"
     files: list[Path] = field(default_factory=list)
+    #: Read ahead on a thread (files: decoding releases the GIL, so it overlaps the counting).
+    read_ahead: bool = False
 
 
 def _memory_source(table: pa.Table) -> Source:
@@ -354,7 +362,7 @@ def _file_source(files: list[Path]) -> Source:
             yield Part(str(path), _file_batches(path, fmt, names, batch_rows))
 
     what = f"the data ({len(files)} file{'s' if len(files) != 1 else ''})"
-    return Source(first_names, True, parts, len(files), total, what, files)
+    return Source(first_names, True, parts, len(files), total, what, files, read_ahead=True)
 
 
 def _dataset_source(dataset: pads.Dataset) -> Source:
@@ -367,7 +375,7 @@ def _dataset_source(dataset: pads.Dataset) -> Source:
     def parts(names: list[str], batch_rows: int) -> Iterator[Part]:
         yield Part("dataset", dataset.to_batches(columns=names, batch_size=batch_rows))
 
-    return Source(list(dataset.schema.names), True, parts, 1, None, "the dataset")
+    return Source(list(dataset.schema.names), True, parts, 1, None, "the dataset", read_ahead=True)
 
 
 def _stream_source(batches: Iterable[Any], names: list[str] | None) -> Source:
@@ -495,16 +503,25 @@ class BatchLoop:
     def __iter__(self) -> Iterator[pa.RecordBatch]:
         if self.bar is not None and self.title:
             self.bar.start(self.title)
-        for part in self.source.parts(self.names, self.batch_rows):
-            self.label, self.first_row, self.n_rows = part.label, 0, 0
-            for batch in part.batches:
+        reader = _ReadAhead(self.source, self.names, self.batch_rows)
+        started = False
+        try:
+            for label, batch in reader:
+                if batch is None:  # a new part
+                    if started and self.bar is not None:
+                        self.bar.part_done()
+                    started = True
+                    self.label, self.first_row, self.n_rows = label, 0, 0
+                    continue
                 self.first_row += self.n_rows
                 self.n_rows = batch.num_rows
                 yield batch
                 if self.bar is not None:
                     self.bar.rows(batch.num_rows)
-            if self.bar is not None:
+            if started and self.bar is not None:
                 self.bar.part_done()
+        finally:
+            reader.close()
         # Past the last batch, an error belongs to no file.
         self.label, self.first_row, self.n_rows = "", 0, 0
 
@@ -527,6 +544,76 @@ class BatchLoop:
             relocated = _relocated(value, self.label, self.rows())
             if relocated is not None:
                 raise relocated from value
+
+
+class _ReadAhead:
+    """A source's (part label, batch) pairs, read ahead on a thread when the source allows it.
+
+    Files are read up to ``READ_AHEAD`` batches ahead, other sources in turn. Each part starts
+    with (label, None). An error while reading is raised where its batch would have come, after
+    its part's label, so the loop names the file.
+    """
+
+    _DONE = object()
+
+    def __init__(self, source: Source, names: list[str], batch_rows: int) -> None:
+        self._parts = source.parts(names, batch_rows)
+        self._stop = threading.Event()
+        self._queue: queue.Queue[Any] | None = None
+        self._thread: threading.Thread | None = None
+        if source.read_ahead and READ_AHEAD > 0:
+            self._queue = queue.Queue(maxsize=READ_AHEAD)
+            self._thread = threading.Thread(
+                target=self._read, name="treewise-read-ahead", daemon=True
+            )
+            self._thread.start()
+
+    def _pairs(self) -> Iterator[tuple[str, pa.RecordBatch | None]]:
+        for part in self._parts:
+            yield part.label, None
+            for batch in part.batches:
+                yield part.label, batch
+
+    def _put(self, item: Any) -> bool:
+        assert self._queue is not None
+        while not self._stop.is_set():
+            try:
+                self._queue.put(item, timeout=0.05)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def _read(self) -> None:
+        try:
+            for pair in self._pairs():
+                if not self._put(pair):
+                    return
+        except BaseException as e:  # handed to the reading loop, which raises it
+            self._put(e)
+            return
+        self._put(self._DONE)
+
+    def __iter__(self) -> Iterator[tuple[str, pa.RecordBatch | None]]:
+        if self._queue is None:
+            yield from self._pairs()
+            return
+        while True:
+            item = self._queue.get()
+            if item is self._DONE:
+                return
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+
+    def close(self) -> None:
+        """Stops the reading thread (it finishes the batch it is decoding) and drops the queue."""
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join()
+        if self._queue is not None:
+            while not self._queue.empty():
+                self._queue.get_nowait()
 
 
 def read_table(data: Any, columns: list[str] | None = None) -> pa.Table:
