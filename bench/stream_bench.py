@@ -5,8 +5,10 @@ noisy function of an earlier one, one fixed structure, fresh noise per file) as 
 Parquet files, then measures in fresh subprocesses, one at a time, on the same files:
 
 1. pyarrow alone reading the same columns (``ParquetFile.iter_batches``, 262,144 rows a batch);
-2. ``DependencyTree().fit(directory)``: the default two-pass fit (codes, then counts);
-3. ``DependencyTree().fit(directory, codebook=...)``: one pass with a codebook given;
+2. ``DependencyTree().fit(files)``: the default fit (one pass with provisional codes, files read
+   ahead on a thread while the core counts);
+3. the same with ``TREEWISE_ONE_PASS=0``: two passes (codes, then counts), as before;
+4. ``DependencyTree().fit(files, codebook=...)``: one pass with a codebook given;
 
 each with its wall time and the subprocess's peak resident memory. With ``--write PATH`` the
 figures go into this configuration's section of a markdown file (``make bench-stream``).
@@ -16,6 +18,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import shlex
 import subprocess
@@ -32,6 +35,7 @@ from fit_bench import fmt_s, load_text, machine_info, write_section
 
 REPO = Path(__file__).resolve().parent.parent
 BATCH = 262_144
+MODES = ["read", "fit", "fit-two-pass", "fit-one-pass"]
 
 
 def write_files(directory: Path, rows: int, cols: int, files: int, seed: int) -> list[Path]:
@@ -80,7 +84,7 @@ def child(mode: str, directory: Path) -> dict[str, Any]:
         for path in files:
             for batch in pq.ParquetFile(path).iter_batches(batch_size=BATCH):
                 rows += batch.num_rows
-    elif mode == "fit":
+    elif mode in ("fit", "fit-two-pass"):
         model = treewise.DependencyTree().fit(files, progress=False)
         rows = model.n_rows_
     else:
@@ -97,7 +101,11 @@ def child(mode: str, directory: Path) -> dict[str, Any]:
 def run(mode: str, directory: Path) -> dict[str, Any]:
     """Run :func:`child` in a fresh interpreter (so its peak memory is its own)."""
     cmd = [sys.executable, str(Path(__file__).resolve()), "--child", mode, "--dir", str(directory)]
-    done = subprocess.run(cmd, capture_output=True, text=True, check=True)
+    env = dict(os.environ)
+    env.pop("TREEWISE_ONE_PASS", None)
+    if mode == "fit-two-pass":
+        env["TREEWISE_ONE_PASS"] = "0"
+    done = subprocess.run(cmd, capture_output=True, text=True, check=True, env=env)
     result: dict[str, Any] = json.loads(done.stdout.strip().splitlines()[-1])
     return result
 
@@ -111,8 +119,9 @@ def main(argv: list[str] | None = None) -> None:
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--dir", type=Path, default=REPO / "bench" / ".data" / "stream")
     p.add_argument("--quick", action="store_true", help="smoke run: 2,000,000 rows, 4 files")
+    p.add_argument("--repeats", type=int, default=2, help="runs of each mode; the best counts")
     p.add_argument("--write", type=Path, metavar="PATH")
-    p.add_argument("--child", choices=["read", "fit", "fit-one-pass"], help=argparse.SUPPRESS)
+    p.add_argument("--child", choices=MODES, help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     if args.child:
         print(json.dumps(child(args.child, args.dir)))
@@ -125,10 +134,18 @@ def main(argv: list[str] | None = None) -> None:
     size = sum(f.stat().st_size for f in files)
     load_before = load_text()
     date = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
-    results = {m: run(m, args.dir) for m in ("read", "fit", "fit-one-pass")}
+    # Every mode in turn, twice over; the faster of each mode's two runs counts (the first round
+    # also warms the page cache for all of them alike).
+    results: dict[str, dict[str, Any]] = {}
+    for _ in range(args.repeats):
+        for m in MODES:
+            r = run(m, args.dir)
+            if m not in results or r["seconds"] < results[m]["seconds"]:
+                results[m] = r
     load_after = load_text()
-    read, fit, one = results["read"], results["fit"], results["fit-one-pass"]
-    assert fit["rows"] == one["rows"] == read["rows"] == args.rows, results
+    read, fit = results["read"], results["fit"]
+    two, one = results["fit-two-pass"], results["fit-one-pass"]
+    assert fit["rows"] == two["rows"] == one["rows"] == read["rows"] == args.rows, results
     gib = 2**30
     lines = [
         "| measurement | seconds | rows/s | peak RSS |",
@@ -136,8 +153,9 @@ def main(argv: list[str] | None = None) -> None:
     ]
     labels = {
         "read": "pyarrow alone: `ParquetFile.iter_batches` over every file",
-        "fit": "treewise `fit(files)` (two passes: codes, then counts)",
-        "fit-one-pass": "treewise `fit(files, codebook=...)` (one pass)",
+        "fit": "treewise `fit(files)`, the default: one pass, files read ahead",
+        "fit-two-pass": "treewise `fit(files)` with `TREEWISE_ONE_PASS=0` (codes, then counts)",
+        "fit-one-pass": "treewise `fit(files, codebook=...)` (a codebook given)",
     }
     for mode, r in results.items():
         lines.append(
@@ -145,19 +163,18 @@ def main(argv: list[str] | None = None) -> None:
             f"| {r['peak_bytes'] / gib:.2f} GiB |"
         )
     ratios = [
-        ("two-pass fit / pyarrow read", fit["seconds"] / read["seconds"]),
-        ("one-pass fit / pyarrow read", one["seconds"] / read["seconds"]),
+        ("default fit / pyarrow read", fit["seconds"] / read["seconds"]),
+        ("two-pass fit / pyarrow read", two["seconds"] / read["seconds"]),
+        ("fit with a codebook / pyarrow read", one["seconds"] / read["seconds"]),
     ]
     lines += ["", "| ratio | value |", "|---|---:|"]
     lines += [f"| {label} | {value:.2f} |" for label, value in ratios]
+    peak = max(r["peak_bytes"] for r in results.values())
     goals = [
-        f"- peak RSS under 1.5 GB: two-pass {fit['peak_bytes'] / 1e9:.2f} GB, one-pass "
-        f"{one['peak_bytes'] / 1e9:.2f} GB: "
-        + ("**met**" if max(fit["peak_bytes"], one["peak_bytes"]) < 1.5e9 else "**not met**"),
-        f"- fit time at most 1.5x pyarrow's read: two-pass {ratios[0][1]:.2f}x "
-        + ("(**met**)" if ratios[0][1] <= 1.5 else "(**not met**)")
-        + f", one-pass {ratios[1][1]:.2f}x "
-        + ("(**met**)" if ratios[1][1] <= 1.5 else "(**not met**)"),
+        f"- peak RSS under 1.5 GB: default {fit['peak_bytes'] / 1e9:.2f} GB, largest of all "
+        f"{peak / 1e9:.2f} GB: " + ("**met**" if peak < 1.5e9 else "**not met**"),
+        f"- default fit at most 1.5x pyarrow's read: {ratios[0][1]:.2f}x "
+        + ("(**met**)" if ratios[0][1] <= 1.5 else "(**not met**)"),
     ]
     print("\n".join([*lines, "", *goals]))
     if args.write is None:
@@ -173,8 +190,9 @@ def main(argv: list[str] | None = None) -> None:
         *[f"- {k}: {v}" for k, v in info.items()],
         f"- Data: int8 codes, cardinality 2..10, {size / gib:.2f} GiB of Parquet (snappy), "
         f"row groups of 1,000,000 rows, {args.cols * (args.cols - 1) // 2} column pairs",
-        "- Each measurement runs in a fresh subprocess, one after another; peak RSS is that "
-        "process's maximum resident set (ru_maxrss)",
+        f"- Each measurement runs in a fresh subprocess, the modes in turn, {args.repeats} rounds; "
+        "the best time of each mode counts; peak RSS is that process's maximum resident set "
+        "(ru_maxrss)",
         "",
         *lines,
         "",
