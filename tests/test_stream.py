@@ -38,7 +38,7 @@ from treewise import (
     SchemaError,
 )
 from treewise.datasets import model_columns, shop_sessions
-from treewise.sources import SkippedFileWarning
+from treewise.sources import READ_AHEAD, SkippedFileWarning
 
 # -- invented data -------------------------------------------------------------------------------
 
@@ -965,8 +965,14 @@ def test_streamed_fit_keeps_arrow_memory_near_one_batch(
     model = DependencyTree().fit(path, batch_rows=10_000, progress=False)
     after = pa.total_allocated_bytes()
 
-    assert len(peaks) >= 2 * 30  # two passes of at least 30 batches each
-    assert max(peaks) - before < size / 5
+    # Two passes of at least 30 batches each (the shop's numeric columns have more distinct
+    # values than the one-pass fit's provisional codes allow).
+    assert len(peaks) >= 2 * 30
+    # Arrow memory stays near a few batches, never the file: the batch being counted, those
+    # read ahead (READ_AHEAD), and the row group being decoded with its buffers.
+    batch_bytes, group_bytes = size * 10_000 / 300_000, size * 25_000 / 300_000
+    assert max(peaks) - before < (READ_AHEAD + 2) * batch_bytes + 2 * group_bytes
+    assert max(peaks) - before < size / 3
     assert after - before < 1_000_000
     assert model.parent_.tolist() == want.parent_.tolist()
     assert np.array_equal(model.pairwise_mutual_info_, want.pairwise_mutual_info_)

@@ -34,6 +34,7 @@ from treewise.progress import PassProgress
 
 __all__ = [
     "BATCH_ROWS",
+    "READ_AHEAD",
     "BatchLoop",
     "Part",
     "SkippedFileWarning",
