@@ -90,6 +90,16 @@ class PairStats:
     @staticmethod
     def from_bytes(data: bytes) -> tuple[Codebook, list[str], PairStats]: ...
     def copy(self) -> PairStats: ...
+    @staticmethod
+    def from_csr(
+        codebook: Codebook,
+        n_rows: int,
+        indptr: bytes,
+        indices: bytes,
+        codes: bytes,
+        zero: list[int | None],
+        memory_limit: int | None = None,
+    ) -> PairStats: ...
     def __eq__(self, other: object) -> bool: ...
     @property
     def n_rows(self) -> int: ...

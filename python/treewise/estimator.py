@@ -44,6 +44,7 @@ from treewise.sources import (
     generated_source,
     open_source,
 )
+from treewise.sparse import is_sparse, sparse_counts
 from treewise.stream import Scored, atomic_parquet, score_batches, write_scores
 
 if TYPE_CHECKING:
@@ -245,7 +246,9 @@ class DependencyTree(ExactCounts, Params):
             object with ``__arrow_c_stream__``. On disk: a Parquet, CSV or Arrow IPC file, a
             directory, a glob, or a list of paths, or a ``pyarrow.dataset.Dataset``; files are
             streamed one batch at a time. One-shot streams: a ``pyarrow.RecordBatchReader`` or
-            any iterator of record batches.
+            any iterator of record batches. A scipy.sparse matrix of integer or bool flags is
+            counted from its non-zero entries alone (columns ``x0, x1, ...`` or ``columns``;
+            see ``treewise.sparse``).
         y : None
             Ignored; present for scikit-learn compatibility.
         codebook : Codebook or DependencyTree, optional
@@ -278,6 +281,15 @@ class DependencyTree(ExactCounts, Params):
         check_prune(self.prune)
         limit = check_memory_limit(self.memory_limit)
         rows = check_int("batch_rows", BATCH_ROWS if batch_rows is None else batch_rows, 1, 2**31)
+        if is_sparse(data) and codebook is None and self._privacy_budget() is None:
+            kinds = None if self.kinds is None else dict(self.kinds)
+            book, counts, dtypes = sparse_counts(
+                data, self.columns, kinds, max_categories, n_bins, limit
+            )
+            names = list(book.names)
+            if self.root is not None and self.root not in names:
+                raise SchemaError(f"root={self.root!r} is not one of the modelled columns {names}")
+            return self._adopt(counts, book, dtypes, self._root_index(names), alpha)
         source = open_source(data)
         given = _as_codebook(codebook)
         wanted = self.columns if self.columns is not None or given is None else given.names

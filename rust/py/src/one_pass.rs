@@ -13,6 +13,9 @@ use crate::pair_stats::PyPairStats;
 use crate::threads;
 use crate::{slices, SLICE_ROWS};
 
+/// The end of a pass: the codebook, the caps, the notes on columns, and the counts `S`.
+type Finished<S> = (PyCodebook, Vec<CapTuple>, Vec<NoteTuple>, S);
+
 /// Tallies every batch and counts its pairs with provisional codes, so that a fit reads the
 /// data once; `finish` returns the pair statistics too, or None when the pass had to stop
 /// counting (`fallback` says why) and a second pass must count.
@@ -67,12 +70,7 @@ impl PyOnePass {
         max_categories: usize,
         n_bins: usize,
         kinds: Vec<(String, String)>,
-    ) -> PyResult<(
-        PyCodebook,
-        Vec<CapTuple>,
-        Vec<NoteTuple>,
-        Option<PyPairStats>,
-    )> {
+    ) -> PyResult<Finished<Option<PyPairStats>>> {
         let kinds = parse_kinds(kinds)?;
         let pass = self.inner.take().ok_or_else(finished_error)?;
         let (learned, stats) = detached(py, move || pass.finish(max_categories, n_bins, &kinds))?;
@@ -92,12 +90,7 @@ impl PyOnePass {
         n_bins: usize,
         kinds: Vec<(String, String)>,
         memory_limit: Option<u64>,
-    ) -> PyResult<(
-        PyCodebook,
-        Vec<CapTuple>,
-        Vec<NoteTuple>,
-        Vec<Option<PyPairStats>>,
-    )> {
+    ) -> PyResult<Finished<Vec<Option<PyPairStats>>>> {
         let kinds = parse_kinds(kinds)?;
         let mut inner = Vec::with_capacity(passes.len());
         for mut pass in passes {

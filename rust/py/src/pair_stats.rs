@@ -87,6 +87,70 @@ impl PyPairStats {
         ))
     }
 
+    /// The counts of a CSR matrix's rows from its non-zero entries alone: `indptr` (u64),
+    /// `indices` (u32, sorted within each row) and `codes` (u16, each entry's code in its
+    /// column) as little-endian bytes; `zero[c]` is column c's code of 0 (None: no zeros).
+    #[staticmethod]
+    #[pyo3(signature = (codebook, n_rows, indptr, indices, codes, zero, memory_limit = None))]
+    #[allow(clippy::too_many_arguments)]
+    fn from_csr(
+        py: Python<'_>,
+        codebook: &PyCodebook,
+        n_rows: usize,
+        indptr: &[u8],
+        indices: &[u8],
+        codes: &[u8],
+        zero: Vec<Option<u16>>,
+        memory_limit: Option<u64>,
+    ) -> PyResult<Self> {
+        let cards = codebook.inner.cardinalities();
+        let threads = threads::pool()?.current_num_threads();
+        // Each thread holds its own copy of the tables while it counts.
+        let tables = memory::pair_stats_bytes(&cards).saturating_mul(threads as u64 + 1);
+        memory::check(
+            &format!("counting the pairs of {} sparse columns", cards.len()),
+            &[("pair statistics, one copy per thread", tables)],
+            memory_limit,
+            memory::FIT_ADVICE,
+        )
+        .map_err(to_py)?;
+        let words = |b: &[u8], w: usize| -> PyResult<()> {
+            if b.len().is_multiple_of(w) {
+                Ok(())
+            } else {
+                Err(to_py(treewise_core::Error::Invalid(
+                    "sparse input: a buffer is not whole words".into(),
+                )))
+            }
+        };
+        words(indptr, 8)?;
+        words(indices, 4)?;
+        words(codes, 2)?;
+        let indptr: Vec<u64> = indptr
+            .chunks_exact(8)
+            .map(|c| u64::from_le_bytes([c[0], c[1], c[2], c[3], c[4], c[5], c[6], c[7]]))
+            .collect();
+        let indices: Vec<u32> = indices
+            .chunks_exact(4)
+            .map(|c| u32::from_le_bytes([c[0], c[1], c[2], c[3]]))
+            .collect();
+        let codes: Vec<u16> = codes
+            .chunks_exact(2)
+            .map(|c| u16::from_le_bytes([c[0], c[1]]))
+            .collect();
+        let inner = detached(py, || {
+            treewise_core::kernels::count_csr(&treewise_core::kernels::CsrCodes {
+                n_rows,
+                cards: &cards,
+                zero: &zero,
+                indptr: &indptr,
+                indices: &indices,
+                codes: &codes,
+            })
+        })?;
+        Ok(PyPairStats::whole(inner))
+    }
+
     /// An independent copy of these counts.
     fn copy(&self) -> PyResult<PyPairStats> {
         Ok(PyPairStats::whole(self.counts()?.clone()))

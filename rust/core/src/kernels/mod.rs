@@ -19,6 +19,7 @@
 //! it is read at every call so that tests can set it in-process.
 
 mod bitset;
+mod csr;
 mod histogram;
 mod plan;
 mod popcount;
@@ -35,6 +36,7 @@ use crate::cancel;
 use crate::error::{Error, Result};
 
 use bitset::count_bitset;
+pub use csr::{count_csr, CsrCodes};
 use histogram::{count_pair_histogram, count_pair_naive};
 pub(crate) use plan::{plan, Method, Plan};
 pub use popcount::Popcount;
