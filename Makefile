@@ -56,7 +56,7 @@ fmt: $(STAMP) ## Format Rust and Python sources
 bench: build ## Benchmark against the numpy reference; privacy against utility; writes bench/RESULTS.md
 	$(PY) bench/fit_bench.py --write bench/RESULTS.md
 	$(PY) bench/compare.py --write bench/RESULTS.md
-	$(PY) bench/stream_bench.py --rows 20000000 --files 10 --write bench/RESULTS.md
+	$(PY) bench/stream_bench.py --rows 20000000 --files 10 --dir bench/.data/stream-20m --write bench/RESULTS.md
 	$(PY) bench/stream_bench.py --write bench/RESULTS.md
 	$(PY) bench/compare_tables.py --write bench/RESULTS.md
 	$(PY) bench/fidelity_real.py --write bench/RESULTS.md
