@@ -109,7 +109,7 @@ def codebook_pass(table: pa.Table) -> Any:
     builder = _core.CodebookBuilder(table.column_names)
     for batch in iter_batches(table):
         builder.observe(batch)
-    codebook, _caps = builder.finish(128, 10)
+    codebook = builder.finish(128, 10)[0]
     return codebook
 
 

@@ -142,7 +142,9 @@ def test_the_one_pass_really_counts_once_and_falls_back_past_its_bound(
     assert counter.fallback is not None and "cells" in counter.fallback
 
 
-def test_the_fallback_says_so_and_still_counts_exactly(monkeypatch: pytest.MonkeyPatch) -> None:
+def test_the_fallback_says_so_and_still_counts_exactly(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
     rng = np.random.default_rng(3)
     n = 20_000
     table = pa.table(
@@ -165,6 +167,24 @@ def test_the_fallback_says_so_and_still_counts_exactly(monkeypatch: pytest.Monke
         learn_and_count(open_source(table), names, 32, 10, 5000, bar, TypeRecorder(names))
     assert titles[0] == "learning codes, counting pairs"
     assert titles[1].startswith("counting pairs (second pass: column 'amount' has more than")
+
+    # In memory, a number column that will be binned is counted in a second pass (cheap there);
+    # from a file, the same table keeps to one pass.
+    table = table.set_column(0, "amount", pa.array(rng.integers(0, 50, n)))
+    titles.clear()
+    with Bar(False, n, 1) as bar:
+        learn_and_count(open_source(table), names, 32, 10, 5000, bar, TypeRecorder(names))
+    assert titles[1] == (
+        "counting pairs (second pass: column 'amount' has more distinct numbers than n_bins, so "
+        "it will be binned; counting the binned codes in a second pass is cheaper)"
+    )
+    path = tmp_path / "amounts.parquet"
+    pq.write_table(table, path)
+    titles.clear()
+    with Bar(False, n, 1) as bar:
+        learn_and_count(open_source(str(path)), names, 32, 10, 5000, bar, TypeRecorder(names))
+    assert titles == ["learning codes, counting pairs"]
+    assert fit(str(path), monkeypatch, 1) == fit(str(path), monkeypatch, 2)
 
 
 def test_a_one_shot_stream_in_one_pass_matches_two(

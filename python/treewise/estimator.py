@@ -269,11 +269,12 @@ class DependencyTree(ExactCounts, Params):
         -----
         Without ``codebook``, the data is read once: pairs are counted with provisional codes
         while each column's codes are learned, then recoded to the final codes (exactly the
-        counts a second pass would give). A column with more than 4,096 distinct values (a
-        numeric column to be binned, say), or provisional tables past 256 MiB, makes the fit
-        read the data a second time to count; the progress line says so. A one-shot stream is
-        spooled to a temporary Arrow file (in the system's temporary directory) meanwhile, in
-        case it must be read again.
+        counts a second pass would give). A column with more than 4,096 distinct values, or
+        provisional tables past 256 MiB, makes the fit read the data a second time to count;
+        so does, for data in memory, a number column with more than ``n_bins`` distinct values
+        (it will be binned, and its bins count faster). The progress line says so. A one-shot
+        stream is spooled to a temporary Arrow file (in the system's temporary directory)
+        meanwhile, in case it must be read again.
         """
         max_categories = check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
         n_bins = check_int("n_bins", self.n_bins, 1, MAX_CATEGORIES - 1)

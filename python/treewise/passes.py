@@ -269,9 +269,11 @@ def learn_and_count(
 
     One pass counts with provisional codes (one per distinct value) and recodes at the end,
     exactly as a second pass would count. When a column has more than
-    ``_core.PROVISIONAL_CODES`` distinct values or the provisional tables would pass
-    ``ONE_PASS_CELLS``, the pass only tallies from then on and a second pass counts; the
-    progress line says so. A one-shot stream is spooled meanwhile, in case it must be read again.
+    ``_core.PROVISIONAL_CODES`` distinct values, the provisional tables would pass
+    ``ONE_PASS_CELLS``, or (for data in memory, cheap to read again) a number column has more
+    than ``n_bins`` distinct values and will be binned, the pass only tallies from then on and
+    a second pass counts; the progress line says so. A one-shot stream is spooled meanwhile, in
+    case it must be read again.
     """
     codebook, (stats,), kept = learn_and_count_many(
         [source], names, max_categories, n_bins, batch_rows, bar, types, kinds, memory_limit
@@ -296,6 +298,12 @@ def learn_and_count_many(
     """
     cells = _cell_limit(memory_limit)
     counters = [_core.OnePass(names, cells) for _ in sources]
+    categorical = [name for name, kind in (kinds or {}).items() if kind == "categorical"]
+    for source, counter in zip(sources, counters, strict=True):
+        if source.replayable and not source.read_ahead:
+            # Data in memory is cheap to read again: a column that will be binned is counted
+            # faster with its bins in a second pass than value by value in this one.
+            counter.stop_past_bins(n_bins, categorical)
     spools = [None if source.replayable else _Spool() for source in sources]
     try:
         for source, counter, spool in zip(sources, counters, spools, strict=True):

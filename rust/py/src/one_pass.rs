@@ -47,6 +47,15 @@ impl PyOnePass {
         Ok(())
     }
 
+    /// Stop counting once a number or time column not named in `categorical` has more than
+    /// `n_bins` distinct values (it will be binned): for data in memory, where a second pass is
+    /// cheap.
+    fn stop_past_bins(&mut self, n_bins: usize, categorical: Vec<String>) -> PyResult<()> {
+        let pass = self.inner.as_mut().ok_or_else(finished_error)?;
+        pass.stop_past_bins(n_bins, &categorical);
+        Ok(())
+    }
+
     /// Rows observed so far.
     #[getter]
     fn rows(&self) -> u64 {

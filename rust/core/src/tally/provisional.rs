@@ -487,6 +487,10 @@ pub struct OnePass {
     counting: Option<Counting>,
     cell_limit: u64,
     fallback: Option<String>,
+    /// Stop counting once a number column (not in `exempt`) has more distinct values than this:
+    /// see [`OnePass::stop_past_bins`].
+    bins: Option<usize>,
+    exempt: Vec<bool>,
 }
 
 impl OnePass {
@@ -502,7 +506,20 @@ impl OnePass {
             }),
             cell_limit,
             fallback: None,
+            bins: None,
+            exempt: vec![false; d],
         })
+    }
+
+    /// Makes the pass stop counting once a number or time column, other than those named in
+    /// `categorical`, has more than `n_bins` distinct values. Such a column will be binned, and
+    /// counting its values one by one costs more than a second pass when reading the data again
+    /// is cheap (data in memory).
+    pub fn stop_past_bins(&mut self, n_bins: usize, categorical: &[String]) {
+        self.bins = Some(n_bins);
+        for (flag, column) in self.exempt.iter_mut().zip(&self.builder.columns) {
+            *flag = categorical.contains(&column.name);
+        }
     }
 
     /// Rows observed so far.
@@ -534,9 +551,25 @@ impl OnePass {
             })
             .collect::<Result<_>>()?;
         let cards: Vec<usize> = counting.dicts.iter().map(|d| d.values.len()).collect();
+        let binned = self.bins.and_then(|n_bins| {
+            (0..columns.len()).find(|&i| {
+                let numbers = matches!(
+                    columns[i].family,
+                    Some(Kind::Int | Kind::UInt | Kind::Float | Kind::Time)
+                );
+                let dict = &counting.dicts[i];
+                numbers && !self.exempt[i] && dict.values.len() - usize::from(dict.null.is_some()) > n_bins
+            })
+        });
         let why = if let Some(i) = encoded.iter().position(Option::is_none) {
             Some(format!(
                 "column '{}' has more than {PROVISIONAL_CODES} distinct values",
+                columns[i].name
+            ))
+        } else if let Some(i) = binned {
+            Some(format!(
+                "column '{}' has more distinct numbers than n_bins, so it will be binned; \
+                 counting the binned codes in a second pass is cheaper",
                 columns[i].name
             ))
         } else if cell_count(&cards) > self.cell_limit {
