@@ -37,16 +37,23 @@ struct Cpt {
 /// ln((n + alpha) / denom) for each count of one row, and ln(alpha / denom) for a value without
 /// a code. A row with no counts and no smoothing is uniform (the alpha -> 0 limit).
 fn smoothed_row(counts: &[u64], alpha: f64) -> (Vec<f64>, f64) {
+    let counts: Vec<f64> = counts.iter().map(|&n| n as f64).collect();
+    smoothed_weighted_row(&counts, alpha)
+}
+
+/// [`smoothed_row`] of weighted counts (a mixture component's); integer counts give the same
+/// bits either way.
+pub fn smoothed_weighted_row(counts: &[f64], alpha: f64) -> (Vec<f64>, f64) {
     let card = counts.len();
-    let total: u64 = counts.iter().sum();
-    let denom = total as f64 + alpha * card as f64;
+    let total: f64 = counts.iter().sum();
+    let denom = total + alpha * card as f64;
     if denom <= 0.0 {
         let uniform = (1.0 / card as f64).ln();
         return (vec![uniform; card], uniform);
     }
     let logp = counts
         .iter()
-        .map(|&n| ((n as f64 + alpha) / denom).ln())
+        .map(|&n| ((n + alpha) / denom).ln())
         .collect();
     (logp, (alpha / denom).ln())
 }
@@ -555,7 +562,7 @@ impl TreeModel {
 
     /// ln P(value | other) per row of each column with a tail table, 0 where the code is not
     /// "other" (a value outside the table gets the table's share for such values).
-    fn tail_terms(&self, batch: &RecordBatch, codes: &[Vec<u16>]) -> Result<Vec<Option<Vec<f64>>>> {
+    pub fn tail_terms(&self, batch: &RecordBatch, codes: &[Vec<u16>]) -> Result<Vec<Option<Vec<f64>>>> {
         self.codebook
             .columns()
             .par_iter()

@@ -1,0 +1,368 @@
+//! Mixtures of trees (Meilă & Jordan, JMLR 2000): weighted pair counts from responsibilities,
+//! each component's Chow–Liu tree and smoothed tables, and every row's log-likelihood under each.
+
+use rayon::prelude::*;
+
+use crate::codebook::UNSEEN;
+use crate::error::{Error, Result};
+use crate::model::smoothed_weighted_row;
+use crate::stats::{pair_count, pairs};
+use crate::tree;
+use crate::weights::mutual_info;
+
+/// Rows per block of the weighted counting: one block of responsibilities stays in cache while a
+/// task runs over its pairs.
+const ROW_BLOCK: usize = 4096;
+/// Rows per chunk of the log-likelihood pass handed to one thread.
+const SCORE_CHUNK: usize = 8192;
+/// The most f64 cells the weighted tables of one call may hold (16 GiB).
+pub const MAX_WEIGHTED_CELLS: u64 = 1 << 31;
+
+/// One component's weighted statistics: total weight, marginals and pair tables (f64).
+#[derive(Clone, Debug, PartialEq)]
+pub struct WeightedStats {
+    /// The sum of the component's responsibilities.
+    pub n: f64,
+    /// Per column, the weighted count of each code.
+    pub marginals: Vec<Vec<f64>>,
+    /// Per pair (i < j, pair-index order), the row-major `r_i x r_j` weighted table.
+    pub tables: Vec<Vec<f64>>,
+}
+
+/// Checks the code columns against the cardinalities: equal lengths, every code below its
+/// column's cardinality (UNSEEN allowed only when `lenient`). Returns the row count.
+fn check_codes(codes: &[Vec<u16>], cards: &[usize], lenient: bool) -> Result<usize> {
+    if codes.len() != cards.len() || codes.is_empty() {
+        return Err(Error::Invalid(format!(
+            "{} code columns for {} cardinalities (at least one column is needed)",
+            codes.len(),
+            cards.len()
+        )));
+    }
+    let n = codes[0].len();
+    for (c, (col, &card)) in codes.iter().zip(cards).enumerate() {
+        if col.len() != n {
+            return Err(Error::Invalid(format!(
+                "code column {c} has {} rows, column 0 has {n}",
+                col.len()
+            )));
+        }
+        let bad = col
+            .par_iter()
+            .any(|&x| usize::from(x) >= card && !(lenient && x == UNSEEN));
+        if bad {
+            return Err(Error::Invalid(format!(
+                "code column {c} holds a code outside 0..{card}"
+            )));
+        }
+    }
+    Ok(n)
+}
+
+/// Per component, the weighted marginals and pair tables of the code columns, each row weighted
+/// by its responsibilities `resp` (row-major, `n x k`, finite and non-negative).
+///
+/// Every cell is a sum over rows in row order, computed by one thread, so the result is the
+/// same bits for any number of threads.
+pub fn weighted_stats(
+    codes: &[Vec<u16>],
+    cards: &[usize],
+    resp: &[f64],
+    k: usize,
+) -> Result<Vec<WeightedStats>> {
+    let n = check_codes(codes, cards, false)?;
+    if k == 0 || Some(resp.len()) != n.checked_mul(k) {
+        return Err(Error::Invalid(format!(
+            "responsibilities hold {} values, not {n} rows x {k} components",
+            resp.len()
+        )));
+    }
+    if resp.par_iter().any(|r| !(r.is_finite() && *r >= 0.0)) {
+        return Err(Error::Invalid(
+            "responsibilities must be finite and non-negative".into(),
+        ));
+    }
+    let d = cards.len();
+    let all = pairs(d);
+    let cells: u64 = all
+        .iter()
+        .map(|&(i, j)| (cards[i] * cards[j]) as u64)
+        .sum::<u64>()
+        .saturating_mul(k as u64);
+    if cells > MAX_WEIGHTED_CELLS {
+        return Err(Error::ResourceLimit(format!(
+            "the weighted pair tables of {k} components would hold {cells} cells, more than \
+             {MAX_WEIGHTED_CELLS}; use fewer components, columns or categories"
+        )));
+    }
+    let token = crate::cancel::current();
+    // Marginals: one task per column, rows in order.
+    let marginals: Vec<Vec<f64>> = (0..d)
+        .into_par_iter()
+        .map(|c| {
+            let mut m = vec![0.0; cards[c] * k];
+            for (&x, r) in codes[c].iter().zip(resp.chunks_exact(k)) {
+                let cell = &mut m[usize::from(x) * k..usize::from(x) * k + k];
+                cell.iter_mut().zip(r).for_each(|(m, r)| *m += r);
+            }
+            m
+        })
+        .collect();
+    // Pair tables, cell-major with the k components inner. Pairs are cut into tasks; a task
+    // walks the rows block by block and, inside a block, its pairs, so the block's
+    // responsibilities are read from cache.
+    let tasks = (rayon::current_num_threads() * 8).max(1);
+    let per_task = all.len().div_ceil(tasks).max(1);
+    let tables: Vec<Vec<f64>> = all
+        .par_chunks(per_task)
+        .flat_map_iter(|chunk| {
+            let mut out: Vec<Vec<f64>> = chunk
+                .iter()
+                .map(|&(i, j)| vec![0.0; cards[i] * cards[j] * k])
+                .collect();
+            for start in (0..n).step_by(ROW_BLOCK) {
+                if token.cancelled() {
+                    break;
+                }
+                let end = (start + ROW_BLOCK).min(n);
+                let block = &resp[start * k..end * k];
+                for (&(i, j), table) in chunk.iter().zip(out.iter_mut()) {
+                    let rb = cards[j];
+                    let (xs, ys) = (&codes[i][start..end], &codes[j][start..end]);
+                    for ((&a, &b), r) in xs.iter().zip(ys).zip(block.chunks_exact(k)) {
+                        let at = (usize::from(a) * rb + usize::from(b)) * k;
+                        let cell = &mut table[at..at + k];
+                        cell.iter_mut().zip(r).for_each(|(t, r)| *t += r);
+                    }
+                }
+            }
+            out
+        })
+        .collect();
+    token.check()?;
+    // Split the component-inner layout into one WeightedStats per component.
+    let split = |v: &[f64], t: usize| -> Vec<f64> { v.iter().skip(t).step_by(k).copied().collect() };
+    Ok((0..k)
+        .map(|t| {
+            let marginals: Vec<Vec<f64>> = marginals.iter().map(|m| split(m, t)).collect();
+            let n = marginals[0].iter().sum();
+            WeightedStats {
+                n,
+                marginals,
+                tables: tables.iter().map(|tab| split(tab, t)).collect(),
+            }
+        })
+        .collect())
+}
+
+/// One column's smoothed log-probabilities within a component: ln P(x | a) row-major by parent
+/// code (one row for a root), ln P(x) for a parent without a code, and the mass of a value
+/// without a code (as `TreeModel` scores them).
+#[derive(Clone, Debug, PartialEq)]
+pub struct LogTable {
+    pub card: usize,
+    pub logp: Vec<f64>,
+    pub unseen: Vec<f64>,
+    pub marginal: Vec<f64>,
+    pub marginal_unseen: f64,
+}
+
+impl LogTable {
+    fn new(counts: &[f64], card: usize, alpha: f64) -> LogTable {
+        let mut logp = Vec::with_capacity(counts.len());
+        let mut unseen = Vec::new();
+        let mut sums = vec![0.0; card];
+        for row in counts.chunks_exact(card) {
+            let (lp, un) = smoothed_weighted_row(row, alpha);
+            logp.extend(lp);
+            unseen.push(un);
+            sums.iter_mut().zip(row).for_each(|(s, n)| *s += n);
+        }
+        let (marginal, marginal_unseen) = smoothed_weighted_row(&sums, alpha);
+        LogTable {
+            card,
+            logp,
+            unseen,
+            marginal,
+            marginal_unseen,
+        }
+    }
+
+    #[inline]
+    fn log_prob(&self, a: u16, x: u16) -> f64 {
+        if a == UNSEEN {
+            if x == UNSEEN {
+                self.marginal_unseen
+            } else {
+                self.marginal[usize::from(x)]
+            }
+        } else if x == UNSEEN {
+            self.unseen[usize::from(a)]
+        } else {
+            self.logp[usize::from(a) * self.card + usize::from(x)]
+        }
+    }
+}
+
+/// One fitted component: its tree and its tables.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Component {
+    pub root: usize,
+    pub parent: Vec<Option<usize>>,
+    /// Weighted mutual information of every pair (nats), in pair-index order.
+    pub pair_mi: Vec<f64>,
+    /// Per column, its weighted counts with its parent (rows: the parent's codes).
+    pub counts: Vec<Vec<f64>>,
+    pub tables: Vec<LogTable>,
+}
+
+/// The Chow–Liu tree of weighted statistics under the strict edge order, oriented from the
+/// centre (as `fit_model` does), with tables smoothed by `alpha`.
+pub fn fit_component(cards: &[usize], stats: &WeightedStats, alpha: f64) -> Result<Component> {
+    let d = cards.len();
+    if !(alpha.is_finite() && alpha >= 0.0) {
+        return Err(Error::Invalid(format!(
+            "alpha must be a finite number >= 0, got {alpha}"
+        )));
+    }
+    if stats.marginals.len() != d || stats.tables.len() != pair_count(d) {
+        return Err(Error::Invalid("weighted statistics of another shape".into()));
+    }
+    let all = pairs(d);
+    let pair_mi: Vec<f64> = all
+        .par_iter()
+        .zip(stats.tables.par_iter())
+        .map(|(&(i, j), table)| {
+            if stats.n > 0.0 {
+                mutual_info(table, &stats.marginals[i], &stats.marginals[j], stats.n)
+            } else {
+                0.0
+            }
+        })
+        .collect();
+    let edges = tree::kruskal(d, &pair_mi, |_| true);
+    let first = tree::orient(d, &edges, 0);
+    let edges: Vec<(usize, usize)> = first
+        .parent
+        .iter()
+        .enumerate()
+        .filter_map(|(c, p)| p.map(|p| (p, c)))
+        .collect();
+    let eligible: Vec<bool> = cards.iter().map(|r| *r > 1).collect();
+    let root = tree::centre(d, &edges, &eligible);
+    let parent = tree::orient(d, &edges, root).parent;
+    let counts: Vec<Vec<f64>> = parent
+        .iter()
+        .enumerate()
+        .map(|(c, p)| match *p {
+            None => stats.marginals[c].clone(),
+            Some(p) if p < c => stats.tables[crate::stats::pair_index(d, p, c)].clone(),
+            Some(p) => {
+                let t = &stats.tables[crate::stats::pair_index(d, c, p)];
+                let (rc, rp) = (cards[c], cards[p]);
+                (0..rp * rc).map(|k| t[(k % rc) * rp + k / rc]).collect()
+            }
+        })
+        .collect();
+    let tables = counts
+        .iter()
+        .zip(cards)
+        .map(|(c, &card)| LogTable::new(c, card, alpha))
+        .collect();
+    Ok(Component {
+        root,
+        parent,
+        pair_mi,
+        counts,
+        tables,
+    })
+}
+
+/// ln P(row | component) for every row and component, row-major `n x k`. Codes may be UNSEEN
+/// (scored as `TreeModel` scores them); each row sums its columns in column order.
+pub fn log_likelihoods(
+    codes: &[Vec<u16>],
+    cards: &[usize],
+    components: &[Component],
+) -> Result<Vec<f64>> {
+    let n = check_codes(codes, cards, true)?;
+    let k = components.len();
+    if components.iter().any(|c| c.parent.len() != cards.len()) {
+        return Err(Error::Invalid("a component of another shape".into()));
+    }
+    let mut out = vec![0.0; n * k];
+    let token = crate::cancel::current();
+    out.par_chunks_mut(SCORE_CHUNK * k.max(1))
+        .enumerate()
+        .for_each(|(chunk, out)| {
+            if token.cancelled() || k == 0 {
+                return;
+            }
+            let start = chunk * SCORE_CHUNK;
+            let rows = out.len() / k;
+            let mut acc = vec![0.0; rows];
+            for (t, comp) in components.iter().enumerate() {
+                acc.iter_mut().for_each(|a| *a = 0.0);
+                for (c, table) in comp.tables.iter().enumerate() {
+                    let xs = &codes[c][start..start + rows];
+                    match comp.parent[c] {
+                        Some(p) => {
+                            let ps = &codes[p][start..start + rows];
+                            for ((a, &x), &pa) in acc.iter_mut().zip(xs).zip(ps) {
+                                *a += table.log_prob(pa, x);
+                            }
+                        }
+                        None => {
+                            for (a, &x) in acc.iter_mut().zip(xs) {
+                                *a += table.log_prob(0, x);
+                            }
+                        }
+                    }
+                }
+                for (row, a) in acc.iter().enumerate() {
+                    out[row * k + t] = *a;
+                }
+            }
+        });
+    token.check()?;
+    Ok(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn weighted_counts_with_unit_weights_are_the_counts() -> Result<()> {
+        let codes = vec![vec![0u16, 1, 1, 0, 1], vec![2u16, 0, 2, 2, 1]];
+        let cards = [2, 3];
+        let s = weighted_stats(&codes, &cards, &[1.0; 5], 1)?;
+        assert_eq!(s[0].n, 5.0);
+        assert_eq!(s[0].marginals, vec![vec![2.0, 3.0], vec![1.0, 1.0, 3.0]]);
+        // Row-major 2 x 3 table of (col0, col1).
+        assert_eq!(s[0].tables, vec![vec![0.0, 0.0, 2.0, 1.0, 1.0, 1.0]]);
+        Ok(())
+    }
+
+    #[test]
+    fn responsibilities_split_the_counts() -> Result<()> {
+        let codes = vec![vec![0u16, 1, 1], vec![1u16, 0, 1]];
+        let resp = [0.25, 0.75, 1.0, 0.0, 0.5, 0.5];
+        let s = weighted_stats(&codes, &[2, 2], &resp, 2)?;
+        assert_eq!(s[0].n, 1.75);
+        assert_eq!(s[1].n, 1.25);
+        assert_eq!(s[0].tables[0], vec![0.0, 0.25, 1.0, 0.5]);
+        assert_eq!(s[1].tables[0], vec![0.0, 0.75, 0.0, 0.5]);
+        Ok(())
+    }
+
+    #[test]
+    fn bad_input_is_an_error_not_a_panic() {
+        let codes = vec![vec![0u16, 5]];
+        assert!(weighted_stats(&codes, &[2], &[1.0, 1.0], 1).is_err());
+        let codes = vec![vec![0u16, 1]];
+        assert!(weighted_stats(&codes, &[2], &[1.0], 1).is_err());
+        assert!(weighted_stats(&codes, &[2], &[1.0, f64::NAN], 1).is_err());
+        assert!(weighted_stats(&codes, &[2], &[], 0).is_err());
+    }
+}
