@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import itertools
 import math
+import os
+import subprocess
+import sys
 
 import numpy as np
 import pyarrow as pa
@@ -271,8 +274,31 @@ def test_more_components_than_clusters_do_not_crash() -> None:
     rows = np.repeat(np.array([[0, 0, 0], [1, 1, 1], [0, 1, 0]]), [50, 30, 20], axis=0)
     table = pa.table({f"c{i}": pa.array(rows[:, i]) for i in range(3)})
     model = treewise.TreeMixture(8, max_iter=20, random_state=0).fit(table)
+    assert model.n_reseeds_ > 0
     assert np.isfinite(model.score_samples(table)).all()
+    assert np.isfinite(model.weights_).all()
     assert model.weights_.sum() == pytest.approx(1.0)
+
+
+def test_weighted_counts_do_not_depend_on_the_thread_count() -> None:
+    # The pool's size is read once per process, so each count runs in its own interpreter.
+    script = (
+        "import hashlib, numpy as np, sys; from treewise import _core; "
+        "rng = np.random.default_rng(0); n = 30_000; cards = [3, 5, 2, 4, 7, 3]; "
+        "codes = _core.MixtureCodes("
+        "[rng.integers(0, r, n).astype('<u2').tobytes() for r in cards], cards); "
+        "resp = rng.dirichlet(np.ones(4), size=n); "
+        "out = codes.weighted_stats(resp.tobytes(), 4); "
+        "sys.stdout.write(hashlib.sha256(b''.join(b for _, m, t in out for b in m + t)).hexdigest())"
+    )
+    digests = []
+    for threads in ("1", "2", "3"):
+        env = {**os.environ, "TREEWISE_THREADS": threads}
+        done = subprocess.run(
+            [sys.executable, "-c", script], env=env, capture_output=True, text=True, check=True
+        )
+        digests.append(done.stdout)
+    assert digests[0] == digests[1] == digests[2]
 
 
 # -- an open dataset: the mixture beats one tree on held-out rows --------------------------------------

@@ -32,6 +32,9 @@ FloatArray = npt.NDArray[np.float64]
 #: A component whose responsibilities add up to fewer rows than this is degenerate: it is
 #: reseeded (common practice, as scikit-learn's k-means reseeds empty clusters).
 MIN_COMPONENT_ROWS = 2.0
+#: The most reseeds in one run: data with fewer patterns than components would otherwise reseed
+#: at every iteration and never converge.
+MAX_RESEEDS = 10
 
 
 @dataclass(frozen=True)
@@ -317,7 +320,9 @@ class TreeMixture(Params):
         reseeds = 0
         converged = False
         for _ in range(max_iter):
-            resp, reseeded = _reseed(resp, row_ll, rng)
+            reseeded = 0
+            if reseeds < MAX_RESEEDS:
+                resp, reseeded = _reseed(resp, row_ll, rng)
             reseeds += reseeded
             # M-step: weights and trees from the responsibilities.
             weights = resp.sum(axis=0) / n
