@@ -11,12 +11,11 @@ import sys
 import numpy as np
 import pyarrow as pa
 import pytest
-
 import treewise
 from treewise import _core, reference
 from treewise.mixture import _log_mix
 
-# -- a planted mixture of two known trees (constructed truth) ---------------------------------------
+# -- a planted mixture of two known trees (constructed truth) -------------------------------------
 
 CARDS = [3, 3, 2, 3, 2, 3]
 #: Each truth component's parent links (-1: root). Different structures on purpose.
@@ -117,7 +116,7 @@ def test_planted_held_out_likelihood_matches_the_truth(
     assert model.score_samples(test).mean() > single.mean() + 4 * se
 
 
-# -- EM never lowers the log-likelihood -------------------------------------------------------------
+# -- EM never lowers the log-likelihood -----------------------------------------------------------
 
 
 @pytest.mark.parametrize("init", ["kmeans++", "random"])
@@ -126,9 +125,9 @@ def test_em_never_lowers_the_log_likelihood(init: str) -> None:
     # alpha=0: the M-step is the exact maximum-likelihood tree and tables of the weighted counts,
     # so every iteration must not lower the likelihood (Dempster, Laird & Rubin 1977, Thm 1;
     # Meila & Jordan 2000, section 3). tol=0 runs every iteration.
-    model = treewise.TreeMixture(
-        3, alpha=0.0, max_iter=25, tol=0.0, init=init, random_state=4
-    ).fit(train)
+    model = treewise.TreeMixture(3, alpha=0.0, max_iter=25, tol=0.0, init=init, random_state=4).fit(
+        train
+    )
     assert model.n_reseeds_ == 0
     bounds = np.array(model.lower_bounds_)
     assert len(bounds) >= 2
@@ -138,7 +137,7 @@ def test_em_never_lowers_the_log_likelihood(init: str) -> None:
     assert bounds[-1] == pytest.approx(model.score_samples(train).mean(), rel=1e-12)
 
 
-# -- K = 1 is DependencyTree -------------------------------------------------------------------------
+# -- K = 1 is DependencyTree ----------------------------------------------------------------------
 
 
 def test_one_component_is_the_dependency_tree_bit_for_bit() -> None:
@@ -149,7 +148,9 @@ def test_one_component_is_the_dependency_tree_bit_for_bit() -> None:
     # Source: treewise's own DependencyTree (a mixture of one tree is that tree).
     np.testing.assert_array_equal(model.components_[0].parent_, tree.parent_)
     np.testing.assert_array_equal(model.score_samples(test), tree.score_samples(test))
-    np.testing.assert_array_equal(model.components_[0].pairwise_mutual_info_, tree.pairwise_mutual_info_)
+    np.testing.assert_array_equal(
+        model.components_[0].pairwise_mutual_info_, tree.pairwise_mutual_info_
+    )
 
 
 def test_one_component_with_tail_values_matches_to_rounding() -> None:
@@ -167,7 +168,7 @@ def test_one_component_with_tail_values_matches_to_rounding() -> None:
     np.testing.assert_allclose(model.score_samples(table), tree.score_samples(table), rtol=1e-13)
 
 
-# -- brute-force enumeration --------------------------------------------------------------------------
+# -- brute-force enumeration ----------------------------------------------------------------------
 
 
 def test_scores_match_enumeration_of_every_row() -> None:
@@ -198,7 +199,7 @@ def test_scores_match_enumeration_of_every_row() -> None:
     )
 
 
-# -- the numpy reference ------------------------------------------------------------------------------
+# -- the numpy reference --------------------------------------------------------------------------
 
 
 def _small_table(seed: int) -> tuple[list[np.ndarray], list[int]]:
@@ -265,7 +266,7 @@ def test_bad_inputs_raise_not_crash() -> None:
     with pytest.raises(treewise.TreewiseError):
         core_codes.weighted_stats(np.full(len(codes[0]), np.nan).tobytes(), 1)
     with pytest.raises(treewise.TreewiseError):
-        _core_codes([np.array([0, 5])], [2])  .weighted_stats(np.ones(2).tobytes(), 1)
+        _core_codes([np.array([0, 5])], [2]).weighted_stats(np.ones(2).tobytes(), 1)
 
 
 def test_more_components_than_clusters_do_not_crash() -> None:
@@ -289,7 +290,8 @@ def test_weighted_counts_do_not_depend_on_the_thread_count() -> None:
         "[rng.integers(0, r, n).astype('<u2').tobytes() for r in cards], cards); "
         "resp = rng.dirichlet(np.ones(4), size=n); "
         "out = codes.weighted_stats(resp.tobytes(), 4); "
-        "sys.stdout.write(hashlib.sha256(b''.join(b for _, m, t in out for b in m + t)).hexdigest())"
+        "blob = b''.join(b for _, m, t in out for b in m + t); "
+        "sys.stdout.write(hashlib.sha256(blob).hexdigest())"
     )
     digests = []
     for threads in ("1", "2", "3"):
@@ -301,7 +303,7 @@ def test_weighted_counts_do_not_depend_on_the_thread_count() -> None:
     assert digests[0] == digests[1] == digests[2]
 
 
-# -- an open dataset: the mixture beats one tree on held-out rows --------------------------------------
+# -- an open dataset: the mixture beats one tree on held-out rows ---------------------------------
 
 
 def test_digits_mixture_beats_one_tree_held_out() -> None:

@@ -57,7 +57,10 @@ class MixtureComponent:
     def mutual_info_(self) -> FloatArray:
         """Each column's weighted mutual information with its parent (0 for the root)."""
         return np.array(
-            [self.pairwise_mutual_info_[c, p] if p >= 0 else 0.0 for c, p in enumerate(self.parent_)]
+            [
+                self.pairwise_mutual_info_[c, p] if p >= 0 else 0.0
+                for c, p in enumerate(self.parent_)
+            ]
         )
 
     def _shape(self, c: int) -> tuple[int, int]:
@@ -276,7 +279,7 @@ class TreeMixture(Params):
                 batches.append(batch.select(names))
         table = pa.Table.from_batches(batches).combine_chunks()
         merged = table.to_batches()
-        batch = merged[0] if len(merged) == 1 else pa.record_batch(table)
+        batch = merged[0] if merged else pa.RecordBatch.from_pylist([], schema=table.schema)
         codes, tails, unseen = _core.MixtureCodes.encode(tree._fitted(), batch)
         return codes, np.frombuffer(tails, "<f8"), np.array(unseen, dtype=np.int64)
 
@@ -360,8 +363,10 @@ class TreeMixture(Params):
         return total + tails, resp
 
     def score_samples(self, data: Any) -> FloatArray:
-        """ln P(row) under the mixture, in nats: log-sum-exp over components of
-        ln w_k + ln P_k(row), plus ln P(value | "other") for tail values, as a tree scores them.
+        """The log-probability of each row under the mixture, in nats.
+
+        The log-sum-exp over components of ln w_k + ln P_k(row), plus ln P(value | "other")
+        for tail values, as a tree scores them. Unseen values are scored as a tree scores them.
         """
         return self._mixed(data)[0]
 
@@ -375,7 +380,7 @@ class TreeMixture(Params):
 
     def predict(self, data: Any) -> npt.NDArray[np.intp]:
         """Each row's most responsible component."""
-        return np.argmax(self.predict_proba(data), axis=1)
+        return np.asarray(np.argmax(self.predict_proba(data), axis=1), dtype=np.intp)
 
     @property
     def n_parameters_(self) -> int:
@@ -399,8 +404,11 @@ class TreeMixture(Params):
 def _reseed(
     resp: FloatArray, row_ll: FloatArray | None, rng: np.random.Generator
 ) -> tuple[FloatArray, int]:
-    """Give every degenerate component (fewer than MIN_COMPONENT_ROWS rows of weight) the rows
-    the mixture explains worst (random rows before the first E-step); returns how many."""
+    """Reseed every degenerate component; returns the responsibilities and how many.
+
+    A component with fewer than MIN_COMPONENT_ROWS rows of weight is given the rows the mixture
+    explains worst (random rows before the first E-step).
+    """
     n, k = resp.shape
     reseeded = 0
     for j in range(k):
@@ -409,7 +417,11 @@ def _reseed(
         take = max(int(MIN_COMPONENT_ROWS), n // (2 * k))
         if take >= n:
             continue
-        rows = rng.permutation(n)[:take] if row_ll is None else np.argsort(row_ll, kind="stable")[:take]
+        rows = (
+            rng.permutation(n)[:take]
+            if row_ll is None
+            else np.argsort(row_ll, kind="stable")[:take]
+        )
         resp = resp.copy()
         resp[rows] = 0.0
         resp[rows, j] = 1.0
@@ -443,4 +455,6 @@ def choose_n_components(
         else:
             figures[k] = float(model.score_samples(validation).mean())
     pick = min if criterion == "bic" else max
-    return pick(figures, key=lambda k: (figures[k], k) if pick is min else (figures[k], -k)), figures
+    return pick(
+        figures, key=lambda k: (figures[k], k) if pick is min else (figures[k], -k)
+    ), figures

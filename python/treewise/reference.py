@@ -239,7 +239,7 @@ def pair_table(codes_i: IntArray, codes_j: IntArray, r_i: int, r_j: int) -> IntA
     return flat.astype(np.int64).reshape(r_i, r_j)
 
 
-def mutual_information(table: IntArray) -> tuple[float, float, int]:
+def mutual_information(table: IntArray | FloatArray) -> tuple[float, float, int]:
     """Mutual information (nats) of a contingency table, with its G statistic and its dof.
 
     Each non-zero cell gives ``(c / N) * log((c * N) / (ma * mb))`` in float64 with ``math.log``;
@@ -529,7 +529,7 @@ def _parent_child_counts(tree: ReferenceTree, c: int) -> IntArray:
     return tree.tables[p, c] if p < c else tree.tables[c, p].T
 
 
-def _smoothed(counts: IntArray, alpha: float) -> tuple[FloatArray, FloatArray]:
+def _smoothed(counts: IntArray | FloatArray, alpha: float) -> tuple[FloatArray, FloatArray]:
     """Smoothed log-probabilities of a table of counts, row by row.
 
     Returns ln((n + alpha) / (n_row + alpha r)) per cell and ln(alpha / (n_row + alpha r)) per
@@ -624,11 +624,16 @@ def weighted_pair_stats(
     d = len(codes)
     for k in range(resp.shape[1]):
         w = resp[:, k]
-        marginals = [np.bincount(codes[c], weights=w, minlength=cards[c]) for c in range(d)]
+        marginals = [
+            np.bincount(codes[c], weights=w, minlength=cards[c]).astype(np.float64)
+            for c in range(d)
+        ]
         tables = {
             (i, j): np.bincount(
                 codes[i] * cards[j] + codes[j], weights=w, minlength=cards[i] * cards[j]
-            ).reshape(cards[i], cards[j])
+            )
+            .astype(np.float64)
+            .reshape(cards[i], cards[j])
             for i in range(d)
             for j in range(i + 1, d)
         }
@@ -639,8 +644,11 @@ def weighted_pair_stats(
 def mixture_m_step(
     codes: list[IntArray], cards: list[int], resp: FloatArray, alpha: float
 ) -> list[ReferenceComponent]:
-    """Each component's Chow-Liu tree on weighted mutual information, oriented from its centre
-    (as :func:`fit` picks the root), with tables smoothed by ``alpha`` from weighted counts."""
+    """Each component's Chow-Liu tree on weighted mutual information, and its tables.
+
+    The tree is oriented from its centre (as :func:`fit` picks the root), and the tables are
+    smoothed by ``alpha`` from the weighted counts.
+    """
     d = len(codes)
     comps = []
     for _, marginals, tables in weighted_pair_stats(codes, cards, resp):
@@ -655,16 +663,14 @@ def mixture_m_step(
         logp = []
         for c in range(d):
             p = int(parent[c])
-            counts = marginals[c][None, :] if p < 0 else (
-                tables[p, c] if p < c else tables[c, p].T
-            )
+            counts = marginals[c][None, :] if p < 0 else (tables[p, c] if p < c else tables[c, p].T)
             logp.append(_smoothed(counts, alpha)[0])
         comps.append(ReferenceComponent(root, parent, mi, logp))
     return comps
 
 
 def mixture_log_likelihoods(codes: list[IntArray], comps: list[ReferenceComponent]) -> FloatArray:
-    """ln P_k(row) for every row and component: the sum over columns, in column order."""
+    """Ln P_k(row) for every row and component: the sum over columns, in column order."""
     n = len(codes[0])
     out = np.zeros((n, len(comps)))
     for k, comp in enumerate(comps):
