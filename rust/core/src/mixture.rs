@@ -41,6 +41,11 @@ fn check_codes(codes: &[Vec<u16>], cards: &[usize], lenient: bool) -> Result<usi
     }
     let n = codes[0].len();
     for (c, (col, &card)) in codes.iter().zip(cards).enumerate() {
+        if card == 0 || card > usize::from(UNSEEN) {
+            return Err(Error::Invalid(format!(
+                "column {c} has cardinality {card}; codes run from 1 to {UNSEEN} values"
+            )));
+        }
         if col.len() != n {
             return Err(Error::Invalid(format!(
                 "code column {c} has {} rows, column 0 has {n}",
@@ -127,12 +132,18 @@ pub fn weighted_stats(
                 let end = (start + ROW_BLOCK).min(n);
                 let block = &resp[start * k..end * k];
                 for (&(i, j), table) in chunk.iter().zip(out.iter_mut()) {
-                    let rb = cards[j];
                     let (xs, ys) = (&codes[i][start..end], &codes[j][start..end]);
-                    for ((&a, &b), r) in xs.iter().zip(ys).zip(block.chunks_exact(k)) {
-                        let at = (usize::from(a) * rb + usize::from(b)) * k;
-                        let cell = &mut table[at..at + k];
-                        cell.iter_mut().zip(r).for_each(|(t, r)| *t += r);
+                    // A fixed K lets the compiler unroll the per-cell additions.
+                    match k {
+                        1 => add_rows::<1>(table, xs, ys, cards[j], block),
+                        2 => add_rows::<2>(table, xs, ys, cards[j], block),
+                        3 => add_rows::<3>(table, xs, ys, cards[j], block),
+                        4 => add_rows::<4>(table, xs, ys, cards[j], block),
+                        5 => add_rows::<5>(table, xs, ys, cards[j], block),
+                        6 => add_rows::<6>(table, xs, ys, cards[j], block),
+                        8 => add_rows::<8>(table, xs, ys, cards[j], block),
+                        16 => add_rows::<16>(table, xs, ys, cards[j], block),
+                        _ => add_rows_any(table, xs, ys, cards[j], block, k),
                     }
                 }
             }
@@ -153,6 +164,27 @@ pub fn weighted_stats(
             }
         })
         .collect())
+}
+
+/// Adds each row's `K` responsibilities to its cell of a pair table (cell-major, K inner).
+#[inline]
+fn add_rows<const K: usize>(table: &mut [f64], xs: &[u16], ys: &[u16], rb: usize, block: &[f64]) {
+    for ((&a, &b), r) in xs.iter().zip(ys).zip(block.chunks_exact(K)) {
+        let at = (usize::from(a) * rb + usize::from(b)) * K;
+        let cell = table.get_mut(at..at + K).map(<&mut [f64; K]>::try_from);
+        if let (Some(Ok(cell)), Ok(r)) = (cell, <&[f64; K]>::try_from(r)) {
+            cell.iter_mut().zip(r).for_each(|(t, r)| *t += r);
+        }
+    }
+}
+
+/// [`add_rows`] for any number of components.
+fn add_rows_any(table: &mut [f64], xs: &[u16], ys: &[u16], rb: usize, block: &[f64], k: usize) {
+    for ((&a, &b), r) in xs.iter().zip(ys).zip(block.chunks_exact(k)) {
+        let at = (usize::from(a) * rb + usize::from(b)) * k;
+        let cell = &mut table[at..at + k];
+        cell.iter_mut().zip(r).for_each(|(t, r)| *t += r);
+    }
 }
 
 /// One column's smoothed log-probabilities within a component: ln P(x | a) row-major by parent
@@ -225,10 +257,20 @@ pub fn fit_component(cards: &[usize], stats: &WeightedStats, alpha: f64) -> Resu
             "alpha must be a finite number >= 0, got {alpha}"
         )));
     }
-    if stats.marginals.len() != d || stats.tables.len() != pair_count(d) {
-        return Err(Error::Invalid("weighted statistics of another shape".into()));
-    }
     let all = pairs(d);
+    let shaped = stats.marginals.len() == d
+        && stats.tables.len() == pair_count(d)
+        && cards.iter().all(|&r| r > 0)
+        && stats.marginals.iter().zip(cards).all(|(m, &r)| m.len() == r)
+        && all
+            .iter()
+            .zip(&stats.tables)
+            .all(|(&(i, j), t)| t.len() == cards[i] * cards[j]);
+    if !shaped {
+        return Err(Error::Invalid(
+            "weighted statistics of another shape than the cardinalities".into(),
+        ));
+    }
     let pair_mi: Vec<f64> = all
         .par_iter()
         .zip(stats.tables.par_iter())
@@ -287,8 +329,27 @@ pub fn log_likelihoods(
 ) -> Result<Vec<f64>> {
     let n = check_codes(codes, cards, true)?;
     let k = components.len();
-    if components.iter().any(|c| c.parent.len() != cards.len()) {
-        return Err(Error::Invalid("a component of another shape".into()));
+    let d = cards.len();
+    let fits = |comp: &Component| {
+        comp.parent.len() == d
+            && comp.tables.len() == d
+            && comp.tables.iter().enumerate().all(|(c, t)| {
+                let rows = match comp.parent[c] {
+                    None => Some(1),
+                    Some(p) => cards.get(p).copied().filter(|_| p != c),
+                };
+                rows.is_some_and(|rows| {
+                    t.card == cards[c]
+                        && t.logp.len() == rows * cards[c]
+                        && t.unseen.len() == rows
+                        && t.marginal.len() == cards[c]
+                })
+            })
+    };
+    if !components.iter().all(fits) {
+        return Err(Error::Invalid(
+            "a component fitted to columns of other cardinalities".into(),
+        ));
     }
     let mut out = vec![0.0; n * k];
     let token = crate::cancel::current();
@@ -364,5 +425,6 @@ mod tests {
         assert!(weighted_stats(&codes, &[2], &[1.0], 1).is_err());
         assert!(weighted_stats(&codes, &[2], &[1.0, f64::NAN], 1).is_err());
         assert!(weighted_stats(&codes, &[2], &[], 0).is_err());
+        assert!(weighted_stats(&[vec![]], &[0], &[], 1).is_err());
     }
 }
