@@ -152,7 +152,8 @@ pub fn weighted_stats(
         .collect();
     token.check()?;
     // Split the component-inner layout into one WeightedStats per component.
-    let split = |v: &[f64], t: usize| -> Vec<f64> { v.iter().skip(t).step_by(k).copied().collect() };
+    let split =
+        |v: &[f64], t: usize| -> Vec<f64> { v.iter().skip(t).step_by(k).copied().collect() };
     Ok((0..k)
         .map(|t| {
             let marginals: Vec<Vec<f64>> = marginals.iter().map(|m| split(m, t)).collect();
@@ -261,7 +262,11 @@ pub fn fit_component(cards: &[usize], stats: &WeightedStats, alpha: f64) -> Resu
     let shaped = stats.marginals.len() == d
         && stats.tables.len() == pair_count(d)
         && cards.iter().all(|&r| r > 0)
-        && stats.marginals.iter().zip(cards).all(|(m, &r)| m.len() == r)
+        && stats
+            .marginals
+            .iter()
+            .zip(cards)
+            .all(|(m, &r)| m.len() == r)
         && all
             .iter()
             .zip(&stats.tables)

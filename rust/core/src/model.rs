@@ -51,10 +51,7 @@ pub fn smoothed_weighted_row(counts: &[f64], alpha: f64) -> (Vec<f64>, f64) {
         let uniform = (1.0 / card as f64).ln();
         return (vec![uniform; card], uniform);
     }
-    let logp = counts
-        .iter()
-        .map(|&n| ((n + alpha) / denom).ln())
-        .collect();
+    let logp = counts.iter().map(|&n| ((n + alpha) / denom).ln()).collect();
     (logp, (alpha / denom).ln())
 }
 
@@ -562,7 +559,11 @@ impl TreeModel {
 
     /// ln P(value | other) per row of each column with a tail table, 0 where the code is not
     /// "other" (a value outside the table gets the table's share for such values).
-    pub fn tail_terms(&self, batch: &RecordBatch, codes: &[Vec<u16>]) -> Result<Vec<Option<Vec<f64>>>> {
+    pub fn tail_terms(
+        &self,
+        batch: &RecordBatch,
+        codes: &[Vec<u16>],
+    ) -> Result<Vec<Option<Vec<f64>>>> {
         self.codebook
             .columns()
             .par_iter()

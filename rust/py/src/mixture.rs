@@ -95,7 +95,11 @@ impl PyMixtureCodes {
             .iter()
             .map(|c| c.iter().filter(|x| **x == u16::MAX).count() as u64)
             .collect();
-        Ok((PyMixtureCodes { codes, cards }, le_bytes(py, &[&tails])?, unseen))
+        Ok((
+            PyMixtureCodes { codes, cards },
+            le_bytes(py, &[&tails])?,
+            unseen,
+        ))
     }
 
     #[getter]
