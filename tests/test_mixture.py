@@ -137,6 +137,23 @@ def test_em_never_lowers_the_log_likelihood(init: str) -> None:
     assert bounds[-1] == pytest.approx(model.score_samples(train).mean(), rel=1e-12)
 
 
+def test_hard_em_never_lowers_the_classification_likelihood() -> None:
+    train, _, _ = _planted(5_000, seed=3)
+    # Classification EM with alpha=0: the C-step cannot lower sum_i max_k ln w_k P_k(x_i) for
+    # fixed parameters, and the M-step maximises it for fixed assignments (Celeux & Govaert
+    # 1992, "A classification EM algorithm for clustering", Theorem 1).
+    model = treewise.TreeMixture(
+        2, alpha=0.0, algorithm="hard", max_iter=25, tol=0.0, random_state=4
+    ).fit(train)
+    assert model.n_reseeds_ == 0
+    bounds = np.array(model.lower_bounds_)
+    assert np.all(np.diff(bounds) >= -1e-12 * np.abs(bounds[:-1]))
+    # Below the mixture likelihood of the same parameters (max <= log-sum-exp), and weights
+    # are shares of whole rows.
+    assert bounds[-1] <= model.score_samples(train).mean()
+    assert np.allclose(model.weights_ * model.n_rows_, np.round(model.weights_ * model.n_rows_))
+
+
 # -- K = 1 is DependencyTree ----------------------------------------------------------------------
 
 

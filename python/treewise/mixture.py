@@ -111,9 +111,11 @@ class TreeMixture(Params):
 
     The default is soft EM: every row counts for every component by its responsibility. It is
     the variant that maximises the likelihood; with ``alpha=0`` each iteration provably never
-    lowers it (the M-step is the exact maximum-likelihood tree of the weighted counts). Hard
-    (classification) EM is not offered: it optimises the likelihood of the assignments instead
-    and biases the weights toward large components.
+    lowers it (the M-step is the exact maximum-likelihood tree of the weighted counts).
+    ``algorithm="hard"`` is classification EM (Celeux & Govaert 1992): each row goes wholly to
+    its most responsible component. It maximises the likelihood of the assignments instead,
+    which biases the weights toward large components, and is offered for comparison; it still
+    counts in f64 through the same kernel.
 
     One codebook is learned with the ordinary fit (a single ``DependencyTree``, kept as
     ``single_tree_``), and every row is encoded once. The rows live in memory as codes.
@@ -130,6 +132,8 @@ class TreeMixture(Params):
         Stop when the mean log-likelihood per row improves by less than this (nats).
     n_init : int, default 1
         Starts; the one with the highest final log-likelihood is kept.
+    algorithm : {"soft", "hard"}, default "soft"
+        Soft EM, or hard (classification) EM.
     init : {"kmeans++", "random"}, default "kmeans++"
         "kmeans++": K seed rows drawn k-means++-style under Hamming distance on the codes (the
         next seed with probability proportional to its squared distance to the nearest seed),
@@ -150,6 +154,8 @@ class TreeMixture(Params):
     lower_bound_ : float
         The kept start's final mean log-likelihood per row of the codes (nats; the shared
         ln P(value | "other") of tail values is left out, being the same for every parameter).
+        With ``algorithm="hard"``, the mean classification log-likelihood per row,
+        max_k ln w_k P_k(row).
     lower_bounds_ : list of float
         That quantity after every iteration of the kept start.
     n_reseeds_ : int
@@ -166,6 +172,7 @@ class TreeMixture(Params):
         max_iter: int = 100,
         tol: float = 1e-4,
         n_init: int = 1,
+        algorithm: str = "soft",
         init: str = "kmeans++",
         random_state: RandomState = None,
         columns: Sequence[str] | None = None,
@@ -179,6 +186,7 @@ class TreeMixture(Params):
         self.max_iter = max_iter
         self.tol = tol
         self.n_init = n_init
+        self.algorithm = algorithm
         self.init = init
         self.random_state = random_state
         self.columns = columns
@@ -193,6 +201,7 @@ class TreeMixture(Params):
         "max_iter",
         "tol",
         "n_init",
+        "algorithm",
         "init",
         "random_state",
         "columns",
@@ -211,6 +220,8 @@ class TreeMixture(Params):
         max_iter = check_int("max_iter", self.max_iter, 1, 1_000_000)
         tol = check_nonnegative("tol", self.tol)
         n_init = check_int("n_init", self.n_init, 1, 10_000)
+        if self.algorithm not in ("soft", "hard"):
+            raise ValueError(f"algorithm must be 'soft' or 'hard', got {self.algorithm!r}")
         if self.init not in ("kmeans++", "random"):
             raise ValueError(f"init must be 'kmeans++' or 'random', got {self.init!r}")
         check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
@@ -333,6 +344,14 @@ class TreeMixture(Params):
             # E-step: every row under every tree; the bound of the parameters just fitted.
             ll = np.frombuffer(codes.log_likelihoods(comps), "<f8").reshape(n, k)
             row_ll, resp = _log_mix(ll, weights)
+            if self.algorithm == "hard":
+                # Classification step: each row wholly to its most responsible component
+                # (ties to the lower index); the bound is the classification likelihood.
+                best = np.argmax(resp, axis=1)
+                with np.errstate(divide="ignore"):
+                    row_ll = ll[np.arange(n), best] + np.log(weights)[best]
+                resp = np.zeros_like(resp)
+                resp[np.arange(n), best] = 1.0
             bounds.append(float(row_ll.mean()))
             if len(bounds) > 1 and not reseeded and abs(bounds[-1] - bounds[-2]) < tol:
                 converged = True
