@@ -216,6 +216,51 @@ def test_scores_match_enumeration_of_every_row() -> None:
     )
 
 
+def test_samples_follow_the_mixture() -> None:
+    stats = pytest.importorskip("scipy.stats")
+    rng = np.random.default_rng(14)
+    cards = [2, 3, 2]
+    n = 600
+    z = rng.random(n) < 0.5
+    a = rng.integers(0, 2, n)
+    b = np.where(z, a, 2 - a)
+    c = np.where(z, b % 2, a)
+    table = pa.table({"c0": pa.array(a), "c1": pa.array(b), "c2": pa.array(c)})
+    model = treewise.TreeMixture(2, random_state=1).fit(table)
+    rows = np.array(list(itertools.product(*[range(r) for r in cards])))
+    every = pa.table({f"c{i}": pa.array(rows[:, i]) for i in range(len(cards))})
+    expected = np.exp(model.score_samples(every))
+    drawn, labels = model.sample(100_000, random_state=3, return_components=True)
+    assert drawn.schema.names == ["c0", "c1", "c2"]
+    assert drawn.equals(model.sample(100_000, random_state=3))  # the same seed, the same rows
+    got = np.stack([drawn.column(i).to_numpy() for i in range(3)], axis=1)
+    index = {tuple(r): i for i, r in enumerate(rows.tolist())}
+    counts = np.bincount([index[tuple(r)] for r in got.tolist()], minlength=len(rows))
+    # Source: Pearson's chi-square goodness-of-fit test (scipy.stats.chisquare) of the sampled
+    # row counts against N * P(row) enumerated from the model; a fixed seed, so not flaky.
+    assert stats.chisquare(counts, expected * len(got)).pvalue > 1e-3
+    # The components drawn follow the weights (chi-square again).
+    per_component = np.bincount(labels, minlength=2)
+    assert stats.chisquare(per_component, model.weights_ * len(got)).pvalue > 1e-3
+
+
+def test_samples_of_numeric_and_tail_columns_are_real_values() -> None:
+    rng = np.random.default_rng(15)
+    n = 3_000
+    kind = rng.integers(0, 40, n)
+    table = pa.table(
+        {"x": pa.array(rng.normal(size=n) + kind % 2), "k": pa.array(kind.astype(str))}
+    )
+    with pytest.warns(treewise.CategoryCapWarning):
+        model = treewise.TreeMixture(2, max_categories=8, random_state=0).fit(table)
+    drawn = model.sample(2_000, random_state=0)
+    assert drawn.schema == model.single_tree_.sample(1, random_state=0).schema
+    # Rare values behind "other" come back as values seen in fitting, never as a marker.
+    assert set(drawn.column("k").to_pylist()) <= set(kind.astype(str).tolist())
+    x = drawn.column("x").to_numpy()
+    assert np.isfinite(x).all() and x.min() >= table.column("x").to_numpy().min()
+
+
 # -- the numpy reference --------------------------------------------------------------------------
 
 

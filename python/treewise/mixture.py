@@ -14,6 +14,7 @@ import pyarrow as pa
 from treewise import _core
 from treewise.checks import (
     MAX_CATEGORIES,
+    MAX_SAMPLE_ROWS,
     RandomState,
     check_alpha,
     check_int,
@@ -400,6 +401,37 @@ class TreeMixture(Params):
     def predict(self, data: Any) -> npt.NDArray[np.intp]:
         """Each row's most responsible component."""
         return np.asarray(np.argmax(self.predict_proba(data), axis=1), dtype=np.intp)
+
+    def sample(
+        self, n: int, random_state: RandomState = None, *, return_components: bool = False
+    ) -> Any:
+        """Draw ``n`` synthetic rows: a component by its weight, then a row from its tree.
+
+        Values come back as ``DependencyTree.sample`` gives them (numbers drawn inside their
+        bin, rare values behind "other" by their counts), with the fitted names and types. The
+        same ``random_state`` gives the same rows on any number of threads. With
+        ``return_components``, also returns each row's component (as scikit-learn's
+        ``GaussianMixture.sample`` returns labels).
+        """
+        comps = self._fitted()
+        n = check_int("n", n, 0, MAX_SAMPLE_ROWS)
+        tree = self.single_tree_
+        model = tree._fitted()
+        seed = seed_of(random_state)
+        weights = [float(w) for w in self.weights_]
+        step = _core.SAMPLE_BLOCK * 64
+        batches, labels = [], []
+        for start in range(0, max(n, 1), step):
+            count = min(step, n - start)
+            codes, floats, tails, which = _core.mixture_sample(
+                model, comps, weights, start, count, seed
+            )
+            batches.append(tree._decode_sampled(codes, floats, tails, count))
+            labels.append(np.frombuffer(which, "<u4").astype(np.intp))
+        table = pa.Table.from_batches(batches, schema=batches[0].schema)
+        if return_components:
+            return table, np.concatenate(labels)
+        return table
 
     @property
     def n_parameters_(self) -> int:

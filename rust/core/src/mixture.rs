@@ -5,7 +5,8 @@ use rayon::prelude::*;
 
 use crate::codebook::UNSEEN;
 use crate::error::{Error, Result};
-use crate::model::smoothed_weighted_row;
+use crate::model::{smoothed_weighted_row, Sampled, TreeModel, SAMPLE_BLOCK};
+use crate::rng::Rng;
 use crate::stats::{pair_count, pairs};
 use crate::tree;
 use crate::weights::mutual_info;
@@ -195,6 +196,8 @@ fn add_rows_any(table: &mut [f64], xs: &[u16], ys: &[u16], rb: usize, block: &[f
 pub struct LogTable {
     pub card: usize,
     pub logp: Vec<f64>,
+    /// Cumulative probabilities per row, for sampling (+inf from the last possible code on).
+    pub cdf: Vec<f64>,
     pub unseen: Vec<f64>,
     pub marginal: Vec<f64>,
     pub marginal_unseen: f64,
@@ -205,8 +208,21 @@ impl LogTable {
         let mut logp = Vec::with_capacity(counts.len());
         let mut unseen = Vec::new();
         let mut sums = vec![0.0; card];
+        let mut cdf = Vec::with_capacity(counts.len());
         for row in counts.chunks_exact(card) {
             let (lp, un) = smoothed_weighted_row(row, alpha);
+            let start = cdf.len();
+            let mut acc = 0.0;
+            for l in &lp {
+                acc += l.exp();
+                cdf.push(acc);
+            }
+            // As TreeModel's tables: rounding never picks a code of probability zero.
+            if let Some(last) = lp.iter().rposition(|l| *l > f64::NEG_INFINITY) {
+                cdf[start + last..]
+                    .iter_mut()
+                    .for_each(|c| *c = f64::INFINITY);
+            }
             logp.extend(lp);
             unseen.push(un);
             sums.iter_mut().zip(row).for_each(|(s, n)| *s += n);
@@ -215,10 +231,22 @@ impl LogTable {
         LogTable {
             card,
             logp,
+            cdf,
             unseen,
             marginal,
             marginal_unseen,
         }
+    }
+
+    /// The code drawn at uniform `u` given parent code `a`.
+    #[inline]
+    fn draw(&self, a: usize, u: f64) -> u16 {
+        let row = self
+            .cdf
+            .get(a * self.card..(a + 1) * self.card)
+            .unwrap_or(&[]);
+        let k = row.partition_point(|c| *c <= u);
+        u16::try_from(k.min(self.card.saturating_sub(1))).unwrap_or(0)
     }
 
     #[inline]
@@ -242,6 +270,8 @@ impl LogTable {
 pub struct Component {
     pub root: usize,
     pub parent: Vec<Option<usize>>,
+    /// Breadth-first order: every parent before its children.
+    pub order: Vec<usize>,
     /// Weighted mutual information of every pair (nats), in pair-index order.
     pub pair_mi: Vec<f64>,
     /// Per column, its weighted counts with its parent (rows: the parent's codes).
@@ -297,7 +327,8 @@ pub fn fit_component(cards: &[usize], stats: &WeightedStats, alpha: f64) -> Resu
         .collect();
     let eligible: Vec<bool> = cards.iter().map(|r| *r > 1).collect();
     let root = tree::centre(d, &edges, &eligible);
-    let parent = tree::orient(d, &edges, root).parent;
+    let oriented = tree::orient(d, &edges, root);
+    let (parent, order) = (oriented.parent, oriented.order);
     let counts: Vec<Vec<f64>> = parent
         .iter()
         .enumerate()
@@ -319,6 +350,7 @@ pub fn fit_component(cards: &[usize], stats: &WeightedStats, alpha: f64) -> Resu
     Ok(Component {
         root,
         parent,
+        order,
         pair_mi,
         counts,
         tables,
@@ -392,6 +424,120 @@ pub fn log_likelihoods(
         });
     token.check()?;
     Ok(out)
+}
+
+/// Draws `count` rows from the mixture, starting at row `start` of the stream of `seed`
+/// (a multiple of [`SAMPLE_BLOCK`]): per row one draw picks the component by `weights`, then
+/// its tree is sampled from the root down, then each column's value behind its code is drawn
+/// as `model` (the mixture's codebook and tail tables) does. Every row takes a fixed number of
+/// draws from its block's stream, so rows do not depend on threads or chunking. Returns the
+/// rows and each row's component.
+pub fn sample(
+    components: &[Component],
+    weights: &[f64],
+    model: &TreeModel,
+    start: u64,
+    count: usize,
+    seed: u64,
+) -> Result<(Sampled, Vec<u32>)> {
+    let cards = model.codebook().cardinalities();
+    let d = cards.len();
+    if !start.is_multiple_of(SAMPLE_BLOCK as u64) {
+        return Err(Error::Invalid(format!(
+            "sampling must start at a multiple of {SAMPLE_BLOCK} rows"
+        )));
+    }
+    if components.is_empty()
+        || weights.len() != components.len()
+        || weights.iter().any(|w| !(w.is_finite() && *w >= 0.0))
+        || components
+            .iter()
+            .any(|c| c.tables.len() != d || c.order.len() != d || c.parent.len() != d)
+        || components
+            .iter()
+            .any(|c| c.tables.iter().zip(&cards).any(|(t, &r)| t.card != r))
+    {
+        return Err(Error::Invalid(
+            "components and weights do not match the model's columns".into(),
+        ));
+    }
+    let mut cumulative: Vec<f64> = weights
+        .iter()
+        .scan(0.0, |acc, w| {
+            *acc += w;
+            Some(*acc)
+        })
+        .collect();
+    if let Some(last) = cumulative.iter().rposition(|c| *c > 0.0) {
+        cumulative[last..]
+            .iter_mut()
+            .for_each(|c| *c = f64::INFINITY);
+    }
+    let numeric: Vec<bool> = (0..d).map(|c| model.is_numeric(c)).collect();
+    let tailed: Vec<bool> = (0..d).map(|c| model.has_tail(c)).collect();
+    let first_block = start / SAMPLE_BLOCK as u64;
+    let token = crate::cancel::current();
+    let blocks: Vec<(Vec<Vec<u16>>, Vec<Vec<f64>>, Vec<Vec<u32>>, Vec<u32>)> = (0..count
+        .div_ceil(SAMPLE_BLOCK))
+        .into_par_iter()
+        .map(|b| {
+            let rows = SAMPLE_BLOCK.min(count - b * SAMPLE_BLOCK);
+            let mut codes = vec![vec![0u16; rows]; d];
+            let mut floats = vec![vec![f64::NAN; rows]; d];
+            let mut tails = vec![vec![u32::MAX; rows]; d];
+            let mut which = vec![0u32; rows];
+            if token.cancelled() {
+                return (codes, floats, tails, which);
+            }
+            let mut rng = Rng::new(seed, first_block + b as u64);
+            let mut row_codes = vec![0u16; d];
+            for (r, w) in which.iter_mut().enumerate() {
+                let u = rng.next_f64();
+                let t = cumulative
+                    .partition_point(|c| *c <= u)
+                    .min(components.len() - 1);
+                *w = u32::try_from(t).unwrap_or(u32::MAX);
+                let comp = &components[t];
+                for &c in &comp.order {
+                    let a = comp.parent[c].map_or(0, |p| usize::from(row_codes[p]));
+                    row_codes[c] = comp.tables[c].draw(a, rng.next_f64());
+                }
+                for (c, &x) in row_codes.iter().enumerate() {
+                    codes[c][r] = x;
+                    let float = numeric[c].then_some(&mut floats[c][r]);
+                    let tail = tailed[c].then_some(&mut tails[c][r]);
+                    model.fill_drawn(c, x, &mut rng, float, tail);
+                }
+            }
+            (codes, floats, tails, which)
+        })
+        .collect();
+    token.check()?;
+    let mut out = Sampled {
+        codes: vec![Vec::with_capacity(count); d],
+        floats: numeric
+            .iter()
+            .map(|&n| n.then(|| Vec::with_capacity(count)))
+            .collect(),
+        tails: tailed
+            .iter()
+            .map(|&t| t.then(|| Vec::with_capacity(count)))
+            .collect(),
+    };
+    let mut which = Vec::with_capacity(count);
+    for (codes, floats, tails, w) in blocks {
+        for c in 0..d {
+            out.codes[c].extend(&codes[c]);
+            if let Some(f) = &mut out.floats[c] {
+                f.extend(&floats[c]);
+            }
+            if let Some(t) = &mut out.tails[c] {
+                t.extend(&tails[c]);
+            }
+        }
+        which.extend(w);
+    }
+    Ok((out, which))
 }
 
 #[cfg(test)]

@@ -744,6 +744,46 @@ impl TreeModel {
         self.cpts.get(c).map(|t| t.marginal.as_slice())
     }
 
+    /// What sampling fills in after column `c`'s code `x` is drawn, from `rng`, exactly as
+    /// `sample` does: one draw for a numeric column (the number inside the bin, into `float`)
+    /// and one for a column with a tail table (the tail entry where `x` is "other", into
+    /// `tail`). Mixtures of trees sample through it.
+    pub fn fill_drawn(
+        &self,
+        c: usize,
+        x: u16,
+        rng: &mut Rng,
+        float: Option<&mut f64>,
+        tail: Option<&mut u32>,
+    ) {
+        let Some(column) = self.codebook.columns().get(c) else {
+            return;
+        };
+        if let Some(v) = float {
+            let narrow = self.dtypes.get(c).is_some_and(|t| dtype::is_float32(t));
+            *v = number_at(column, usize::from(x), rng.next_f64(), narrow);
+        }
+        if let (Some(t), Some(Some(tables))) = (tail, self.tails.get(c)) {
+            let u = rng.next_f64();
+            if Some(x) == column.other_code() {
+                *t = u32::try_from(pick(&tables.cdf, u)).unwrap_or(u32::MAX);
+            }
+        }
+    }
+
+    /// Whether column `c` is numeric (sampling draws a number inside its bin).
+    pub fn is_numeric(&self, c: usize) -> bool {
+        self.codebook
+            .columns()
+            .get(c)
+            .is_some_and(|col| matches!(col.values(), Values::Bins { .. }))
+    }
+
+    /// Whether column `c` has a tail table behind "other" (sampling draws an entry from it).
+    pub fn has_tail(&self, c: usize) -> bool {
+        self.tails.get(c).is_some_and(Option::is_some)
+    }
+
     /// The number code `k` of numeric column `c` stands for at uniform draw `u`, as `sample`
     /// draws it (`u = 0.5` gives the bin's median); None when `c` is not numeric or `k` is its
     /// null code.

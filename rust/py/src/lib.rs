@@ -55,6 +55,7 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_class::<mixture::PyMixtureCodes>()?;
     m.add_class::<mixture::PyMixtureComponent>()?;
     m.add("SAMPLE_BLOCK", treewise_core::model::SAMPLE_BLOCK)?;
+    m.add_function(wrap_pyfunction!(mixture::mixture_sample, m)?)?;
     m.add_function(wrap_pyfunction!(chi2_sf, m)?)?;
     m.add_function(wrap_pyfunction!(thread_count, m)?)?;
     m.add("DEBUG_BUILD", cfg!(debug_assertions))?;

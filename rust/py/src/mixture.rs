@@ -6,7 +6,7 @@ use treewise_core::mixture::{self, Component};
 use treewise_core::Error;
 
 use crate::arrow_import::import_batch;
-use crate::buffers::le_bytes;
+use crate::buffers::{codes_and_floats, le_bytes};
 use crate::errors::{detached, to_py};
 use crate::model::PyTreeModel;
 use crate::slices;
@@ -225,4 +225,39 @@ impl PyMixtureComponent {
             .ok_or_else(|| to_py(Error::Invalid(format!("no column {c}"))))?;
         le_bytes(py, &[&table.logp])
     }
+}
+
+/// Sampled rows as bytes: codes, numbers in numeric bins, tail entries, and each row's
+/// component (u32).
+type MixtureSampled<'py> = (
+    Bound<'py, PyBytes>,
+    Vec<Option<Bound<'py, PyBytes>>>,
+    Vec<Option<Bound<'py, PyBytes>>>,
+    Bound<'py, PyBytes>,
+);
+
+/// Draws `count` rows from the mixture of `components` with `weights`, decoded through
+/// `model` (the single tree whose codebook the mixture shares); see `mixture::sample`.
+#[pyfunction]
+pub fn mixture_sample<'py>(
+    py: Python<'py>,
+    model: &PyTreeModel,
+    components: Vec<PyRef<'py, PyMixtureComponent>>,
+    weights: Vec<f64>,
+    start: u64,
+    count: usize,
+    seed: u64,
+) -> PyResult<MixtureSampled<'py>> {
+    let comps: Vec<Component> = components.iter().map(|c| c.inner.clone()).collect();
+    let model = &model.inner;
+    let (sampled, which) = detached(py, || {
+        mixture::sample(&comps, &weights, model, start, count, seed)
+    })?;
+    let (codes, floats) = codes_and_floats(py, &sampled.codes, &sampled.floats)?;
+    let tails = sampled
+        .tails
+        .iter()
+        .map(|t| t.as_ref().map(|t| le_bytes(py, &[t])).transpose())
+        .collect::<PyResult<_>>()?;
+    Ok((codes, floats, tails, le_bytes(py, &[&which])?))
 }
