@@ -119,7 +119,12 @@ class TreeMixture(Params):
     counts in f64 through the same kernel.
 
     One codebook is learned with the ordinary fit (a single ``DependencyTree``, kept as
-    ``single_tree_``), and every row is encoded once. The rows live in memory as codes.
+    ``single_tree_``), and every row is encoded once. The rows live in memory as codes, and
+    ``data`` is read twice (a table, a DataFrame or files; not a one-shot stream).
+
+    Not yet available for a mixture: ``surprisal``, conditional sampling (``given=``),
+    per-column ``predict_proba``/``impute``, ``save``/``load``, the report, the CLI, and
+    streaming or Dask fits.
 
     Parameters
     ----------
