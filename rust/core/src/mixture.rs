@@ -426,6 +426,9 @@ pub fn log_likelihoods(
     Ok(out)
 }
 
+/// One block of sampled rows: codes, numbers in bins and tail entries per column, components.
+type SampledBlock = (Vec<Vec<u16>>, Vec<Vec<f64>>, Vec<Vec<u32>>, Vec<u32>);
+
 /// Draws `count` rows from the mixture, starting at row `start` of the stream of `seed`
 /// (a multiple of [`SAMPLE_BLOCK`]): per row one draw picks the component by `weights`, then
 /// its tree is sampled from the root down, then each column's value behind its code is drawn
@@ -468,7 +471,8 @@ pub fn sample(
             Some(*acc)
         })
         .collect();
-    if let Some(last) = cumulative.iter().rposition(|c| *c > 0.0) {
+    // Rounding must never pick a component of weight zero, nor run off the end.
+    if let Some(last) = weights.iter().rposition(|w| *w > 0.0) {
         cumulative[last..]
             .iter_mut()
             .for_each(|c| *c = f64::INFINITY);
@@ -477,8 +481,7 @@ pub fn sample(
     let tailed: Vec<bool> = (0..d).map(|c| model.has_tail(c)).collect();
     let first_block = start / SAMPLE_BLOCK as u64;
     let token = crate::cancel::current();
-    let blocks: Vec<(Vec<Vec<u16>>, Vec<Vec<f64>>, Vec<Vec<u32>>, Vec<u32>)> = (0..count
-        .div_ceil(SAMPLE_BLOCK))
+    let blocks: Vec<SampledBlock> = (0..count.div_ceil(SAMPLE_BLOCK))
         .into_par_iter()
         .map(|b| {
             let rows = SAMPLE_BLOCK.min(count - b * SAMPLE_BLOCK);
