@@ -5,8 +5,11 @@ from __future__ import annotations
 import itertools
 import math
 import os
+import struct
 import subprocess
 import sys
+import zlib
+from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -14,6 +17,7 @@ import pytest
 import treewise
 from treewise import _core, reference
 from treewise.mixture import _log_mix
+from treewise.mixture_file import mixture_to_bytes
 
 # -- a planted mixture of two known trees (constructed truth) -------------------------------------
 
@@ -259,6 +263,54 @@ def test_samples_of_numeric_and_tail_columns_are_real_values() -> None:
     assert set(drawn.column("k").to_pylist()) <= set(kind.astype(str).tolist())
     x = drawn.column("x").to_numpy()
     assert np.isfinite(x).all() and x.min() >= table.column("x").to_numpy().min()
+
+
+def test_save_and_load_give_the_same_mixture(tmp_path: Path) -> None:
+    train, _, _ = _planted(2_000, seed=16)
+    test, _, _ = _planted(500, seed=17)
+    model = treewise.TreeMixture(2, random_state=0).fit(train)
+    model.save(tmp_path / "m.twmix")
+    loaded = treewise.TreeMixture.load(tmp_path / "m.twmix")
+    np.testing.assert_array_equal(loaded.score_samples(test), model.score_samples(test))
+    np.testing.assert_array_equal(loaded.weights_, model.weights_)
+    assert loaded.lower_bounds_ == model.lower_bounds_
+    assert loaded.sample(300, random_state=2).equals(model.sample(300, random_state=2))
+    for a, b in zip(loaded.components_, model.components_, strict=True):
+        np.testing.assert_array_equal(a.parent_, b.parent_)
+
+
+def _resigned(data: bytes) -> bytes:
+    body = data[:-4]
+    return body + struct.pack("<I", zlib.crc32(body))
+
+
+def test_damaged_or_hostile_mixture_files_are_refused(tmp_path: Path) -> None:
+    train, _, _ = _planted(1_000, seed=18)
+    model = treewise.TreeMixture(2, random_state=0).fit(train)
+    data = mixture_to_bytes(model)
+    d = model.n_features_in_
+    cases = {
+        "flipped": data[:-40] + bytes([data[-40] ^ 1]) + data[-39:],
+        "truncated": _resigned(data[:-30]),
+        "magic": b"X" + data[1:],
+        "trailing": _resigned(data[:-4] + b"\0" * 8 + data[-4:]),
+    }
+    # A cycle: point the first component's root at its own child, re-signed so the checksum
+    # passes and only the structural checks can catch it.
+    root = model._fitted()[0].root
+    child = int(np.flatnonzero(model.components_[0].parent_ == root)[0])
+    tree_len = struct.unpack("<Q", data[20:28])[0]
+    start = 28 + tree_len + 16 + 17 + 4
+    start += 4 + 8 * model.n_iter_ + 8 * 2 + 4  # bounds, weights, the root field
+    parents = np.frombuffer(data[start : start + 8 * d], "<i8").copy()
+    parents[root] = child
+    cases["cycle"] = _resigned(data[:start] + parents.tobytes() + data[start + 8 * d :])
+    for name, bad in cases.items():
+        path = tmp_path / f"{name}.twmix"
+        path.write_bytes(bad)
+        # Source: docs/model-format.md (every field checked before use).
+        with pytest.raises(treewise.CorruptModelError):
+            treewise.TreeMixture.load(path)
 
 
 # -- the numpy reference --------------------------------------------------------------------------

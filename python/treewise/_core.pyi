@@ -216,6 +216,15 @@ class MixtureCodes:
     def log_likelihoods(self, components: list[MixtureComponent]) -> bytes: ...
 
 class MixtureComponent:
+    @staticmethod
+    def from_counts(
+        cards: list[int],
+        root: int,
+        parent: list[int],
+        counts: list[bytes],
+        pair_mi: list[float],
+        alpha: float,
+    ) -> MixtureComponent: ...
     @property
     def root(self) -> int: ...
     @property

@@ -829,7 +829,12 @@ class DependencyTree(ExactCounts, Params):
     @classmethod
     def load(cls, path: str | os.PathLike[str]) -> DependencyTree:
         """Read a model written by :meth:`save`; see :func:`treewise.load`."""
-        model = _core.TreeModel.from_bytes(read_model_file(path))
+        return cls._from_bytes(read_model_file(path))
+
+    @classmethod
+    def _from_bytes(cls, data: bytes) -> DependencyTree:
+        """A model from a model file's bytes, checked in full (a mixture file embeds one)."""
+        model = _core.TreeModel.from_bytes(data)
         names = model.codebook.names
         estimator = cls(columns=list(names), root=names[model.root], alpha=model.alpha)
         for t in model.dtypes:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -23,6 +24,8 @@ from treewise.checks import (
 )
 from treewise.errors import NotFittedError, UnseenCategoryWarning, warn
 from treewise.estimator import DependencyTree
+from treewise.files import read_model_file, write_atomically
+from treewise.mixture_file import mixture_from_bytes, mixture_to_bytes
 from treewise.params import Params
 from treewise.sources import BATCH_ROWS, BatchLoop, check_columns, open_source
 
@@ -123,7 +126,7 @@ class TreeMixture(Params):
     ``data`` is read twice (a table, a DataFrame or files; not a one-shot stream).
 
     Not yet available for a mixture: ``surprisal``, conditional sampling (``given=``),
-    per-column ``predict_proba``/``impute``, ``save``/``load``, the report, the CLI, and
+    per-column ``predict_proba``/``impute``, the report, the CLI, and
     streaming or Dask fits.
 
     Parameters
@@ -239,10 +242,7 @@ class TreeMixture(Params):
             alpha=alpha,
             memory_limit=self.memory_limit,
         ).fit(data)
-        self.single_tree_ = tree
-        self.feature_names_in_ = tree.feature_names_in_
-        self.n_features_in_ = tree.n_features_in_
-        self.codebook_ = tree.codebook_
+        self._adopt_tree(tree)
         codes, _, _ = self._encode(data)
         rng = np.random.default_rng(seed_of(self.random_state))
         best: _Run | None = None
@@ -251,11 +251,29 @@ class TreeMixture(Params):
             if best is None or run.bounds[-1] > best.bounds[-1]:
                 best = run
         assert best is not None
-        self._set_run(best)
+        self._set_run(best, alpha)
         self.n_rows_ = codes.n_rows
         return self
 
-    def _set_run(self, run: _Run) -> None:
+    def _adopt_tree(self, tree: DependencyTree) -> None:
+        self.single_tree_ = tree
+        self.feature_names_in_ = tree.feature_names_in_
+        self.n_features_in_ = tree.n_features_in_
+        self.codebook_ = tree.codebook_
+
+    def _restore(
+        self,
+        tree: DependencyTree,
+        comps: list[_core.MixtureComponent],
+        weights: FloatArray,
+        bounds: list[float],
+        converged: bool,
+    ) -> None:
+        """Set every fitted attribute from a mixture file's parts."""
+        self._adopt_tree(tree)
+        self._set_run(_Run(comps, weights, bounds, converged, 0), float(self.alpha))
+
+    def _set_run(self, run: _Run, alpha: float) -> None:
         names = self.feature_names_in_
         cards = tuple(self.codebook_.cardinalities)
         d = len(cards)
@@ -276,6 +294,7 @@ class TreeMixture(Params):
                 )
             )
         self._components = run.components
+        self._fitted_alpha = alpha
         self.components_ = comps
         self.weights_ = run.weights
         self.lower_bounds_ = run.bounds
@@ -437,6 +456,16 @@ class TreeMixture(Params):
         if return_components:
             return table, np.concatenate(labels)
         return table
+
+    def save(self, path: str | os.PathLike[str]) -> None:
+        """Write the mixture to ``path`` (docs/model-format.md, "Mixture files"), atomically."""
+        self._fitted()
+        write_atomically(path, mixture_to_bytes(self))
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str]) -> TreeMixture:
+        """Read a mixture written by :meth:`save`, checking every field before use."""
+        return mixture_from_bytes(read_model_file(path), cls)
 
     @property
     def n_parameters_(self) -> int:

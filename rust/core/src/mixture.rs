@@ -357,6 +357,67 @@ pub fn fit_component(cards: &[usize], stats: &WeightedStats, alpha: f64) -> Resu
     })
 }
 
+/// A component from stored parts (a mixture file, which may be hostile): every length, link
+/// and count is checked before use. `counts[c]` is column c's weighted counts with its parent
+/// (parent code x code, row-major; the marginal for the root).
+pub fn component_from_counts(
+    cards: &[usize],
+    root: usize,
+    parent: Vec<Option<usize>>,
+    counts: Vec<Vec<f64>>,
+    pair_mi: Vec<f64>,
+    alpha: f64,
+) -> Result<Component> {
+    let d = cards.len();
+    let bad =
+        |what: &str| Error::CorruptModel(format!("a mixture component is inconsistent: {what}"));
+    if d == 0 || parent.len() != d || counts.len() != d || cards.iter().any(|&r| r == 0) {
+        return Err(bad("its column count"));
+    }
+    if pair_mi.len() != pair_count(d) || pair_mi.iter().any(|m| !(m.is_finite() && *m >= 0.0)) {
+        return Err(bad("its pairwise mutual information"));
+    }
+    if !(alpha.is_finite() && alpha >= 0.0) {
+        return Err(bad("its smoothing"));
+    }
+    if root >= d || parent[root].is_some() {
+        return Err(bad("its root"));
+    }
+    if parent
+        .iter()
+        .enumerate()
+        .any(|(c, p)| p.is_some_and(|p| p >= d || p == c))
+    {
+        return Err(bad("a parent link outside the columns"));
+    }
+    let order = tree::forest_order(&parent, root).ok_or_else(|| bad("a cycle"))?;
+    for (c, table) in counts.iter().enumerate() {
+        let rows = parent[c].map_or(1, |p| cards[p]);
+        if Some(table.len()) != rows.checked_mul(cards[c]) {
+            return Err(bad(&format!(
+                "column {c}'s table has {} cells",
+                table.len()
+            )));
+        }
+        if table.iter().any(|n| !(n.is_finite() && *n >= 0.0)) {
+            return Err(bad(&format!("column {c}'s counts")));
+        }
+    }
+    let tables = counts
+        .iter()
+        .zip(cards)
+        .map(|(c, &card)| LogTable::new(c, card, alpha))
+        .collect();
+    Ok(Component {
+        root,
+        parent,
+        order,
+        pair_mi,
+        counts,
+        tables,
+    })
+}
+
 /// ln P(row | component) for every row and component, row-major `n x k`. Codes may be UNSEEN
 /// (scored as `TreeModel` scores them); each row sums its columns in column order.
 pub fn log_likelihoods(

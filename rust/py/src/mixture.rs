@@ -186,6 +186,30 @@ impl PyMixtureCodes {
 
 #[pymethods]
 impl PyMixtureComponent {
+    /// A component from stored parts, checked as a model file is: `counts` are f64 bytes per
+    /// column (parent code x code), `parent` is -1 for the root.
+    #[staticmethod]
+    fn from_counts(
+        cards: Vec<usize>,
+        root: usize,
+        parent: Vec<i64>,
+        counts: Vec<Vec<u8>>,
+        pair_mi: Vec<f64>,
+        alpha: f64,
+    ) -> PyResult<Self> {
+        let parent = parent
+            .into_iter()
+            .map(|p| usize::try_from(p).ok())
+            .collect();
+        let counts = counts
+            .iter()
+            .map(|c| from_le::<8, f64>(c, "counts", f64::from_le_bytes))
+            .collect::<PyResult<Vec<_>>>()?;
+        let inner = mixture::component_from_counts(&cards, root, parent, counts, pair_mi, alpha)
+            .map_err(to_py)?;
+        Ok(PyMixtureComponent { inner })
+    }
+
     #[getter]
     fn root(&self) -> usize {
         self.inner.root
