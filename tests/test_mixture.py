@@ -295,8 +295,8 @@ def test_damaged_or_hostile_mixture_files_are_refused(tmp_path: Path) -> None:
         "magic": b"X" + data[1:],
         "trailing": _resigned(data[:-4] + b"\0" * 8 + data[-4:]),
     }
-    # A cycle: point the first component's root at its own child, re-signed so the checksum
-    # passes and only the structural checks can catch it.
+    # A cycle through the root: give the first component's root its own child as parent,
+    # re-signed so that the checksum passes and only the structural checks can catch it.
     root = model._fitted()[0].root
     child = int(np.flatnonzero(model.components_[0].parent_ == root)[0])
     tree_len = struct.unpack("<Q", data[20:28])[0]

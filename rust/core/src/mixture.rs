@@ -371,7 +371,7 @@ pub fn component_from_counts(
     let d = cards.len();
     let bad =
         |what: &str| Error::CorruptModel(format!("a mixture component is inconsistent: {what}"));
-    if d == 0 || parent.len() != d || counts.len() != d || cards.iter().any(|&r| r == 0) {
+    if d == 0 || parent.len() != d || counts.len() != d || cards.contains(&0) {
         return Err(bad("its column count"));
     }
     if pair_mi.len() != pair_count(d) || pair_mi.iter().any(|m| !(m.is_finite() && *m >= 0.0)) {
@@ -630,6 +630,42 @@ mod tests {
         assert_eq!(s[0].tables[0], vec![0.0, 0.25, 1.0, 0.5]);
         assert_eq!(s[1].tables[0], vec![0.0, 0.75, 0.0, 0.5]);
         Ok(())
+    }
+
+    #[test]
+    fn stored_components_are_checked() {
+        let cards = [2, 2, 2];
+        let counts = || vec![vec![1.0; 2], vec![1.0; 4], vec![1.0; 4]];
+        let ok = component_from_counts(
+            &cards,
+            0,
+            vec![None, Some(0), Some(1)],
+            counts(),
+            vec![0.0; 3],
+            0.5,
+        );
+        assert!(ok.is_ok());
+        // Columns 1 and 2 point at each other: a cycle the root does not reach.
+        let cycle = component_from_counts(
+            &cards,
+            0,
+            vec![None, Some(2), Some(1)],
+            counts(),
+            vec![0.0; 3],
+            0.5,
+        );
+        assert!(matches!(cycle, Err(Error::CorruptModel(_))));
+        let mut negative = counts();
+        negative[1][0] = -1.0;
+        let bad = component_from_counts(
+            &cards,
+            0,
+            vec![None, Some(0), Some(1)],
+            negative,
+            vec![0.0; 3],
+            0.5,
+        );
+        assert!(matches!(bad, Err(Error::CorruptModel(_))));
     }
 
     #[test]
