@@ -53,7 +53,7 @@ fmt: $(STAMP) ## Format Rust and Python sources
 	cargo fmt --all
 	$(VENV)/bin/ruff format python tests bench
 
-bench: build ## Benchmark against the numpy reference; privacy against utility; writes bench/RESULTS.md
+bench: build ## Benchmark against the numpy reference; privacy against utility; mixtures; writes bench/RESULTS.md
 	$(PY) bench/fit_bench.py --write bench/RESULTS.md
 	$(PY) bench/compare.py --write bench/RESULTS.md
 	$(PY) bench/stream_bench.py --rows 20000000 --files 10 --dir bench/.data/stream-20m --write bench/RESULTS.md
@@ -62,6 +62,7 @@ bench: build ## Benchmark against the numpy reference; privacy against utility; 
 	$(PY) bench/fidelity_real.py --write bench/RESULTS.md
 	$(PY) bench/demo_bench.py --write bench/RESULTS.md
 	$(PY) bench/privacy_utility.py --write bench/RESULTS.md
+	$(PY) bench/mixture_bench.py --write bench/RESULTS.md
 
 # Seconds per fuzz target: `make fuzz FUZZ_SECONDS=3600`; fuzz/run.sh also takes target names.
 FUZZ_SECONDS ?= 600

@@ -27,6 +27,7 @@ from treewise.errors import (
     UnseenCategoryWarning,
 )
 from treewise.estimator import DependencyTree
+from treewise.mixture import TreeMixture, choose_n_components
 from treewise.pairstats import PairStats
 
 try:
@@ -71,9 +72,11 @@ __all__ = [
     "SchemaError",
     "TooManyCategoriesError",
     "TreeAugmentedClassifier",
+    "TreeMixture",
     "TreewiseError",
     "UnseenCategoryWarning",
     "__version__",
+    "choose_n_components",
     "compare",
     "load",
     "public_codebook",

@@ -693,21 +693,33 @@ class DependencyTree(ExactCounts, Params):
         for start in range(0, n, step):
             count = min(step, n - start)
             codes, floats, tails = model.sample(start, count, seed, limit)
-            matrix = np.frombuffer(codes, "<u2").reshape(self.n_features_in_, count)
-            values = [None if f is None else np.frombuffer(f, "<f8") for f in floats]
-            picked = [
-                None if t is None else np.frombuffer(t, "<u4").astype(np.int64) for t in tails
-            ]
-            for p in picked:
-                if p is not None:
-                    p[p == 0xFFFFFFFF] = -1
-            arrays = [
-                decode_column(matrix[c], columns[c], values[c], picked[c])
-                for c in range(self.n_features_in_)
-            ]
-            batch = pa.RecordBatch.from_arrays(arrays, schema=schema)
+            batch = self._decode_sampled(codes, floats, tails, count, columns, schema)
             for offset in range(0, count, batch_rows):
                 yield batch.slice(offset, batch_rows)
+
+    def _decode_sampled(
+        self,
+        codes: bytes,
+        floats: list[bytes | None],
+        tails: list[bytes | None],
+        count: int,
+        columns: list[ColumnValues] | None = None,
+        schema: pa.Schema | None = None,
+    ) -> pa.RecordBatch:
+        """Sampled codes (with the numbers in bins and tail entries drawn) as real values."""
+        columns = self._column_values() if columns is None else columns
+        schema = self._output_schema() if schema is None else schema
+        matrix = np.frombuffer(codes, "<u2").reshape(self.n_features_in_, count)
+        values = [None if f is None else np.frombuffer(f, "<f8") for f in floats]
+        picked = [None if t is None else np.frombuffer(t, "<u4").astype(np.int64) for t in tails]
+        for p in picked:
+            if p is not None:
+                p[p == 0xFFFFFFFF] = -1
+        arrays = [
+            decode_column(matrix[c], columns[c], values[c], picked[c])
+            for c in range(self.n_features_in_)
+        ]
+        return pa.RecordBatch.from_arrays(arrays, schema=schema)
 
     # -- questions to the tree (exact inference; see docs/inference.md) ---------------------------
 
@@ -830,7 +842,12 @@ class DependencyTree(ExactCounts, Params):
     @classmethod
     def load(cls, path: str | os.PathLike[str]) -> DependencyTree:
         """Read a model written by :meth:`save`; see :func:`treewise.load`."""
-        model = _core.TreeModel.from_bytes(read_model_file(path))
+        return cls._from_bytes(read_model_file(path))
+
+    @classmethod
+    def _from_bytes(cls, data: bytes) -> DependencyTree:
+        """A model from a model file's bytes, checked in full (a mixture file embeds one)."""
+        model = _core.TreeModel.from_bytes(data)
         names = model.codebook.names
         estimator = cls(columns=list(names), root=names[model.root], alpha=model.alpha)
         for t in model.dtypes:

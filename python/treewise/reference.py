@@ -26,18 +26,23 @@ from treewise.categories import OTHER, Bin
 __all__ = [
     "TAIL_LIMIT",
     "LeftOut",
+    "ReferenceComponent",
     "ReferenceTree",
     "Tail",
     "centre",
     "encode_column",
     "encode_like",
     "fit",
+    "mixture_em_step",
+    "mixture_log_likelihoods",
+    "mixture_m_step",
     "mutual_information",
     "orient",
     "pair_table",
     "sample",
     "score_samples",
     "spanning_tree",
+    "weighted_pair_stats",
 ]
 
 IntArray = npt.NDArray[np.int64]
@@ -234,7 +239,7 @@ def pair_table(codes_i: IntArray, codes_j: IntArray, r_i: int, r_j: int) -> IntA
     return flat.astype(np.int64).reshape(r_i, r_j)
 
 
-def mutual_information(table: IntArray) -> tuple[float, float, int]:
+def mutual_information(table: IntArray | FloatArray) -> tuple[float, float, int]:
     """Mutual information (nats) of a contingency table, with its G statistic and its dof.
 
     Each non-zero cell gives ``(c / N) * log((c * N) / (ma * mb))`` in float64 with ``math.log``;
@@ -524,7 +529,7 @@ def _parent_child_counts(tree: ReferenceTree, c: int) -> IntArray:
     return tree.tables[p, c] if p < c else tree.tables[c, p].T
 
 
-def _smoothed(counts: IntArray, alpha: float) -> tuple[FloatArray, FloatArray]:
+def _smoothed(counts: IntArray | FloatArray, alpha: float) -> tuple[FloatArray, FloatArray]:
     """Smoothed log-probabilities of a table of counts, row by row.
 
     Returns ln((n + alpha) / (n_row + alpha r)) per cell and ln(alpha / (n_row + alpha r)) per
@@ -590,3 +595,107 @@ def sample(tree: ReferenceTree, n: int, alpha: float, rng: np.random.Generator) 
             weights = probs[a] / probs[a].sum()
             codes[c][rows] = rng.choice(len(weights), size=int(rows.sum()), p=weights)
     return codes
+
+
+# -- mixtures of trees (Meila & Jordan, JMLR 2000) -------------------------------------------------
+
+
+@dataclass(frozen=True)
+class ReferenceComponent:
+    """One tree of a mixture: its root, parents (-1 for the root), pair MI and log-tables.
+
+    ``logp[c]`` is ln P(x_c | parent code), rows by the parent's code (one row for the root).
+    """
+
+    root: int
+    parent: IntArray
+    mi: FloatArray
+    logp: list[FloatArray]
+
+
+def weighted_pair_stats(
+    codes: list[IntArray], cards: list[int], resp: FloatArray
+) -> list[tuple[float, list[FloatArray], dict[tuple[int, int], FloatArray]]]:
+    """Per component k: total weight, weighted marginals and weighted ``r_i x r_j`` tables.
+
+    Row t adds ``resp[t, k]`` to every cell it falls in; each cell is summed in row order.
+    """
+    out = []
+    d = len(codes)
+    for k in range(resp.shape[1]):
+        w = resp[:, k]
+        marginals = [
+            np.bincount(codes[c], weights=w, minlength=cards[c]).astype(np.float64)
+            for c in range(d)
+        ]
+        tables = {
+            (i, j): np.bincount(
+                codes[i] * cards[j] + codes[j], weights=w, minlength=cards[i] * cards[j]
+            )
+            .astype(np.float64)
+            .reshape(cards[i], cards[j])
+            for i in range(d)
+            for j in range(i + 1, d)
+        }
+        out.append((float(marginals[0].sum()), marginals, tables))
+    return out
+
+
+def mixture_m_step(
+    codes: list[IntArray], cards: list[int], resp: FloatArray, alpha: float
+) -> list[ReferenceComponent]:
+    """Each component's Chow-Liu tree on weighted mutual information, and its tables.
+
+    The tree is oriented from its centre (as :func:`fit` picks the root), and the tables are
+    smoothed by ``alpha`` from the weighted counts.
+    """
+    d = len(codes)
+    comps = []
+    for _, marginals, tables in weighted_pair_stats(codes, cards, resp):
+        mi = np.zeros((d, d))
+        for (i, j), table in tables.items():
+            mi[i, j] = mi[j, i] = mutual_information(table)[0] if table.sum() > 0 else 0.0
+        edges = spanning_tree(mi)
+        first, _ = orient(d, edges, 0)
+        links = [(int(p), c) for c, p in enumerate(first) if p >= 0]
+        root = centre(d, links, [r > 1 for r in cards])
+        parent, _ = orient(d, links, root)
+        logp = []
+        for c in range(d):
+            p = int(parent[c])
+            counts = marginals[c][None, :] if p < 0 else (tables[p, c] if p < c else tables[c, p].T)
+            logp.append(_smoothed(counts, alpha)[0])
+        comps.append(ReferenceComponent(root, parent, mi, logp))
+    return comps
+
+
+def mixture_log_likelihoods(codes: list[IntArray], comps: list[ReferenceComponent]) -> FloatArray:
+    """Ln P_k(row) for every row and component: the sum over columns, in column order."""
+    n = len(codes[0])
+    out = np.zeros((n, len(comps)))
+    for k, comp in enumerate(comps):
+        total = np.zeros(n)
+        for c, logp in enumerate(comp.logp):
+            p = int(comp.parent[c])
+            a = codes[p] if p >= 0 else np.zeros(n, dtype=np.int64)
+            total = total + logp[a, codes[c]]
+        out[:, k] = total
+    return out
+
+
+def mixture_em_step(
+    codes: list[IntArray], cards: list[int], resp: FloatArray, alpha: float
+) -> tuple[list[ReferenceComponent], FloatArray, FloatArray, FloatArray]:
+    """One EM iteration from responsibilities ``resp`` (rows x K).
+
+    M-step: weights ``w_k = sum_t resp[t, k] / N`` and :func:`mixture_m_step`. E-step: per row
+    ``ln sum_k w_k P_k(row)`` (log-sum-exp) and the new responsibilities ``w_k P_k(row) / P(row)``.
+    Returns the components, the weights, each row's log-likelihood and the responsibilities.
+    """
+    weights = resp.sum(axis=0) / resp.shape[0]
+    comps = mixture_m_step(codes, cards, resp, alpha)
+    with np.errstate(divide="ignore"):
+        joint = mixture_log_likelihoods(codes, comps) + np.log(weights)[None, :]
+    top = joint.max(axis=1)
+    row_ll = top + np.log(np.exp(joint - top[:, None]).sum(axis=1))
+    return comps, weights, row_ll, np.exp(joint - row_ll[:, None])

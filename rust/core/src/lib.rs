@@ -10,6 +10,7 @@ pub mod infer;
 pub mod io;
 pub mod kernels;
 pub mod memory;
+pub mod mixture;
 pub mod model;
 pub mod rng;
 pub mod shape;

@@ -37,17 +37,21 @@ struct Cpt {
 /// ln((n + alpha) / denom) for each count of one row, and ln(alpha / denom) for a value without
 /// a code. A row with no counts and no smoothing is uniform (the alpha -> 0 limit).
 fn smoothed_row(counts: &[u64], alpha: f64) -> (Vec<f64>, f64) {
+    let counts: Vec<f64> = counts.iter().map(|&n| n as f64).collect();
+    smoothed_weighted_row(&counts, alpha)
+}
+
+/// [`smoothed_row`] of weighted counts (a mixture component's); integer counts give the same
+/// bits either way.
+pub fn smoothed_weighted_row(counts: &[f64], alpha: f64) -> (Vec<f64>, f64) {
     let card = counts.len();
-    let total: u64 = counts.iter().sum();
-    let denom = total as f64 + alpha * card as f64;
+    let total: f64 = counts.iter().sum();
+    let denom = total + alpha * card as f64;
     if denom <= 0.0 {
         let uniform = (1.0 / card as f64).ln();
         return (vec![uniform; card], uniform);
     }
-    let logp = counts
-        .iter()
-        .map(|&n| ((n as f64 + alpha) / denom).ln())
-        .collect();
+    let logp = counts.iter().map(|&n| ((n + alpha) / denom).ln()).collect();
     (logp, (alpha / denom).ln())
 }
 
@@ -555,7 +559,11 @@ impl TreeModel {
 
     /// ln P(value | other) per row of each column with a tail table, 0 where the code is not
     /// "other" (a value outside the table gets the table's share for such values).
-    fn tail_terms(&self, batch: &RecordBatch, codes: &[Vec<u16>]) -> Result<Vec<Option<Vec<f64>>>> {
+    pub fn tail_terms(
+        &self,
+        batch: &RecordBatch,
+        codes: &[Vec<u16>],
+    ) -> Result<Vec<Option<Vec<f64>>>> {
         self.codebook
             .columns()
             .par_iter()
@@ -734,6 +742,46 @@ impl TreeModel {
     /// Column `c`'s smoothed marginal ln P(x) (what scoring uses when the parent has no code).
     pub fn log_marginal(&self, c: usize) -> Option<&[f64]> {
         self.cpts.get(c).map(|t| t.marginal.as_slice())
+    }
+
+    /// What sampling fills in after column `c`'s code `x` is drawn, from `rng`, exactly as
+    /// `sample` does: one draw for a numeric column (the number inside the bin, into `float`)
+    /// and one for a column with a tail table (the tail entry where `x` is "other", into
+    /// `tail`). Mixtures of trees sample through it.
+    pub fn fill_drawn(
+        &self,
+        c: usize,
+        x: u16,
+        rng: &mut Rng,
+        float: Option<&mut f64>,
+        tail: Option<&mut u32>,
+    ) {
+        let Some(column) = self.codebook.columns().get(c) else {
+            return;
+        };
+        if let Some(v) = float {
+            let narrow = self.dtypes.get(c).is_some_and(|t| dtype::is_float32(t));
+            *v = number_at(column, usize::from(x), rng.next_f64(), narrow);
+        }
+        if let (Some(t), Some(Some(tables))) = (tail, self.tails.get(c)) {
+            let u = rng.next_f64();
+            if Some(x) == column.other_code() {
+                *t = u32::try_from(pick(&tables.cdf, u)).unwrap_or(u32::MAX);
+            }
+        }
+    }
+
+    /// Whether column `c` is numeric (sampling draws a number inside its bin).
+    pub fn is_numeric(&self, c: usize) -> bool {
+        self.codebook
+            .columns()
+            .get(c)
+            .is_some_and(|col| matches!(col.values(), Values::Bins { .. }))
+    }
+
+    /// Whether column `c` has a tail table behind "other" (sampling draws an entry from it).
+    pub fn has_tail(&self, c: usize) -> bool {
+        self.tails.get(c).is_some_and(Option::is_some)
     }
 
     /// The number code `k` of numeric column `c` stands for at uniform draw `u`, as `sample`

@@ -34,21 +34,41 @@ impl PairWeight {
     }
 }
 
+/// A count in a contingency table: exact (`u64`) or weighted by responsibilities (`f64`, in a
+/// mixture's M-step). Both give the same bits for the same integer values below 2^53.
+pub trait Count: Copy {
+    /// The count as a float.
+    fn value(self) -> f64;
+}
+
+impl Count for u64 {
+    #[inline]
+    fn value(self) -> f64 {
+        self as f64
+    }
+}
+
+impl Count for f64 {
+    #[inline]
+    fn value(self) -> f64 {
+        self
+    }
+}
+
 /// Mutual information of a row-major `ra x rb` table with marginals `ma`, `mb` over `n` rows.
 ///
 /// Each cell gives the term `(c/n)·ln(c·n / (ma·mb))`. The terms are sorted and summed in that
 /// order, so the sum depends only on the multiset of terms: a transposed or permuted table gives
 /// the same bits, and so does the numpy reference, which follows the same recipe.
-pub fn mutual_info(table: &[u64], ma: &[u64], mb: &[u64], n: u64) -> f64 {
+pub fn mutual_info<T: Count>(table: &[T], ma: &[T], mb: &[T], n: T) -> f64 {
     let rb = mb.len();
-    let nf = n as f64;
+    let nf = n.value();
     let mut terms: Vec<f64> = Vec::new();
     for (a, &na) in ma.iter().enumerate() {
         for (b, &nb) in mb.iter().enumerate() {
-            let c = table[a * rb + b];
-            if c > 0 {
-                let cf = c as f64;
-                terms.push((cf / nf) * ((cf * nf) / (na as f64 * nb as f64)).ln());
+            let cf = table[a * rb + b].value();
+            if cf > 0.0 {
+                terms.push((cf / nf) * ((cf * nf) / (na.value() * nb.value())).ln());
             }
         }
     }

@@ -6,6 +6,7 @@ mod codebook;
 mod codebook_builder;
 mod errors;
 mod infer;
+mod mixture;
 mod model;
 mod one_pass;
 mod pair_stats;
@@ -51,7 +52,10 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add("PROVISIONAL_CODES", treewise_core::tally::PROVISIONAL_CODES)?;
     m.add_class::<model::PyTreeModel>()?;
     m.add_class::<infer::PyTreeInference>()?;
+    m.add_class::<mixture::PyMixtureCodes>()?;
+    m.add_class::<mixture::PyMixtureComponent>()?;
     m.add("SAMPLE_BLOCK", treewise_core::model::SAMPLE_BLOCK)?;
+    m.add_function(wrap_pyfunction!(mixture::mixture_sample, m)?)?;
     m.add_function(wrap_pyfunction!(chi2_sf, m)?)?;
     m.add_function(wrap_pyfunction!(thread_count, m)?)?;
     m.add("DEBUG_BUILD", cfg!(debug_assertions))?;

@@ -1,0 +1,545 @@
+"""TreeMixture: a mixture of Chow-Liu trees learned by EM (Meila & Jordan, JMLR 2000)."""
+
+from __future__ import annotations
+
+import math
+import os
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import pyarrow as pa
+
+from treewise import _core
+from treewise.checks import (
+    MAX_CATEGORIES,
+    MAX_SAMPLE_ROWS,
+    RandomState,
+    check_alpha,
+    check_int,
+    check_nonnegative,
+    seed_of,
+)
+from treewise.errors import NotFittedError, UnseenCategoryWarning, warn
+from treewise.estimator import DependencyTree
+from treewise.files import read_model_file, write_atomically
+from treewise.mixture_file import mixture_from_bytes, mixture_to_bytes
+from treewise.params import Params
+from treewise.sources import BATCH_ROWS, BatchLoop, check_columns, open_source
+
+__all__ = ["MixtureComponent", "TreeMixture", "choose_n_components"]
+
+FloatArray = npt.NDArray[np.float64]
+
+#: A component whose responsibilities add up to fewer rows than this is degenerate: it is
+#: reseeded (common practice, as scikit-learn's k-means reseeds empty clusters).
+MIN_COMPONENT_ROWS = 2.0
+#: The most reseeds in one run: data with fewer patterns than components would otherwise reseed
+#: at every iteration and never converge.
+MAX_RESEEDS = 10
+
+
+@dataclass(frozen=True)
+class MixtureComponent:
+    """One fitted tree of a mixture: its weight, structure and smoothed tables.
+
+    ``log_conditional(c)`` is ln P(x_c | x_parent) with rows indexed by the parent's code (one
+    row for the root); ``counts(c)`` the weighted counts it was smoothed from.
+    """
+
+    weight: float
+    feature_names_in_: npt.NDArray[np.object_]
+    root_: int
+    parent_: npt.NDArray[np.intp]
+    pairwise_mutual_info_: FloatArray
+    _core_component: _core.MixtureComponent
+    _cards: tuple[int, ...]
+
+    @property
+    def mutual_info_(self) -> FloatArray:
+        """Each column's weighted mutual information with its parent (0 for the root)."""
+        return np.array(
+            [
+                self.pairwise_mutual_info_[c, p] if p >= 0 else 0.0
+                for c, p in enumerate(self.parent_)
+            ]
+        )
+
+    def _shape(self, c: int) -> tuple[int, int]:
+        p = int(self.parent_[c])
+        return (self._cards[p] if p >= 0 else 1), self._cards[c]
+
+    def counts(self, c: int) -> FloatArray:
+        """Column ``c``'s weighted counts with its parent (parent code x code)."""
+        return np.frombuffer(self._core_component.counts(c), "<f8").reshape(self._shape(c))
+
+    def log_conditional(self, c: int) -> FloatArray:
+        """Column ``c``'s smoothed ln P(code | parent code) (parent code x code)."""
+        return np.frombuffer(self._core_component.log_table(c), "<f8").reshape(self._shape(c))
+
+
+@dataclass
+class _Run:
+    """One EM run from one start."""
+
+    components: list[_core.MixtureComponent]
+    weights: FloatArray
+    bounds: list[float]
+    converged: bool
+    reseeds: int
+
+
+def _log_mix(ll: FloatArray, weights: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Per row, ln sum_k w_k P_k(row) (log-sum-exp) and the responsibilities P(k | row)."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        joint = ll + np.log(weights)[None, :]
+        top = joint.max(axis=1)
+        finite = np.isfinite(top)
+        shifted = np.exp(joint - np.where(finite, top, 0.0)[:, None])
+        total = np.where(finite, top + np.log(shifted.sum(axis=1)), top)
+        resp = shifted / shifted.sum(axis=1, keepdims=True)
+    # A row no component can produce (possible with alpha=0 on new data) gets the weights.
+    resp[~finite] = weights
+    return total, resp
+
+
+class TreeMixture(Params):
+    """A mixture of dependency trees, fitted by expectation-maximisation.
+
+    P(row) = sum_k w_k P_k(row), where each P_k is a Chow-Liu tree with its own structure and
+    tables (Meila & Jordan, "Learning with Mixtures of Trees", JMLR 2000). Each iteration weighs
+    every row by its responsibilities P(k | row) (E-step), then refits each tree to the weighted
+    pair counts and its tables to the weighted counts with smoothing ``alpha`` (M-step).
+
+    The default is soft EM: every row counts for every component by its responsibility. It is
+    the variant that maximises the likelihood; with ``alpha=0`` each iteration provably never
+    lowers it (the M-step is the exact maximum-likelihood tree of the weighted counts).
+    ``algorithm="hard"`` is classification EM (Celeux & Govaert 1992): each row goes wholly to
+    its most responsible component. It maximises the likelihood of the assignments instead,
+    which biases the weights toward large components, and is offered for comparison; it still
+    counts in f64 through the same kernel.
+
+    One codebook is learned with the ordinary fit (a single ``DependencyTree``, kept as
+    ``single_tree_``), and every row is encoded once. The rows live in memory as codes, and
+    ``data`` is read twice (a table, a DataFrame or files; not a one-shot stream).
+
+    Not yet available for a mixture: ``surprisal``, conditional sampling (``given=``),
+    per-column ``predict_proba``/``impute``, the report, the CLI, and
+    streaming or Dask fits.
+
+    Parameters
+    ----------
+    n_components : int, default 2
+        The number of trees K.
+    alpha : float, default 0.5
+        Dirichlet smoothing of every component's tables, as in ``DependencyTree``.
+    max_iter : int, default 100
+        The most EM iterations per start.
+    tol : float, default 1e-4
+        Stop when the mean log-likelihood per row improves by less than this (nats).
+    n_init : int, default 1
+        Starts; the one with the highest final log-likelihood is kept.
+    algorithm : {"soft", "hard"}, default "soft"
+        Soft EM, or hard (classification) EM.
+    init : {"kmeans++", "random"}, default "kmeans++"
+        "kmeans++": K seed rows drawn k-means++-style under Hamming distance on the codes (the
+        next seed with probability proportional to its squared distance to the nearest seed),
+        each row assigned to its nearest seed. "random": responsibilities drawn from a flat
+        Dirichlet.
+    random_state : int, optional
+        Seeds the initialisation. None draws from the operating system.
+    columns, max_categories, n_bins, kinds, memory_limit
+        As in ``DependencyTree``.
+
+    Attributes
+    ----------
+    weights_ : ndarray of shape (K,)
+    components_ : list of MixtureComponent
+    converged_ : bool
+    n_iter_ : int
+        Iterations of the kept start.
+    lower_bound_ : float
+        The kept start's final mean log-likelihood per row of the codes (nats; the shared
+        ln P(value | "other") of tail values is left out, being the same for every parameter).
+        With ``algorithm="hard"``, the mean classification log-likelihood per row,
+        max_k ln w_k P_k(row).
+    lower_bounds_ : list of float
+        That quantity after every iteration of the kept start.
+    n_reseeds_ : int
+        How often a degenerate component was reseeded in the kept start.
+    single_tree_ : DependencyTree
+        The single tree whose codebook the mixture shares.
+    """
+
+    def __init__(
+        self,
+        n_components: int = 2,
+        *,
+        alpha: float = 0.5,
+        max_iter: int = 100,
+        tol: float = 1e-4,
+        n_init: int = 1,
+        algorithm: str = "soft",
+        init: str = "kmeans++",
+        random_state: RandomState = None,
+        columns: Sequence[str] | None = None,
+        max_categories: int = 128,
+        n_bins: int = 10,
+        kinds: Mapping[str, str] | None = None,
+        memory_limit: int | str | None = None,
+    ) -> None:
+        self.n_components = n_components
+        self.alpha = alpha
+        self.max_iter = max_iter
+        self.tol = tol
+        self.n_init = n_init
+        self.algorithm = algorithm
+        self.init = init
+        self.random_state = random_state
+        self.columns = columns
+        self.max_categories = max_categories
+        self.n_bins = n_bins
+        self.kinds = kinds
+        self.memory_limit = memory_limit
+
+    _PARAMS = (
+        "n_components",
+        "alpha",
+        "max_iter",
+        "tol",
+        "n_init",
+        "algorithm",
+        "init",
+        "random_state",
+        "columns",
+        "max_categories",
+        "n_bins",
+        "kinds",
+        "memory_limit",
+    )
+
+    # -- fitting ---------------------------------------------------------------------------------
+
+    def fit(self, data: Any, y: None = None) -> TreeMixture:
+        """Fit the mixture to ``data`` (any input ``DependencyTree.fit`` takes)."""
+        k = check_int("n_components", self.n_components, 1, 1024)
+        alpha = check_alpha(self.alpha)
+        max_iter = check_int("max_iter", self.max_iter, 1, 1_000_000)
+        tol = check_nonnegative("tol", self.tol)
+        n_init = check_int("n_init", self.n_init, 1, 10_000)
+        if self.algorithm not in ("soft", "hard"):
+            raise ValueError(f"algorithm must be 'soft' or 'hard', got {self.algorithm!r}")
+        if self.init not in ("kmeans++", "random"):
+            raise ValueError(f"init must be 'kmeans++' or 'random', got {self.init!r}")
+        check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
+        tree = DependencyTree(
+            columns=self.columns,
+            max_categories=self.max_categories,
+            n_bins=self.n_bins,
+            kinds=self.kinds,
+            alpha=alpha,
+            memory_limit=self.memory_limit,
+        ).fit(data)
+        self._adopt_tree(tree)
+        codes, _, _ = self._encode(data)
+        rng = np.random.default_rng(seed_of(self.random_state))
+        best: _Run | None = None
+        for _ in range(n_init):
+            run = self._em(codes, k, alpha, max_iter, tol, rng)
+            if best is None or run.bounds[-1] > best.bounds[-1]:
+                best = run
+        assert best is not None
+        self._set_run(best, alpha)
+        self.n_rows_ = codes.n_rows
+        return self
+
+    def _adopt_tree(self, tree: DependencyTree) -> None:
+        self.single_tree_ = tree
+        self.feature_names_in_ = tree.feature_names_in_
+        self.n_features_in_ = tree.n_features_in_
+        self.codebook_ = tree.codebook_
+
+    def _restore(
+        self,
+        tree: DependencyTree,
+        comps: list[_core.MixtureComponent],
+        weights: FloatArray,
+        bounds: list[float],
+        converged: bool,
+    ) -> None:
+        """Set every fitted attribute from a mixture file's parts."""
+        self._adopt_tree(tree)
+        self._set_run(_Run(comps, weights, bounds, converged, 0), float(self.alpha))
+
+    def _set_run(self, run: _Run, alpha: float) -> None:
+        names = self.feature_names_in_
+        cards = tuple(self.codebook_.cardinalities)
+        d = len(cards)
+        upper = np.triu_indices(d, k=1)
+        comps = []
+        for w, comp in zip(run.weights, run.components, strict=True):
+            pairwise = np.zeros((d, d))
+            pairwise[upper] = comp.pair_mi
+            comps.append(
+                MixtureComponent(
+                    float(w),
+                    names,
+                    comp.root,
+                    np.array(comp.parent, dtype=np.intp),
+                    pairwise + pairwise.T,
+                    comp,
+                    cards,
+                )
+            )
+        self._components = run.components
+        self._fitted_alpha = alpha
+        self.components_ = comps
+        self.weights_ = run.weights
+        self.lower_bounds_ = run.bounds
+        self.lower_bound_ = run.bounds[-1]
+        self.n_iter_ = len(run.bounds)
+        self.converged_ = run.converged
+        self.n_reseeds_ = run.reseeds
+
+    def _encode(self, data: Any) -> tuple[_core.MixtureCodes, FloatArray, npt.NDArray[np.int64]]:
+        """Every row of ``data`` as codes (in memory), its tail term and unseen counts."""
+        tree = self.single_tree_
+        names = [str(n) for n in tree.feature_names_in_]
+        source = open_source(data)
+        check_columns(source.names, names, source.description)
+        batches = []
+        with BatchLoop(source, names, BATCH_ROWS, None, "encoding") as loop:
+            for batch in loop:
+                batches.append(batch.select(names))
+        table = pa.Table.from_batches(batches).combine_chunks()
+        merged = table.to_batches()
+        batch = merged[0] if merged else pa.RecordBatch.from_pylist([], schema=table.schema)
+        codes, tails, unseen = _core.MixtureCodes.encode(tree._fitted(), batch)
+        return codes, np.frombuffer(tails, "<f8"), np.array(unseen, dtype=np.int64)
+
+    def _init_resp(self, codes: _core.MixtureCodes, k: int, rng: np.random.Generator) -> FloatArray:
+        n = codes.n_rows
+        if self.init == "random":
+            return rng.dirichlet(np.ones(k), size=n)
+        matrix = np.stack(
+            [np.frombuffer(codes.column(c), "<u2") for c in range(self.n_features_in_)]
+        )
+        # k-means++ seeding (Arthur & Vassilvitskii 2007) under Hamming distance on the codes.
+        seeds = [int(rng.integers(n))]
+        nearest = (matrix != matrix[:, seeds[0], None]).sum(axis=0).astype(np.float64)
+        distances = [nearest.copy()]
+        for _ in range(1, k):
+            mass = nearest**2
+            total = mass.sum()
+            pick = int(rng.integers(n)) if total == 0 else int(rng.choice(n, p=mass / total))
+            seeds.append(pick)
+            dist = (matrix != matrix[:, pick, None]).sum(axis=0).astype(np.float64)
+            distances.append(dist)
+            nearest = np.minimum(nearest, dist)
+        assign = np.argmin(np.stack(distances, axis=1), axis=1)
+        resp = np.zeros((n, k))
+        resp[np.arange(n), assign] = 1.0
+        return resp
+
+    def _em(
+        self,
+        codes: _core.MixtureCodes,
+        k: int,
+        alpha: float,
+        max_iter: int,
+        tol: float,
+        rng: np.random.Generator,
+    ) -> _Run:
+        n = codes.n_rows
+        resp = self._init_resp(codes, k, rng)
+        row_ll: FloatArray | None = None
+        bounds: list[float] = []
+        reseeds = 0
+        converged = False
+        for _ in range(max_iter):
+            reseeded = 0
+            if reseeds < MAX_RESEEDS:
+                resp, reseeded = _reseed(resp, row_ll, rng)
+            reseeds += reseeded
+            # M-step: weights and trees from the responsibilities.
+            weights = resp.sum(axis=0) / n
+            comps = codes.fit_components(np.ascontiguousarray(resp).tobytes(), k, alpha)
+            # E-step: every row under every tree; the bound of the parameters just fitted.
+            ll = np.frombuffer(codes.log_likelihoods(comps), "<f8").reshape(n, k)
+            row_ll, resp = _log_mix(ll, weights)
+            if self.algorithm == "hard":
+                # Classification step: each row wholly to its most responsible component
+                # (ties to the lower index); the bound is the classification likelihood.
+                best = np.argmax(resp, axis=1)
+                with np.errstate(divide="ignore"):
+                    row_ll = ll[np.arange(n), best] + np.log(weights)[best]
+                resp = np.zeros_like(resp)
+                resp[np.arange(n), best] = 1.0
+            bounds.append(float(row_ll.mean()))
+            if len(bounds) > 1 and not reseeded and abs(bounds[-1] - bounds[-2]) < tol:
+                converged = True
+                break
+        return _Run(comps, weights, bounds, converged, reseeds)
+
+    # -- the model as a distribution -------------------------------------------------------------
+
+    def _fitted(self) -> list[_core.MixtureComponent]:
+        comps: list[_core.MixtureComponent] | None = getattr(self, "_components", None)
+        if comps is None:
+            raise NotFittedError("this TreeMixture is not fitted yet; call fit(data) first")
+        return comps
+
+    def _mixed(self, data: Any) -> tuple[FloatArray, FloatArray]:
+        comps = self._fitted()
+        codes, tails, unseen = self._encode(data)
+        ll = np.frombuffer(codes.log_likelihoods(comps), "<f8").reshape(codes.n_rows, len(comps))
+        total, resp = _log_mix(ll, self.weights_)
+        if unseen.any():
+            names = [str(n) for n in self.feature_names_in_]
+            report = ", ".join(f"{names[c]!r}: {m}" for c, m in enumerate(unseen) if m)
+            warn(
+                f"values never seen in fitting (scored with the smoothing mass, "
+                f"alpha={self.alpha}): {report}",
+                UnseenCategoryWarning,
+            )
+        return total + tails, resp
+
+    def score_samples(self, data: Any) -> FloatArray:
+        """The log-probability of each row under the mixture, in nats.
+
+        The log-sum-exp over components of ln w_k + ln P_k(row), plus ln P(value | "other")
+        for tail values, as a tree scores them. Unseen values are scored as a tree scores them.
+        """
+        return self._mixed(data)[0]
+
+    def score(self, data: Any, y: None = None) -> float:
+        """The total log-likelihood of ``data`` (nats), as ``DependencyTree.score``."""
+        return float(self.score_samples(data).sum())
+
+    def predict_proba(self, data: Any) -> FloatArray:
+        """The responsibilities P(component k | row), shape (rows, K); rows sum to 1."""
+        return self._mixed(data)[1]
+
+    def predict(self, data: Any) -> npt.NDArray[np.intp]:
+        """Each row's most responsible component."""
+        return np.asarray(np.argmax(self.predict_proba(data), axis=1), dtype=np.intp)
+
+    def sample(
+        self, n: int, random_state: RandomState = None, *, return_components: bool = False
+    ) -> Any:
+        """Draw ``n`` synthetic rows: a component by its weight, then a row from its tree.
+
+        Values come back as ``DependencyTree.sample`` gives them (numbers drawn inside their
+        bin, rare values behind "other" by their counts), with the fitted names and types. The
+        same ``random_state`` gives the same rows on any number of threads. With
+        ``return_components``, also returns each row's component (as scikit-learn's
+        ``GaussianMixture.sample`` returns labels).
+        """
+        comps = self._fitted()
+        n = check_int("n", n, 0, MAX_SAMPLE_ROWS)
+        tree = self.single_tree_
+        model = tree._fitted()
+        seed = seed_of(random_state)
+        weights = [float(w) for w in self.weights_]
+        step = _core.SAMPLE_BLOCK * 64
+        batches, labels = [], []
+        for start in range(0, max(n, 1), step):
+            count = min(step, n - start)
+            codes, floats, tails, which = _core.mixture_sample(
+                model, comps, weights, start, count, seed
+            )
+            batches.append(tree._decode_sampled(codes, floats, tails, count))
+            labels.append(np.frombuffer(which, "<u4").astype(np.intp))
+        table = pa.Table.from_batches(batches, schema=batches[0].schema)
+        if return_components:
+            return table, np.concatenate(labels)
+        return table
+
+    def save(self, path: str | os.PathLike[str]) -> None:
+        """Write the mixture to ``path`` (docs/model-format.md, "Mixture files"), atomically."""
+        self._fitted()
+        write_atomically(path, mixture_to_bytes(self))
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str]) -> TreeMixture:
+        """Read a mixture written by :meth:`save`, checking every field before use."""
+        return mixture_from_bytes(read_model_file(path), cls)
+
+    @property
+    def n_parameters_(self) -> int:
+        """Free parameters: K - 1 weights plus each tree's (as ``DependencyTree`` counts them)."""
+        self._fitted()
+        cards = self.codebook_.cardinalities
+        total = len(self.components_) - 1
+        for comp in self.components_:
+            total += sum(r - 1 for r in cards)
+            total += sum(
+                (cards[p] - 1) * (cards[c] - 1) for c, p in enumerate(comp.parent_) if p >= 0
+            )
+        return total
+
+    def bic(self, data: Any) -> float:
+        """-2 ln L + p ln N on ``data`` (lower is better); the structures are not counted."""
+        scores = self.score_samples(data)
+        return float(-2.0 * scores.sum() + self.n_parameters_ * math.log(len(scores)))
+
+
+def _reseed(
+    resp: FloatArray, row_ll: FloatArray | None, rng: np.random.Generator
+) -> tuple[FloatArray, int]:
+    """Reseed every degenerate component; returns the responsibilities and how many.
+
+    A component with fewer than MIN_COMPONENT_ROWS rows of weight is given the rows the mixture
+    explains worst (random rows before the first E-step).
+    """
+    n, k = resp.shape
+    reseeded = 0
+    for j in range(k):
+        if resp[:, j].sum() >= MIN_COMPONENT_ROWS:
+            continue
+        take = max(int(MIN_COMPONENT_ROWS), n // (2 * k))
+        if take >= n:
+            continue
+        rows = (
+            rng.permutation(n)[:take]
+            if row_ll is None
+            else np.argsort(row_ll, kind="stable")[:take]
+        )
+        resp = resp.copy()
+        resp[rows] = 0.0
+        resp[rows, j] = 1.0
+        reseeded += 1
+    return resp, reseeded
+
+
+def choose_n_components(
+    data: Any,
+    candidates: Sequence[int],
+    *,
+    criterion: str = "heldout",
+    validation: Any = None,
+    **params: Any,
+) -> tuple[int, dict[int, float]]:
+    """Fit a ``TreeMixture`` for each K in ``candidates`` and pick one.
+
+    ``criterion="heldout"`` keeps the K with the highest mean log-likelihood per row of
+    ``validation`` (required); ``"bic"`` the K with the lowest BIC on ``data``. Returns the
+    chosen K and each candidate's figure. ``params`` go to every ``TreeMixture``.
+    """
+    if criterion not in ("heldout", "bic"):
+        raise ValueError(f"criterion must be 'heldout' or 'bic', got {criterion!r}")
+    if criterion == "heldout" and validation is None:
+        raise ValueError("criterion='heldout' needs validation= data")
+    figures: dict[int, float] = {}
+    for k in candidates:
+        model = TreeMixture(n_components=k, **params).fit(data)
+        if criterion == "bic":
+            figures[k] = model.bic(data)
+        else:
+            figures[k] = float(model.score_samples(validation).mean())
+    pick = min if criterion == "bic" else max
+    return pick(
+        figures, key=lambda k: (figures[k], k) if pick is min else (figures[k], -k)
+    ), figures

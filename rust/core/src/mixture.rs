@@ -1,0 +1,681 @@
+//! Mixtures of trees (Meilă & Jordan, JMLR 2000): weighted pair counts from responsibilities,
+//! each component's Chow–Liu tree and smoothed tables, and every row's log-likelihood under each.
+
+use rayon::prelude::*;
+
+use crate::codebook::UNSEEN;
+use crate::error::{Error, Result};
+use crate::model::{smoothed_weighted_row, Sampled, TreeModel, SAMPLE_BLOCK};
+use crate::rng::Rng;
+use crate::stats::{pair_count, pairs};
+use crate::tree;
+use crate::weights::mutual_info;
+
+/// Rows per block of the weighted counting: one block of responsibilities stays in cache while a
+/// task runs over its pairs.
+const ROW_BLOCK: usize = 4096;
+/// Rows per chunk of the log-likelihood pass handed to one thread.
+const SCORE_CHUNK: usize = 8192;
+/// The most f64 cells the weighted tables of one call may hold (16 GiB).
+pub const MAX_WEIGHTED_CELLS: u64 = 1 << 31;
+
+/// One component's weighted statistics: total weight, marginals and pair tables (f64).
+#[derive(Clone, Debug, PartialEq)]
+pub struct WeightedStats {
+    /// The sum of the component's responsibilities.
+    pub n: f64,
+    /// Per column, the weighted count of each code.
+    pub marginals: Vec<Vec<f64>>,
+    /// Per pair (i < j, pair-index order), the row-major `r_i x r_j` weighted table.
+    pub tables: Vec<Vec<f64>>,
+}
+
+/// Checks the code columns against the cardinalities: equal lengths, every code below its
+/// column's cardinality (UNSEEN allowed only when `lenient`). Returns the row count.
+fn check_codes(codes: &[Vec<u16>], cards: &[usize], lenient: bool) -> Result<usize> {
+    if codes.len() != cards.len() || codes.is_empty() {
+        return Err(Error::Invalid(format!(
+            "{} code columns for {} cardinalities (at least one column is needed)",
+            codes.len(),
+            cards.len()
+        )));
+    }
+    let n = codes[0].len();
+    for (c, (col, &card)) in codes.iter().zip(cards).enumerate() {
+        if card == 0 || card > usize::from(UNSEEN) {
+            return Err(Error::Invalid(format!(
+                "column {c} has cardinality {card}; codes run from 1 to {UNSEEN} values"
+            )));
+        }
+        if col.len() != n {
+            return Err(Error::Invalid(format!(
+                "code column {c} has {} rows, column 0 has {n}",
+                col.len()
+            )));
+        }
+        let bad = col
+            .par_iter()
+            .any(|&x| usize::from(x) >= card && !(lenient && x == UNSEEN));
+        if bad {
+            return Err(Error::Invalid(format!(
+                "code column {c} holds a code outside 0..{card}"
+            )));
+        }
+    }
+    Ok(n)
+}
+
+/// Per component, the weighted marginals and pair tables of the code columns, each row weighted
+/// by its responsibilities `resp` (row-major, `n x k`, finite and non-negative).
+///
+/// Every cell is a sum over rows in row order, computed by one thread, so the result is the
+/// same bits for any number of threads.
+pub fn weighted_stats(
+    codes: &[Vec<u16>],
+    cards: &[usize],
+    resp: &[f64],
+    k: usize,
+) -> Result<Vec<WeightedStats>> {
+    let n = check_codes(codes, cards, false)?;
+    if k == 0 || Some(resp.len()) != n.checked_mul(k) {
+        return Err(Error::Invalid(format!(
+            "responsibilities hold {} values, not {n} rows x {k} components",
+            resp.len()
+        )));
+    }
+    if resp.par_iter().any(|r| !(r.is_finite() && *r >= 0.0)) {
+        return Err(Error::Invalid(
+            "responsibilities must be finite and non-negative".into(),
+        ));
+    }
+    let d = cards.len();
+    let all = pairs(d);
+    let cells: u64 = all
+        .iter()
+        .map(|&(i, j)| (cards[i] * cards[j]) as u64)
+        .sum::<u64>()
+        .saturating_mul(k as u64);
+    if cells > MAX_WEIGHTED_CELLS {
+        return Err(Error::ResourceLimit(format!(
+            "the weighted pair tables of {k} components would hold {cells} cells, more than \
+             {MAX_WEIGHTED_CELLS}; use fewer components, columns or categories"
+        )));
+    }
+    let token = crate::cancel::current();
+    // Marginals: one task per column, rows in order.
+    let marginals: Vec<Vec<f64>> = (0..d)
+        .into_par_iter()
+        .map(|c| {
+            let mut m = vec![0.0; cards[c] * k];
+            for (&x, r) in codes[c].iter().zip(resp.chunks_exact(k)) {
+                let cell = &mut m[usize::from(x) * k..usize::from(x) * k + k];
+                cell.iter_mut().zip(r).for_each(|(m, r)| *m += r);
+            }
+            m
+        })
+        .collect();
+    // Pair tables, cell-major with the k components inner. Pairs are cut into tasks; a task
+    // walks the rows block by block and, inside a block, its pairs, so the block's
+    // responsibilities are read from cache.
+    let tasks = (rayon::current_num_threads() * 8).max(1);
+    let per_task = all.len().div_ceil(tasks).max(1);
+    let tables: Vec<Vec<f64>> = all
+        .par_chunks(per_task)
+        .flat_map_iter(|chunk| {
+            let mut out: Vec<Vec<f64>> = chunk
+                .iter()
+                .map(|&(i, j)| vec![0.0; cards[i] * cards[j] * k])
+                .collect();
+            for start in (0..n).step_by(ROW_BLOCK) {
+                if token.cancelled() {
+                    break;
+                }
+                let end = (start + ROW_BLOCK).min(n);
+                let block = &resp[start * k..end * k];
+                for (&(i, j), table) in chunk.iter().zip(out.iter_mut()) {
+                    let (xs, ys) = (&codes[i][start..end], &codes[j][start..end]);
+                    // A fixed K lets the compiler unroll the per-cell additions.
+                    match k {
+                        1 => add_rows::<1>(table, xs, ys, cards[j], block),
+                        2 => add_rows::<2>(table, xs, ys, cards[j], block),
+                        3 => add_rows::<3>(table, xs, ys, cards[j], block),
+                        4 => add_rows::<4>(table, xs, ys, cards[j], block),
+                        5 => add_rows::<5>(table, xs, ys, cards[j], block),
+                        6 => add_rows::<6>(table, xs, ys, cards[j], block),
+                        8 => add_rows::<8>(table, xs, ys, cards[j], block),
+                        16 => add_rows::<16>(table, xs, ys, cards[j], block),
+                        _ => add_rows_any(table, xs, ys, cards[j], block, k),
+                    }
+                }
+            }
+            out
+        })
+        .collect();
+    token.check()?;
+    // Split the component-inner layout into one WeightedStats per component.
+    let split =
+        |v: &[f64], t: usize| -> Vec<f64> { v.iter().skip(t).step_by(k).copied().collect() };
+    Ok((0..k)
+        .map(|t| {
+            let marginals: Vec<Vec<f64>> = marginals.iter().map(|m| split(m, t)).collect();
+            let n = marginals[0].iter().sum();
+            WeightedStats {
+                n,
+                marginals,
+                tables: tables.iter().map(|tab| split(tab, t)).collect(),
+            }
+        })
+        .collect())
+}
+
+/// Adds each row's `K` responsibilities to its cell of a pair table (cell-major, K inner).
+#[inline]
+fn add_rows<const K: usize>(table: &mut [f64], xs: &[u16], ys: &[u16], rb: usize, block: &[f64]) {
+    for ((&a, &b), r) in xs.iter().zip(ys).zip(block.chunks_exact(K)) {
+        let at = (usize::from(a) * rb + usize::from(b)) * K;
+        let cell = table.get_mut(at..at + K).map(<&mut [f64; K]>::try_from);
+        if let (Some(Ok(cell)), Ok(r)) = (cell, <&[f64; K]>::try_from(r)) {
+            cell.iter_mut().zip(r).for_each(|(t, r)| *t += r);
+        }
+    }
+}
+
+/// [`add_rows`] for any number of components.
+fn add_rows_any(table: &mut [f64], xs: &[u16], ys: &[u16], rb: usize, block: &[f64], k: usize) {
+    for ((&a, &b), r) in xs.iter().zip(ys).zip(block.chunks_exact(k)) {
+        let at = (usize::from(a) * rb + usize::from(b)) * k;
+        let cell = &mut table[at..at + k];
+        cell.iter_mut().zip(r).for_each(|(t, r)| *t += r);
+    }
+}
+
+/// One column's smoothed log-probabilities within a component: ln P(x | a) row-major by parent
+/// code (one row for a root), ln P(x) for a parent without a code, and the mass of a value
+/// without a code (as `TreeModel` scores them).
+#[derive(Clone, Debug, PartialEq)]
+pub struct LogTable {
+    pub card: usize,
+    pub logp: Vec<f64>,
+    /// Cumulative probabilities per row, for sampling (+inf from the last possible code on).
+    pub cdf: Vec<f64>,
+    pub unseen: Vec<f64>,
+    pub marginal: Vec<f64>,
+    pub marginal_unseen: f64,
+}
+
+impl LogTable {
+    fn new(counts: &[f64], card: usize, alpha: f64) -> LogTable {
+        let mut logp = Vec::with_capacity(counts.len());
+        let mut unseen = Vec::new();
+        let mut sums = vec![0.0; card];
+        let mut cdf = Vec::with_capacity(counts.len());
+        for row in counts.chunks_exact(card) {
+            let (lp, un) = smoothed_weighted_row(row, alpha);
+            let start = cdf.len();
+            let mut acc = 0.0;
+            for l in &lp {
+                acc += l.exp();
+                cdf.push(acc);
+            }
+            // As TreeModel's tables: rounding never picks a code of probability zero.
+            if let Some(last) = lp.iter().rposition(|l| *l > f64::NEG_INFINITY) {
+                cdf[start + last..]
+                    .iter_mut()
+                    .for_each(|c| *c = f64::INFINITY);
+            }
+            logp.extend(lp);
+            unseen.push(un);
+            sums.iter_mut().zip(row).for_each(|(s, n)| *s += n);
+        }
+        let (marginal, marginal_unseen) = smoothed_weighted_row(&sums, alpha);
+        LogTable {
+            card,
+            logp,
+            cdf,
+            unseen,
+            marginal,
+            marginal_unseen,
+        }
+    }
+
+    /// The code drawn at uniform `u` given parent code `a`.
+    #[inline]
+    fn draw(&self, a: usize, u: f64) -> u16 {
+        let row = self
+            .cdf
+            .get(a * self.card..(a + 1) * self.card)
+            .unwrap_or(&[]);
+        let k = row.partition_point(|c| *c <= u);
+        u16::try_from(k.min(self.card.saturating_sub(1))).unwrap_or(0)
+    }
+
+    #[inline]
+    fn log_prob(&self, a: u16, x: u16) -> f64 {
+        if a == UNSEEN {
+            if x == UNSEEN {
+                self.marginal_unseen
+            } else {
+                self.marginal[usize::from(x)]
+            }
+        } else if x == UNSEEN {
+            self.unseen[usize::from(a)]
+        } else {
+            self.logp[usize::from(a) * self.card + usize::from(x)]
+        }
+    }
+}
+
+/// One fitted component: its tree and its tables.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Component {
+    pub root: usize,
+    pub parent: Vec<Option<usize>>,
+    /// Breadth-first order: every parent before its children.
+    pub order: Vec<usize>,
+    /// Weighted mutual information of every pair (nats), in pair-index order.
+    pub pair_mi: Vec<f64>,
+    /// Per column, its weighted counts with its parent (rows: the parent's codes).
+    pub counts: Vec<Vec<f64>>,
+    pub tables: Vec<LogTable>,
+}
+
+/// The Chow–Liu tree of weighted statistics under the strict edge order, oriented from the
+/// centre (as `fit_model` does), with tables smoothed by `alpha`.
+pub fn fit_component(cards: &[usize], stats: &WeightedStats, alpha: f64) -> Result<Component> {
+    let d = cards.len();
+    if !(alpha.is_finite() && alpha >= 0.0) {
+        return Err(Error::Invalid(format!(
+            "alpha must be a finite number >= 0, got {alpha}"
+        )));
+    }
+    let all = pairs(d);
+    let shaped = stats.marginals.len() == d
+        && stats.tables.len() == pair_count(d)
+        && cards.iter().all(|&r| r > 0)
+        && stats
+            .marginals
+            .iter()
+            .zip(cards)
+            .all(|(m, &r)| m.len() == r)
+        && all
+            .iter()
+            .zip(&stats.tables)
+            .all(|(&(i, j), t)| t.len() == cards[i] * cards[j]);
+    if !shaped {
+        return Err(Error::Invalid(
+            "weighted statistics of another shape than the cardinalities".into(),
+        ));
+    }
+    let pair_mi: Vec<f64> = all
+        .par_iter()
+        .zip(stats.tables.par_iter())
+        .map(|(&(i, j), table)| {
+            if stats.n > 0.0 {
+                mutual_info(table, &stats.marginals[i], &stats.marginals[j], stats.n)
+            } else {
+                0.0
+            }
+        })
+        .collect();
+    let edges = tree::kruskal(d, &pair_mi, |_| true);
+    let first = tree::orient(d, &edges, 0);
+    let edges: Vec<(usize, usize)> = first
+        .parent
+        .iter()
+        .enumerate()
+        .filter_map(|(c, p)| p.map(|p| (p, c)))
+        .collect();
+    let eligible: Vec<bool> = cards.iter().map(|r| *r > 1).collect();
+    let root = tree::centre(d, &edges, &eligible);
+    let oriented = tree::orient(d, &edges, root);
+    let (parent, order) = (oriented.parent, oriented.order);
+    let counts: Vec<Vec<f64>> = parent
+        .iter()
+        .enumerate()
+        .map(|(c, p)| match *p {
+            None => stats.marginals[c].clone(),
+            Some(p) if p < c => stats.tables[crate::stats::pair_index(d, p, c)].clone(),
+            Some(p) => {
+                let t = &stats.tables[crate::stats::pair_index(d, c, p)];
+                let (rc, rp) = (cards[c], cards[p]);
+                (0..rp * rc).map(|k| t[(k % rc) * rp + k / rc]).collect()
+            }
+        })
+        .collect();
+    let tables = counts
+        .iter()
+        .zip(cards)
+        .map(|(c, &card)| LogTable::new(c, card, alpha))
+        .collect();
+    Ok(Component {
+        root,
+        parent,
+        order,
+        pair_mi,
+        counts,
+        tables,
+    })
+}
+
+/// A component from stored parts (a mixture file, which may be hostile): every length, link
+/// and count is checked before use. `counts[c]` is column c's weighted counts with its parent
+/// (parent code x code, row-major; the marginal for the root).
+pub fn component_from_counts(
+    cards: &[usize],
+    root: usize,
+    parent: Vec<Option<usize>>,
+    counts: Vec<Vec<f64>>,
+    pair_mi: Vec<f64>,
+    alpha: f64,
+) -> Result<Component> {
+    let d = cards.len();
+    let bad =
+        |what: &str| Error::CorruptModel(format!("a mixture component is inconsistent: {what}"));
+    if d == 0 || parent.len() != d || counts.len() != d || cards.contains(&0) {
+        return Err(bad("its column count"));
+    }
+    if pair_mi.len() != pair_count(d) || pair_mi.iter().any(|m| !(m.is_finite() && *m >= 0.0)) {
+        return Err(bad("its pairwise mutual information"));
+    }
+    if !(alpha.is_finite() && alpha >= 0.0) {
+        return Err(bad("its smoothing"));
+    }
+    if root >= d || parent[root].is_some() {
+        return Err(bad("its root"));
+    }
+    if parent
+        .iter()
+        .enumerate()
+        .any(|(c, p)| p.is_some_and(|p| p >= d || p == c))
+    {
+        return Err(bad("a parent link outside the columns"));
+    }
+    let order = tree::forest_order(&parent, root).ok_or_else(|| bad("a cycle"))?;
+    for (c, table) in counts.iter().enumerate() {
+        let rows = parent[c].map_or(1, |p| cards[p]);
+        if Some(table.len()) != rows.checked_mul(cards[c]) {
+            return Err(bad(&format!(
+                "column {c}'s table has {} cells",
+                table.len()
+            )));
+        }
+        if table.iter().any(|n| !(n.is_finite() && *n >= 0.0)) {
+            return Err(bad(&format!("column {c}'s counts")));
+        }
+    }
+    let tables = counts
+        .iter()
+        .zip(cards)
+        .map(|(c, &card)| LogTable::new(c, card, alpha))
+        .collect();
+    Ok(Component {
+        root,
+        parent,
+        order,
+        pair_mi,
+        counts,
+        tables,
+    })
+}
+
+/// ln P(row | component) for every row and component, row-major `n x k`. Codes may be UNSEEN
+/// (scored as `TreeModel` scores them); each row sums its columns in column order.
+pub fn log_likelihoods(
+    codes: &[Vec<u16>],
+    cards: &[usize],
+    components: &[Component],
+) -> Result<Vec<f64>> {
+    let n = check_codes(codes, cards, true)?;
+    let k = components.len();
+    let d = cards.len();
+    let fits = |comp: &Component| {
+        comp.parent.len() == d
+            && comp.tables.len() == d
+            && comp.tables.iter().enumerate().all(|(c, t)| {
+                let rows = match comp.parent[c] {
+                    None => Some(1),
+                    Some(p) => cards.get(p).copied().filter(|_| p != c),
+                };
+                rows.is_some_and(|rows| {
+                    t.card == cards[c]
+                        && t.logp.len() == rows * cards[c]
+                        && t.unseen.len() == rows
+                        && t.marginal.len() == cards[c]
+                })
+            })
+    };
+    if !components.iter().all(fits) {
+        return Err(Error::Invalid(
+            "a component fitted to columns of other cardinalities".into(),
+        ));
+    }
+    let mut out = vec![0.0; n * k];
+    let token = crate::cancel::current();
+    out.par_chunks_mut(SCORE_CHUNK * k.max(1))
+        .enumerate()
+        .for_each(|(chunk, out)| {
+            if token.cancelled() || k == 0 {
+                return;
+            }
+            let start = chunk * SCORE_CHUNK;
+            let rows = out.len() / k;
+            let mut acc = vec![0.0; rows];
+            for (t, comp) in components.iter().enumerate() {
+                acc.iter_mut().for_each(|a| *a = 0.0);
+                for (c, table) in comp.tables.iter().enumerate() {
+                    let xs = &codes[c][start..start + rows];
+                    match comp.parent[c] {
+                        Some(p) => {
+                            let ps = &codes[p][start..start + rows];
+                            for ((a, &x), &pa) in acc.iter_mut().zip(xs).zip(ps) {
+                                *a += table.log_prob(pa, x);
+                            }
+                        }
+                        None => {
+                            for (a, &x) in acc.iter_mut().zip(xs) {
+                                *a += table.log_prob(0, x);
+                            }
+                        }
+                    }
+                }
+                for (row, a) in acc.iter().enumerate() {
+                    out[row * k + t] = *a;
+                }
+            }
+        });
+    token.check()?;
+    Ok(out)
+}
+
+/// One block of sampled rows: codes, numbers in bins and tail entries per column, components.
+type SampledBlock = (Vec<Vec<u16>>, Vec<Vec<f64>>, Vec<Vec<u32>>, Vec<u32>);
+
+/// Draws `count` rows from the mixture, starting at row `start` of the stream of `seed`
+/// (a multiple of [`SAMPLE_BLOCK`]): per row one draw picks the component by `weights`, then
+/// its tree is sampled from the root down, then each column's value behind its code is drawn
+/// as `model` (the mixture's codebook and tail tables) does. Every row takes a fixed number of
+/// draws from its block's stream, so rows do not depend on threads or chunking. Returns the
+/// rows and each row's component.
+pub fn sample(
+    components: &[Component],
+    weights: &[f64],
+    model: &TreeModel,
+    start: u64,
+    count: usize,
+    seed: u64,
+) -> Result<(Sampled, Vec<u32>)> {
+    let cards = model.codebook().cardinalities();
+    let d = cards.len();
+    if !start.is_multiple_of(SAMPLE_BLOCK as u64) {
+        return Err(Error::Invalid(format!(
+            "sampling must start at a multiple of {SAMPLE_BLOCK} rows"
+        )));
+    }
+    if components.is_empty()
+        || weights.len() != components.len()
+        || weights.iter().any(|w| !(w.is_finite() && *w >= 0.0))
+        || components
+            .iter()
+            .any(|c| c.tables.len() != d || c.order.len() != d || c.parent.len() != d)
+        || components
+            .iter()
+            .any(|c| c.tables.iter().zip(&cards).any(|(t, &r)| t.card != r))
+    {
+        return Err(Error::Invalid(
+            "components and weights do not match the model's columns".into(),
+        ));
+    }
+    let mut cumulative: Vec<f64> = weights
+        .iter()
+        .scan(0.0, |acc, w| {
+            *acc += w;
+            Some(*acc)
+        })
+        .collect();
+    // Rounding must never pick a component of weight zero, nor run off the end.
+    if let Some(last) = weights.iter().rposition(|w| *w > 0.0) {
+        cumulative[last..]
+            .iter_mut()
+            .for_each(|c| *c = f64::INFINITY);
+    }
+    let numeric: Vec<bool> = (0..d).map(|c| model.is_numeric(c)).collect();
+    let tailed: Vec<bool> = (0..d).map(|c| model.has_tail(c)).collect();
+    let first_block = start / SAMPLE_BLOCK as u64;
+    let token = crate::cancel::current();
+    let blocks: Vec<SampledBlock> = (0..count.div_ceil(SAMPLE_BLOCK))
+        .into_par_iter()
+        .map(|b| {
+            let rows = SAMPLE_BLOCK.min(count - b * SAMPLE_BLOCK);
+            let mut codes = vec![vec![0u16; rows]; d];
+            let mut floats = vec![vec![f64::NAN; rows]; d];
+            let mut tails = vec![vec![u32::MAX; rows]; d];
+            let mut which = vec![0u32; rows];
+            if token.cancelled() {
+                return (codes, floats, tails, which);
+            }
+            let mut rng = Rng::new(seed, first_block + b as u64);
+            let mut row_codes = vec![0u16; d];
+            for (r, w) in which.iter_mut().enumerate() {
+                let u = rng.next_f64();
+                let t = cumulative
+                    .partition_point(|c| *c <= u)
+                    .min(components.len() - 1);
+                *w = u32::try_from(t).unwrap_or(u32::MAX);
+                let comp = &components[t];
+                for &c in &comp.order {
+                    let a = comp.parent[c].map_or(0, |p| usize::from(row_codes[p]));
+                    row_codes[c] = comp.tables[c].draw(a, rng.next_f64());
+                }
+                for (c, &x) in row_codes.iter().enumerate() {
+                    codes[c][r] = x;
+                    let float = numeric[c].then_some(&mut floats[c][r]);
+                    let tail = tailed[c].then_some(&mut tails[c][r]);
+                    model.fill_drawn(c, x, &mut rng, float, tail);
+                }
+            }
+            (codes, floats, tails, which)
+        })
+        .collect();
+    token.check()?;
+    let mut out = Sampled {
+        codes: vec![Vec::with_capacity(count); d],
+        floats: numeric
+            .iter()
+            .map(|&n| n.then(|| Vec::with_capacity(count)))
+            .collect(),
+        tails: tailed
+            .iter()
+            .map(|&t| t.then(|| Vec::with_capacity(count)))
+            .collect(),
+    };
+    let mut which = Vec::with_capacity(count);
+    for (codes, floats, tails, w) in blocks {
+        for c in 0..d {
+            out.codes[c].extend(&codes[c]);
+            if let Some(f) = &mut out.floats[c] {
+                f.extend(&floats[c]);
+            }
+            if let Some(t) = &mut out.tails[c] {
+                t.extend(&tails[c]);
+            }
+        }
+        which.extend(w);
+    }
+    Ok((out, which))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn weighted_counts_with_unit_weights_are_the_counts() -> Result<()> {
+        let codes = vec![vec![0u16, 1, 1, 0, 1], vec![2u16, 0, 2, 2, 1]];
+        let cards = [2, 3];
+        let s = weighted_stats(&codes, &cards, &[1.0; 5], 1)?;
+        assert_eq!(s[0].n, 5.0);
+        assert_eq!(s[0].marginals, vec![vec![2.0, 3.0], vec![1.0, 1.0, 3.0]]);
+        // Row-major 2 x 3 table of (col0, col1).
+        assert_eq!(s[0].tables, vec![vec![0.0, 0.0, 2.0, 1.0, 1.0, 1.0]]);
+        Ok(())
+    }
+
+    #[test]
+    fn responsibilities_split_the_counts() -> Result<()> {
+        let codes = vec![vec![0u16, 1, 1], vec![1u16, 0, 1]];
+        let resp = [0.25, 0.75, 1.0, 0.0, 0.5, 0.5];
+        let s = weighted_stats(&codes, &[2, 2], &resp, 2)?;
+        assert_eq!(s[0].n, 1.75);
+        assert_eq!(s[1].n, 1.25);
+        assert_eq!(s[0].tables[0], vec![0.0, 0.25, 1.0, 0.5]);
+        assert_eq!(s[1].tables[0], vec![0.0, 0.75, 0.0, 0.5]);
+        Ok(())
+    }
+
+    #[test]
+    fn stored_components_are_checked() {
+        let cards = [2, 2, 2];
+        let counts = || vec![vec![1.0; 2], vec![1.0; 4], vec![1.0; 4]];
+        let ok = component_from_counts(
+            &cards,
+            0,
+            vec![None, Some(0), Some(1)],
+            counts(),
+            vec![0.0; 3],
+            0.5,
+        );
+        assert!(ok.is_ok());
+        // Columns 1 and 2 point at each other: a cycle the root does not reach.
+        let cycle = component_from_counts(
+            &cards,
+            0,
+            vec![None, Some(2), Some(1)],
+            counts(),
+            vec![0.0; 3],
+            0.5,
+        );
+        assert!(matches!(cycle, Err(Error::CorruptModel(_))));
+        let mut negative = counts();
+        negative[1][0] = -1.0;
+        let bad = component_from_counts(
+            &cards,
+            0,
+            vec![None, Some(0), Some(1)],
+            negative,
+            vec![0.0; 3],
+            0.5,
+        );
+        assert!(matches!(bad, Err(Error::CorruptModel(_))));
+    }
+
+    #[test]
+    fn bad_input_is_an_error_not_a_panic() {
+        let codes = vec![vec![0u16, 5]];
+        assert!(weighted_stats(&codes, &[2], &[1.0, 1.0], 1).is_err());
+        let codes = vec![vec![0u16, 1]];
+        assert!(weighted_stats(&codes, &[2], &[1.0], 1).is_err());
+        assert!(weighted_stats(&codes, &[2], &[1.0, f64::NAN], 1).is_err());
+        assert!(weighted_stats(&codes, &[2], &[], 0).is_err());
+        assert!(weighted_stats(&[vec![]], &[0], &[], 1).is_err());
+    }
+}
