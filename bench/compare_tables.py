@@ -126,7 +126,7 @@ def main(argv: list[str] | None = None) -> None:
     lines = [
         "| measurement | seconds | rows/s | peak RSS |",
         "|---|---:|---:|---:|",
-        f"| treewise `fit` of the reference side (two passes) | {fmt_s(fit['seconds'])} | "
+        f"| treewise `fit` of the reference side | {fmt_s(fit['seconds'])} | "
         f"{fit['rows'] / fit['seconds']:,.0f} | {fit['peak_bytes'] / gib:.2f} GiB |",
         f"| treewise `compare` of both sides | {fmt_s(compared['seconds'])} | "
         f"{compared['rows'] / compared['seconds']:,.0f} | {compared['peak_bytes'] / gib:.2f} GiB |",

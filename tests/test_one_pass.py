@@ -110,7 +110,7 @@ def test_the_one_pass_really_counts_once_and_falls_back_past_its_bound(
     assert counter.fallback is None
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        codebook, _, _, stats = counter.finish(12, 8)
+        codebook, _, _, (stats,) = _core.OnePass.finish_together([counter], 12, 8)
         assert stats is not None
         # The two-pass specification: learn the codebook, then encode and count again.
         builder = _core.CodebookBuilder(names)
@@ -135,7 +135,7 @@ def test_the_one_pass_really_counts_once_and_falls_back_past_its_bound(
     counter = _core.OnePass(["x", "y"], 1 << 25)
     counter.observe(wide)
     assert counter.fallback is not None and "'x'" in counter.fallback
-    assert counter.finish(12, 8)[3] is None
+    assert _core.OnePass.finish_together([counter], 12, 8)[3] == [None]
     # So does a cell limit the provisional tables would pass.
     counter = _core.OnePass(["y", "x"], 4)
     counter.observe(wide.slice(0, 100).select(["y", "x"]))

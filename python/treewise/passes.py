@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import os
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
@@ -29,7 +29,6 @@ __all__ = [
     "learn_and_count",
     "learn_and_count_many",
     "learn_codebook",
-    "learn_shared_codebook",
     "warn_caps",
     "warn_notes",
 ]
@@ -133,54 +132,44 @@ def learn_codebook(
     IPC files while its codebook is learned, and counted from them; they are removed when the
     block ends: one pass over the stream, exact counts, memory near one batch.
     """
-    with learn_shared_codebook(
-        [source], names, max_categories, n_bins, batch_rows, bar, types, kinds
-    ) as (codebook, counting):
-        yield codebook, counting[0]
-
-
-@contextmanager
-def learn_shared_codebook(
-    sources: list[Source],
-    names: list[str],
-    max_categories: int,
-    n_bins: int,
-    batch_rows: int,
-    bar: PassProgress,
-    types: TypeRecorder,
-    kinds: dict[str, str] | None = None,
-) -> Iterator[tuple[_core.Codebook, list[Source]]]:
-    """One codebook over the batches of several sources (each holding ``names``).
-
-    Yields the codebook and, per source, the source to count from next (the source itself, or
-    the spool of a one-shot stream), as :func:`learn_codebook` does for one source. Used to
-    encode the two sides of a comparison alike.
-    """
     builder = _core.CodebookBuilder(names)
-    spools = [None if source.replayable else _Spool() for source in sources]
+    spool = None if source.replayable else _Spool()
     try:
-        for source, spool in zip(sources, spools, strict=True):
-            with BatchLoop(source, names, batch_rows, bar, "learning codes") as batches:
-                for batch in batches:
-                    types.see(batch)
-                    builder.observe(batch)
-                    if spool is not None:
-                        spool.write(batch)
+        _read_once(source, names, batch_rows, bar, types, "learning codes", builder.observe, spool)
         codebook, caps, notes = builder.finish(max_categories, n_bins, list((kinds or {}).items()))
         warn_caps(caps, max_categories)
         warn_notes(notes)
-        counting = []
-        for source, spool in zip(sources, spools, strict=True):
-            if spool is None:
-                counting.append(source)
-            else:
-                spool.close()
-                counting.append(open_source(spool.paths))
-        yield codebook, counting
+        yield codebook, _to_count(source, spool)
     finally:
-        for spool in spools:
+        if spool is not None:
+            spool.remove()
+
+
+def _read_once(
+    source: Source,
+    names: list[str],
+    batch_rows: int,
+    bar: PassProgress,
+    types: TypeRecorder,
+    title: str,
+    observe: Callable[[pa.RecordBatch], None],
+    spool: _Spool | None,
+) -> None:
+    """The first pass over ``source``: each batch's types recorded, observed and spooled."""
+    with BatchLoop(source, names, batch_rows, bar, title) as batches:
+        for batch in batches:
+            types.see(batch)
+            observe(batch)
             if spool is not None:
-                spool.remove()
+                spool.write(batch)
+
+
+def _to_count(source: Source, spool: _Spool | None) -> Source:
+    """The source a second pass reads: ``source`` again, or the spool of a one-shot stream."""
+    if spool is None:
+        return source
+    spool.close()
+    return open_source(spool.paths)
 
 
 class _Spool:
@@ -308,12 +297,7 @@ def learn_and_count_many(
     try:
         for source, counter, spool in zip(sources, counters, spools, strict=True):
             title = "learning codes, counting pairs"
-            with BatchLoop(source, names, batch_rows, bar, title) as batches:
-                for batch in batches:
-                    types.see(batch)
-                    counter.observe(batch)
-                    if spool is not None:
-                        spool.write(batch)
+            _read_once(source, names, batch_rows, bar, types, title, counter.observe, spool)
         fallbacks = [counter.fallback for counter in counters]
         learned, caps, notes, counted = _core.OnePass.finish_together(
             counters, max_categories, n_bins, list((kinds or {}).items()), memory_limit
@@ -325,12 +309,9 @@ def learn_and_count_many(
         for source, spool, stats, fallback in zip(sources, spools, counted, fallbacks, strict=True):
             if stats is None:
                 stats = _core.PairStats(learned, memory_limit)
-                counting, seen = source, types
-                if spool is not None:
-                    spool.close()
-                    counting = open_source(spool.paths)
-                    # A spooled stream holds decoded values: its types say nothing new.
-                    seen = TypeRecorder(names)
+                counting = _to_count(source, spool)
+                # A spooled stream holds decoded values: its types say nothing new.
+                seen = types if spool is None else TypeRecorder(names)
                 why = f"second pass: {fallback}" if fallback else "second pass"
                 title = f"counting pairs ({why})"
                 count_pairs(counting, kept, learned, stats, batch_rows, bar, seen, title)

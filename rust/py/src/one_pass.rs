@@ -70,23 +70,6 @@ impl PyOnePass {
             .and_then(|p| p.fallback().map(str::to_string))
     }
 
-    /// Fixes the codes as `CodebookBuilder.finish` does. Returns the codebook, the caps, the
-    /// notes, and the pair statistics over the final codes (None after a fallback).
-    #[pyo3(signature = (max_categories, n_bins, kinds = Vec::new()))]
-    fn finish(
-        &mut self,
-        py: Python<'_>,
-        max_categories: usize,
-        n_bins: usize,
-        kinds: Vec<(String, String)>,
-    ) -> PyResult<Finished<Option<PyPairStats>>> {
-        let kinds = parse_kinds(kinds)?;
-        let pass = self.inner.take().ok_or_else(finished_error)?;
-        let (learned, stats) = detached(py, move || pass.finish(max_categories, n_bins, &kinds))?;
-        let (codebook, caps, notes) = learned_parts(learned);
-        Ok((codebook, caps, notes, stats.map(PyPairStats::whole)))
-    }
-
     /// Fixes one codebook from the tallies of several passes over the same columns (the two
     /// sides of a comparison) and returns the codebook, the caps, the notes, and each pass's
     /// pair statistics over those codes (None for a pass that stopped counting).

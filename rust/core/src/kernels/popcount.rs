@@ -256,13 +256,7 @@ fn tile_avx2<const TA: usize, const TB: usize>(
         }
     }
     // The last words that do not fill a vector.
-    for w in vecs * 4..words {
-        for (x, sa) in a.iter().enumerate() {
-            for (y, sb) in b.iter().enumerate() {
-                out[x][y] += u64::from((sa[w] & sb[w]).count_ones());
-            }
-        }
-    }
+    add_tail(&a, &b, vecs * 4..words, out);
 }
 
 /// The tile with AVX-512: per 512 bits, AND, then `vpopcntq` counts each 64-bit lane, added into
@@ -301,7 +295,18 @@ fn tile_avx512<const TA: usize, const TB: usize>(
         }
     }
     // The last words that do not fill a vector.
-    for w in vecs * 8..words {
+    add_tail(&a, &b, vecs * 8..words, out);
+}
+
+/// Adds the AND + popcount of the words `range` (the ones past the last full vector).
+#[inline(always)]
+fn add_tail<const TA: usize, const TB: usize>(
+    a: &[&[u64]; TA],
+    b: &[&[u64]; TB],
+    range: std::ops::Range<usize>,
+    out: &mut [[u64; TB]; TA],
+) {
+    for w in range {
         for (x, sa) in a.iter().enumerate() {
             for (y, sb) in b.iter().enumerate() {
                 out[x][y] += u64::from((sa[w] & sb[w]).count_ones());

@@ -346,13 +346,7 @@ impl ColumnTally {
             Tally::UInt(_) => true,
             _ => return Ok(false),
         };
-        let walk = |f: &mut dyn FnMut(Option<i128>)| -> Result<()> {
-            if unsigned {
-                each_u64(array, |v| f(v.map(i128::from)))
-            } else {
-                each_i64(array, |v| f(v.map(i128::from)))
-            }
-        };
+        let walk = |f: &mut dyn FnMut(Option<i128>)| walk_ints(array, unsigned, f);
         let (mut low, mut high) = (i128::MAX, i128::MIN);
         walk(&mut |v| {
             if let Some(x) = v {
@@ -593,6 +587,16 @@ impl ColumnTally {
         if let Some(t) = replaced {
             self.tally = t;
         }
+    }
+}
+
+/// Each value of an integer or time array as an i128 (`unsigned`: the array holds unsigned
+/// integers), or None for a null.
+fn walk_ints(array: &dyn Array, unsigned: bool, f: &mut dyn FnMut(Option<i128>)) -> Result<()> {
+    if unsigned {
+        each_u64(array, |v| f(v.map(i128::from)))
+    } else {
+        each_i64(array, |v| f(v.map(i128::from)))
     }
 }
 

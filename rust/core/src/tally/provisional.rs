@@ -11,11 +11,11 @@ use rayon::prelude::*;
 use rustc_hash::FxHashMap;
 
 use super::kind::Learned;
-use super::{CodebookBuilder, ColumnTally, KindChoice, Tally};
+use super::{walk_ints, CodebookBuilder, ColumnTally, KindChoice, Tally};
 use crate::codebook::{canonical, check_names, Scalar, DENSE_SPAN, UNSEEN};
 use crate::error::{Error, Result};
 use crate::stats::{cell_count, PairStats};
-use crate::values::{dictionary_keys, each_bool, each_f64, each_i64, each_str, each_u64, Kind};
+use crate::values::{dictionary_keys, each_bool, each_f64, each_str, Kind};
 
 /// The most provisional codes one column may take before the pass stops counting.
 pub const PROVISIONAL_CODES: usize = 4096;
@@ -196,13 +196,7 @@ impl Dict {
         if let Some(done) = self.encode_native(array, unsigned, out)? {
             return Ok(done);
         }
-        let walk = |f: &mut dyn FnMut(Option<i128>)| -> Result<()> {
-            if unsigned {
-                each_u64(array, |v| f(v.map(i128::from)))
-            } else {
-                each_i64(array, |v| f(v.map(i128::from)))
-            }
-        };
+        let walk = |f: &mut dyn FnMut(Option<i128>)| walk_ints(array, unsigned, f);
         let value = |x: i128| {
             if unsigned {
                 Value::UInt(u64::try_from(x).unwrap_or_default())
@@ -558,7 +552,9 @@ impl OnePass {
                     Some(Kind::Int | Kind::UInt | Kind::Float | Kind::Time)
                 );
                 let dict = &counting.dicts[i];
-                numbers && !self.exempt[i] && dict.values.len() - usize::from(dict.null.is_some()) > n_bins
+                numbers
+                    && !self.exempt[i]
+                    && dict.values.len() - usize::from(dict.null.is_some()) > n_bins
             })
         });
         let why = if let Some(i) = encoded.iter().position(Option::is_none) {
