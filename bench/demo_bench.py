@@ -18,7 +18,7 @@ import time
 from datetime import datetime, timezone
 from pathlib import Path
 
-from fit_bench import machine_info
+from fit_bench import machine_info, write_section
 
 
 def machine() -> str:
@@ -58,8 +58,7 @@ def main() -> None:
     )
     print(text)
     if args.write:
-        with open(args.write, "a", encoding="utf-8") as f:
-            f.write("\n" + text + "\n")
+        write_section(args.write, "demo_bench", text)
 
 
 if __name__ == "__main__":

