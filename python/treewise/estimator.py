@@ -269,8 +269,9 @@ class DependencyTree(ExactCounts, Params):
         -----
         Without ``codebook``, the data is read once: pairs are counted with provisional codes
         while each column's codes are learned, then recoded to the final codes (exactly the
-        counts a second pass would give). A column with more than 4,096 distinct values, or
-        provisional tables past 256 MiB, makes the fit read the data a second time to count;
+        counts a second pass would give). A modelled column with more than 4,096 distinct
+        values (not an identifier, which is left out), or provisional tables past 256 MiB,
+        makes the fit read the data a second time to count;
         so does, for data in memory, a number column with more than ``n_bins`` distinct values
         (it will be binned, and its bins count faster). The progress line says so. A one-shot
         stream is spooled to a temporary Arrow file (in the system's temporary directory)

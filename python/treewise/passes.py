@@ -299,6 +299,7 @@ def learn_and_count_many(
             title = "learning codes, counting pairs"
             _read_once(source, names, batch_rows, bar, types, title, counter.observe, spool)
         fallbacks = [counter.fallback for counter in counters]
+        uncounted = [counter.uncounted for counter in counters]
         learned, caps, notes, counted = _core.OnePass.finish_together(
             counters, max_categories, n_bins, list((kinds or {}).items()), memory_limit
         )
@@ -306,8 +307,16 @@ def learn_and_count_many(
         warn_notes(notes)
         kept = list(learned.names)
         all_stats: list[_core.PairStats] = []
-        for source, spool, stats, fallback in zip(sources, spools, counted, fallbacks, strict=True):
+        for source, spool, stats, fallback, wide in zip(
+            sources, spools, counted, fallbacks, uncounted, strict=True
+        ):
             if stats is None:
+                modelled = [name for name in wide if name in kept]
+                if fallback is None and modelled:
+                    fallback = (
+                        f"column '{modelled[0]}' has more than {_core.PROVISIONAL_CODES} distinct "
+                        "values"
+                    )
                 stats = _core.PairStats(learned, memory_limit)
                 counting = _to_count(source, spool)
                 # A spooled stream holds decoded values: its types say nothing new.

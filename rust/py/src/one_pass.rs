@@ -62,6 +62,15 @@ impl PyOnePass {
         self.inner.as_ref().map_or(0, OnePass::rows)
     }
 
+    /// The columns that ran out of provisional codes and are only tallied (a second pass counts
+    /// if any of them is modelled in the end).
+    #[getter]
+    fn uncounted(&self) -> Vec<String> {
+        self.inner
+            .as_ref()
+            .map_or_else(Vec::new, OnePass::uncounted)
+    }
+
     /// Why the pass stopped counting, or None while it still counts.
     #[getter]
     fn fallback(&self) -> Option<String> {

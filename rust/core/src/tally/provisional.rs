@@ -471,8 +471,14 @@ wrapping64!(i8, i16, i32, i64, u8, u16, u32, u64);
 
 /// The state while counting with provisional codes.
 struct Counting {
+    /// Per column (all of them, in order).
     dicts: Vec<Dict>,
+    /// The columns still counted, in order: column `k` of `stats` is column `cols[k]`. A column
+    /// that runs out of provisional codes leaves the tables and is only tallied from then on.
+    cols: Vec<usize>,
     stats: PairStats,
+    /// The columns that left the tables, in the order they left.
+    dropped: Vec<usize>,
 }
 
 /// The codebook pass that also counts every pair, so that one read of the data is enough.
@@ -496,7 +502,9 @@ impl OnePass {
             builder: CodebookBuilder::new(names),
             counting: Some(Counting {
                 dicts: (0..d).map(|_| Dict::default()).collect(),
+                cols: (0..d).collect(),
                 stats: PairStats::new(vec![0; d])?,
+                dropped: Vec::new(),
             }),
             cell_limit,
             fallback: None,
@@ -527,26 +535,54 @@ impl OnePass {
     }
 
     /// Tallies one batch and, while the provisional state stays within bounds, counts it.
+    ///
+    /// A column that runs out of provisional codes leaves the pair tables (its counts so far
+    /// go to its tally) and is only tallied from then on; if it is left out of the model in the
+    /// end (an identifier), the pass needed no second read.
     pub fn observe(&mut self, batch: &RecordBatch) -> Result<()> {
         let Some(counting) = &mut self.counting else {
             return self.builder.observe(batch);
         };
         let columns = &mut self.builder.columns;
         check_names(columns.iter().map(|c| c.name.as_str()), batch)?;
+        let d = columns.len();
+        let mut counted = vec![false; d];
+        counting.cols.iter().for_each(|&i| counted[i] = true);
+        // Some(codes) for a counted column that fit, None for one that ran out of codes (and
+        // for the columns no longer counted, which are tallied below).
         let encoded: Vec<Option<Vec<u16>>> = columns
             .par_iter_mut()
             .zip(counting.dicts.par_iter_mut())
             .zip(batch.columns().par_iter())
-            .map(|((column, dict), array)| {
+            .zip(counted.par_iter())
+            .map(|(((column, dict), array), &is_counted)| {
+                if !is_counted {
+                    return Ok(None);
+                }
                 let family = column.family_of(array.as_ref())?;
                 let mut out = Vec::with_capacity(array.len());
                 let fits = dict.encode(&column.name, family, array.as_ref(), &mut out)?;
                 Ok(fits.then_some(out))
             })
             .collect::<Result<_>>()?;
-        let cards: Vec<usize> = counting.dicts.iter().map(|d| d.values.len()).collect();
+        let full: Vec<usize> = counting
+            .cols
+            .iter()
+            .copied()
+            .filter(|&i| encoded[i].is_none())
+            .collect();
+        let staying: Vec<usize> = counting
+            .cols
+            .iter()
+            .copied()
+            .filter(|i| !full.contains(i))
+            .collect();
+        let cards: Vec<usize> = staying
+            .iter()
+            .map(|&i| counting.dicts[i].values.len())
+            .collect();
         let binned = self.bins.and_then(|n_bins| {
-            (0..columns.len()).find(|&i| {
+            staying.iter().copied().find(|&i| {
                 let numbers = matches!(
                     columns[i].family,
                     Some(Kind::Int | Kind::UInt | Kind::Float | Kind::Time)
@@ -557,12 +593,7 @@ impl OnePass {
                     && dict.values.len() - usize::from(dict.null.is_some()) > n_bins
             })
         });
-        let why = if let Some(i) = encoded.iter().position(Option::is_none) {
-            Some(format!(
-                "column '{}' has more than {PROVISIONAL_CODES} distinct values",
-                columns[i].name
-            ))
-        } else if let Some(i) = binned {
+        let why = if let Some(i) = binned {
             Some(format!(
                 "column '{}' has more distinct numbers than n_bins, so it will be binned; \
                  counting the binned codes in a second pass is cheaper",
@@ -581,20 +612,63 @@ impl OnePass {
             self.fall_back(why)?;
             return self.builder.observe(batch);
         }
-        let codes: Vec<Vec<u16>> = encoded.into_iter().flatten().collect();
+        // The columns that just ran out of codes leave the tables with their counts so far.
+        if !full.is_empty() {
+            let mut keep = Vec::with_capacity(staying.len());
+            for (k, (&i, &r)) in counting
+                .cols
+                .iter()
+                .zip(counting.stats.cardinalities())
+                .enumerate()
+            {
+                if full.contains(&i) {
+                    let dict = std::mem::take(&mut counting.dicts[i]);
+                    dict.fill_tally(&mut columns[i], counting.stats.marginal(k))?;
+                } else {
+                    keep.push((k, (0..r).map(|c| c as u16).collect::<Vec<u16>>()));
+                }
+            }
+            let old_cards: Vec<usize> = keep.iter().map(|(_, m)| m.len()).collect();
+            counting.stats = counting.stats.recode(&keep, old_cards)?;
+            counting.cols = staying;
+            counting.dropped.extend(full);
+        }
+        // The columns no longer counted are tallied.
+        for (i, column) in columns.iter_mut().enumerate() {
+            if !counting.cols.contains(&i) {
+                column.observe(batch.column(i).as_ref())?;
+                column.bound_distinct();
+            }
+        }
+        let codes: Vec<Vec<u16>> = counting
+            .cols
+            .iter()
+            .filter_map(|&i| encoded[i].clone())
+            .collect();
         if cards != counting.stats.cardinalities() {
             let keep: Vec<(usize, Vec<u16>)> = counting
                 .stats
                 .cardinalities()
                 .iter()
                 .enumerate()
-                .map(|(i, &r)| (i, (0..r).map(|c| c as u16).collect()))
+                .map(|(k, &r)| (k, (0..r).map(|c| c as u16).collect()))
                 .collect();
             counting.stats = counting.stats.recode(&keep, cards)?;
         }
         counting.stats.add_codes(&codes)?;
         self.builder.rows += batch.num_rows() as u64;
         Ok(())
+    }
+
+    /// The columns that ran out of provisional codes and are only tallied; the pass needs a
+    /// second read if any of them is modelled in the end.
+    pub fn uncounted(&self) -> Vec<String> {
+        self.counting.as_ref().map_or_else(Vec::new, |c| {
+            c.dropped
+                .iter()
+                .map(|&i| self.builder.columns[i].name.clone())
+                .collect()
+        })
     }
 
     /// Moves the counts so far into the tallies; the rest of the pass only tallies.
@@ -651,48 +725,54 @@ impl OnePass {
         }
         let stats = countings
             .into_iter()
-            .map(|c| c.map(|c| c.recoded(&names, &learned)).transpose())
+            .map(|c| match c {
+                Some(c) => c.recoded(&names, &learned),
+                None => Ok(None),
+            })
             .collect::<Result<Vec<_>>>()?;
         Ok((learned, stats))
     }
 }
 
 impl Counting {
-    /// The counts over the final codes of `learned` (columns named `names` while counting).
-    fn recoded(&self, names: &[String], learned: &Learned) -> Result<PairStats> {
+    /// The counts over the final codes of `learned` (columns named `names` while counting), or
+    /// None when a modelled column left the tables (a second pass must count).
+    fn recoded(&self, names: &[String], learned: &Learned) -> Result<Option<PairStats>> {
         let cards = self.stats.cardinalities();
-        let keep = learned
-            .codebook
-            .columns()
-            .iter()
-            .map(|code| {
-                let i = names.iter().position(|n| n == code.name()).ok_or_else(|| {
-                    Error::Invalid("internal error: a kept column vanished".into())
-                })?;
-                let counts = self.stats.marginal(i);
-                let map = self.dicts[i].values[..cards[i]]
-                    .iter()
-                    .zip(counts)
-                    .map(|(v, &c)| match code.code_of(v.scalar()) {
-                        // A code never counted adds nothing wherever it goes.
-                        UNSEEN if c == 0 => Ok(0),
-                        UNSEEN => Err(Error::Invalid(format!(
-                            "internal error: column '{}' has a counted value without a final \
-                             code",
-                            code.name()
-                        ))),
-                        k => Ok(k),
-                    })
-                    .collect::<Result<Vec<u16>>>()?;
-                Ok((i, map))
-            })
-            .collect::<Result<Vec<_>>>()?;
-        self.stats.recode(&keep, learned.codebook.cardinalities())
+        let mut keep = Vec::with_capacity(learned.codebook.columns().len());
+        for code in learned.codebook.columns() {
+            let i = names
+                .iter()
+                .position(|n| n == code.name())
+                .ok_or_else(|| Error::Invalid("internal error: a kept column vanished".into()))?;
+            let Some(k) = self.cols.iter().position(|&c| c == i) else {
+                return Ok(None);
+            };
+            let counts = self.stats.marginal(k);
+            let map = self.dicts[i].values[..cards[k]]
+                .iter()
+                .zip(counts)
+                .map(|(v, &c)| match code.code_of(v.scalar()) {
+                    // A code never counted adds nothing wherever it goes.
+                    UNSEEN if c == 0 => Ok(0),
+                    UNSEEN => Err(Error::Invalid(format!(
+                        "internal error: column '{}' has a counted value without a final code",
+                        code.name()
+                    ))),
+                    k => Ok(k),
+                })
+                .collect::<Result<Vec<u16>>>()?;
+            keep.push((k, map));
+        }
+        self.stats
+            .recode(&keep, learned.codebook.cardinalities())
+            .map(Some)
     }
 
+    /// Moves the counts so far of the counted columns into their tallies.
     fn fill_tallies(&self, builder: &mut CodebookBuilder) -> Result<()> {
-        for (i, (dict, column)) in self.dicts.iter().zip(&mut builder.columns).enumerate() {
-            dict.fill_tally(column, self.stats.marginal(i))?;
+        for (k, &i) in self.cols.iter().enumerate() {
+            self.dicts[i].fill_tally(&mut builder.columns[i], self.stats.marginal(k))?;
         }
         Ok(())
     }
