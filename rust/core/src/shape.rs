@@ -40,7 +40,7 @@ impl Tail {
     /// ln P(value | other) for each tail entry, then for a value outside the table, with
     /// Dirichlet smoothing `alpha` over the distinct values plus one slot for values never seen.
     pub fn log_probs(&self, alpha: f64) -> (Vec<f64>, f64) {
-        let denom = self.rows() as f64 + alpha * (self.n_values() + 1) as f64;
+        let denom = self.rows() as f64 + alpha * self.n_values().saturating_add(1) as f64;
         if denom <= 0.0 {
             let uniform = -((self.n_values().max(1)) as f64).ln();
             return (vec![uniform; self.counts.len()], uniform);
@@ -200,6 +200,21 @@ mod tests {
         // Order statistic floor(j * 999 / 64) at j = 32 is 499.
         assert_eq!(w.value(0.5, true), 499.0);
         assert!(w.is_valid(0.0, 999.0));
+    }
+
+    #[test]
+    fn a_tail_with_the_most_distinct_values_has_finite_probabilities() {
+        // Fuzz finding tail-distinct-values-overflow: a forged file's tail claimed 2^64 - 1
+        // distinct values behind "other"; one more slot for unseen values overflowed.
+        let tail = Tail {
+            values: Values::Int(vec![7]),
+            counts: vec![3],
+            rest_values: u64::MAX,
+            rest_rows: 5,
+        };
+        let (table, outside) = tail.log_probs(0.5);
+        assert!(table.iter().all(|p| p.is_finite() && *p <= 0.0));
+        assert!(outside.is_finite());
     }
 
     #[test]
