@@ -5,7 +5,7 @@ use rayon::prelude::*;
 
 use crate::codebook::UNSEEN;
 use crate::error::{Error, Result};
-use crate::model::{smoothed_weighted_row, Sampled, TreeModel, SAMPLE_BLOCK};
+use crate::model::{push_cdf, smoothed_weighted_row, Sampled, TreeModel, SAMPLE_BLOCK};
 use crate::rng::Rng;
 use crate::stats::{pair_count, pairs};
 use crate::tree;
@@ -211,18 +211,7 @@ impl LogTable {
         let mut cdf = Vec::with_capacity(counts.len());
         for row in counts.chunks_exact(card) {
             let (lp, un) = smoothed_weighted_row(row, alpha);
-            let start = cdf.len();
-            let mut acc = 0.0;
-            for l in &lp {
-                acc += l.exp();
-                cdf.push(acc);
-            }
-            // As TreeModel's tables: rounding never picks a code of probability zero.
-            if let Some(last) = lp.iter().rposition(|l| *l > f64::NEG_INFINITY) {
-                cdf[start + last..]
-                    .iter_mut()
-                    .for_each(|c| *c = f64::INFINITY);
-            }
+            push_cdf(&lp, &mut cdf);
             logp.extend(lp);
             unseen.push(un);
             sums.iter_mut().zip(row).for_each(|(s, n)| *s += n);

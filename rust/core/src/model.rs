@@ -55,6 +55,23 @@ pub fn smoothed_weighted_row(counts: &[f64], alpha: f64) -> (Vec<f64>, f64) {
     (logp, (alpha / denom).ln())
 }
 
+/// Appends the cumulative distribution of one row of log-probabilities to `cdf`, for sampling
+/// by a uniform draw. Rounding must never pick a code of probability zero, nor run off the end:
+/// from the last code of non-zero probability on, the sums are infinite.
+pub(crate) fn push_cdf(logp: &[f64], cdf: &mut Vec<f64>) {
+    let start = cdf.len();
+    let mut acc = 0.0;
+    for l in logp {
+        acc += l.exp();
+        cdf.push(acc);
+    }
+    if let Some(last) = logp.iter().rposition(|l| *l > f64::NEG_INFINITY) {
+        cdf[start + last..]
+            .iter_mut()
+            .for_each(|c| *c = f64::INFINITY);
+    }
+}
+
 impl Cpt {
     fn new(counts: &[u64], rows: usize, card: usize, alpha: f64) -> Cpt {
         let mut logp = Vec::with_capacity(rows * card);
@@ -63,18 +80,7 @@ impl Cpt {
         let mut column_sums = vec![0u64; card];
         for row in counts.chunks_exact(card) {
             let (lp, un) = smoothed_row(row, alpha);
-            let mut acc = 0.0;
-            let start = cdf.len();
-            for &l in &lp {
-                acc += l.exp();
-                cdf.push(acc);
-            }
-            // Rounding must never pick a code of probability zero, nor run off the end.
-            if let Some(last) = lp.iter().rposition(|l| *l > f64::NEG_INFINITY) {
-                cdf[start + last..]
-                    .iter_mut()
-                    .for_each(|c| *c = f64::INFINITY);
-            }
+            push_cdf(&lp, &mut cdf);
             logp.extend(lp);
             unseen.push(un);
             column_sums.iter_mut().zip(row).for_each(|(s, n)| *s += n);
