@@ -38,9 +38,16 @@ __all__ = [
     "EvidenceTally",
     "ImpossibleEvidenceWarning",
     "as_evidence",
+    "as_output",
+    "assemble",
+    "decode_prediction",
     "evidence_batches",
+    "filled_cells",
+    "impossible_message",
     "impute",
     "marginals",
+    "merge_filled",
+    "one_row",
     "predict",
     "predict_proba",
     "read_table",
@@ -52,7 +59,7 @@ SAMPLE_ROWS = 262_144
 #: The imputation strategies.
 STRATEGIES = ("joint", "marginal", "sample")
 #: The code the core writes for a cell it left as it was.
-_KEPT = 0xFFFF
+KEPT = 0xFFFF
 
 
 # -- the prepared model --------------------------------------------------------------------------
@@ -184,14 +191,29 @@ def predict(
     seen in its most probable bin.
     """
     t = model._index(target)
-    proba = predict_proba(model, data, target)
+    return decode_prediction(
+        model, _engine(model), t, predict_proba(model, data, target), allow_null
+    )
+
+
+def decode_prediction(
+    model: DependencyTree,
+    engine: _core.TreeInference,
+    t: int,
+    proba: npt.NDArray[np.float64],
+    allow_null: bool,
+) -> pa.Array[Any]:
+    """Each row's most probable value of column ``t`` from its posterior ``proba``.
+
+    ``model`` gives the values behind the codes and ``engine`` the number inside each bin.
+    """
     null = model._column_values()[t].null
     if not allow_null and null is not None and proba.shape[1] > 1:
         proba[:, null] = -1.0  # below every probability: the null code never wins
     valid = ~np.isnan(proba).any(axis=1)
-    codes = np.where(valid, np.argmax(np.nan_to_num(proba, nan=-1.0), axis=1), _KEPT)
+    codes = np.where(valid, np.argmax(np.nan_to_num(proba, nan=-1.0), axis=1), KEPT)
     codes = codes.astype(np.uint16)
-    middles = _engine(model).bin_middles(t)
+    middles = engine.bin_middles(t)
     floats = None
     if middles is not None:
         table = np.append(np.asarray(middles, dtype=np.float64), np.nan)
@@ -219,17 +241,17 @@ def marginals(
         puts all its mass on its value. Impossible evidence raises ``DataError``.
     """
     names = _names(model)
-    batch = _one_row(model, evidence or {})
+    batch = one_row(model, evidence or {})
     tables, unseen, impossible = _engine(model).posterior(batch, list(range(len(names))))
     tally = EvidenceTally(names)
     tally.add(unseen)
     tally.warn("")
     if impossible:
-        raise DataError(_impossible_message(evidence or {}))
+        raise DataError(impossible_message(evidence or {}))
     return {name: _f64(table).copy() for name, table in zip(names, tables, strict=True)}
 
 
-def _one_row(model: DependencyTree, evidence: Mapping[str, Any]) -> Any:
+def one_row(model: DependencyTree, evidence: Mapping[str, Any]) -> Any:
     """One row of evidence with every model column (unobserved ones null)."""
     if not isinstance(evidence, Mapping):
         raise TypeError(f"evidence must be a dict of column -> value, got {evidence!r}")
@@ -247,7 +269,8 @@ def _one_row(model: DependencyTree, evidence: Mapping[str, Any]) -> Any:
     return pa.RecordBatch.from_arrays(arrays, names=names)
 
 
-def _impossible_message(evidence: Mapping[str, Any]) -> str:
+def impossible_message(evidence: Mapping[str, Any]) -> str:
+    """What to say when fixed evidence has probability zero under the model."""
     return (
         f"the evidence {dict(evidence)!r} has probability zero under the model (alpha=0 and a "
         "combination never seen in fitting); fit with alpha > 0, or give other evidence"
@@ -309,9 +332,11 @@ def impute(
             )
             tally.add(unseen, impossible)
             rng = np.random.default_rng([seed, first]) if strategy == "sample" else None
-            filled = _filled(model, codes, floats, batch.num_rows, schema, rng)
+            filled = filled_cells(model, codes, floats, batch.num_rows, schema, rng)
             arrays = [
-                _merge(batch.column(i), filled[f.name]) if f.name in filled else batch.column(i)
+                merge_filled(batch.column(i), filled[f.name])
+                if f.name in filled
+                else batch.column(i)
                 for i, f in enumerate(batch.schema)
             ]
             out.append(pa.RecordBatch.from_arrays(arrays, names=batch.schema.names))
@@ -322,7 +347,7 @@ def impute(
     return pa.Table.from_batches(out)
 
 
-def _filled(
+def filled_cells(
     model: DependencyTree,
     codes: bytes,
     floats: list[bytes | None],
@@ -338,14 +363,16 @@ def _filled(
     columns = model._column_values()
     out = {}
     for c, field in enumerate(schema):
-        mask = matrix[c] != _KEPT
+        mask = matrix[c] != KEPT
         if mask.any():
             values = None if floats[c] is None else _f64(floats[c])  # type: ignore[arg-type]
             out[field.name] = (mask, decode_column(matrix[c], columns[c], values, None, rng))
     return out
 
 
-def _merge(original: pa.Array[Any], filled: tuple[npt.NDArray[np.bool_], pa.Array[Any]]) -> Any:
+def merge_filled(
+    original: pa.Array[Any], filled: tuple[npt.NDArray[np.bool_], pa.Array[Any]]
+) -> Any:
     """``original`` with the filled cells replaced, in ``original``'s type when it can hold them."""
     mask, values = filled
     if pa.types.is_null(original.type):
@@ -404,18 +431,18 @@ def sample_given(
         if n is None:
             raise TypeError("sample_given needs n, the number of rows, with a dict of evidence")
         n = check_int("n", n, 0, MAX_SAMPLE_ROWS)
-        row = _one_row(model, given)
-        fixed = _as_output(row, schema)
+        row = one_row(model, given)
+        fixed = as_output(row, schema)
         for start in range(0, n, SAMPLE_ROWS):
             count = min(SAMPLE_ROWS, n - start)
             codes, floats, unseen, impossible = engine.sample_given(row, count, start, seed)
             if impossible:
-                raise DataError(_impossible_message(given))
+                raise DataError(impossible_message(given))
             if start == 0:
                 tally.add(unseen)
             repeated = fixed.take(np.zeros(count, dtype=np.int64))
             rng = np.random.default_rng([seed, start])
-            out.append(_assemble(model, codes, floats, count, schema, repeated, rng))
+            out.append(assemble(model, codes, floats, count, schema, repeated, rng))
     else:
         source = open_source(given)
         if n is not None and source.total_rows is not None and n != source.total_rows:
@@ -428,9 +455,9 @@ def sample_given(
                     evidence, batch.num_rows, first, seed
                 )
                 tally.add(unseen, impossible)
-                given_rows = _as_output(evidence, schema)
+                given_rows = as_output(evidence, schema)
                 rng = np.random.default_rng([seed, first])
-                out.append(_assemble(model, codes, floats, batch.num_rows, schema, given_rows, rng))
+                out.append(assemble(model, codes, floats, batch.num_rows, schema, given_rows, rng))
                 first += batch.num_rows
         if n is not None and n != first:
             raise ValueError(f"n={n} but the evidence has {first} rows; give n=None")
@@ -438,7 +465,7 @@ def sample_given(
     return pa.Table.from_batches(out, schema=schema)
 
 
-def _as_output(batch: pa.RecordBatch, schema: pa.Schema) -> pa.RecordBatch:
+def as_output(batch: pa.RecordBatch, schema: pa.Schema) -> pa.RecordBatch:
     """Evidence in the model's output types (absent columns all null)."""
     arrays = []
     for column, field in zip(batch.columns, schema, strict=True):
@@ -455,7 +482,7 @@ def _as_output(batch: pa.RecordBatch, schema: pa.Schema) -> pa.RecordBatch:
     return pa.RecordBatch.from_arrays(arrays, schema=schema)
 
 
-def _assemble(
+def assemble(
     model: DependencyTree,
     codes: bytes,
     floats: list[bytes | None],
@@ -465,9 +492,9 @@ def _assemble(
     rng: np.random.Generator,
 ) -> pa.RecordBatch:
     """Sampled cells over the given ones."""
-    filled = _filled(model, codes, floats, n, schema, rng)
+    filled = filled_cells(model, codes, floats, n, schema, rng)
     arrays = [
-        _merge(given.column(c), filled[f.name]) if f.name in filled else given.column(c)
+        merge_filled(given.column(c), filled[f.name]) if f.name in filled else given.column(c)
         for c, f in enumerate(schema)
     ]
     return pa.RecordBatch.from_arrays(arrays, schema=schema)

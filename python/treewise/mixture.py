@@ -6,13 +6,13 @@ import math
 import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Literal, overload
 
 import numpy as np
 import numpy.typing as npt
 import pyarrow as pa
 
-from treewise import _core
+from treewise import _core, mixture_inference
 from treewise.checks import (
     MAX_CATEGORIES,
     MAX_SAMPLE_ROWS,
@@ -125,9 +125,10 @@ class TreeMixture(Params):
     ``single_tree_``), and every row is encoded once. The rows live in memory as codes, and
     ``data`` is read twice (a table, a DataFrame or files; not a one-shot stream).
 
-    Not yet available for a mixture: ``surprisal``, conditional sampling (``given=``),
-    per-column ``predict_proba``/``impute``, the report, the CLI, and
-    streaming or Dask fits.
+    Everything a tree answers, a mixture answers too: ``surprisal`` (under each row's most
+    responsible component, with the responsibilities), ``predict_proba``/``predict`` of a
+    column, ``marginals`` and ``impute`` (exact sums over components, see
+    ``treewise.mixture_inference``), and conditional sampling (``sample(given=...)``).
 
     Parameters
     ----------
@@ -303,8 +304,21 @@ class TreeMixture(Params):
         self.converged_ = run.converged
         self.n_reseeds_ = run.reseeds
 
-    def _encode(self, data: Any) -> tuple[_core.MixtureCodes, FloatArray, npt.NDArray[np.int64]]:
-        """Every row of ``data`` as codes (in memory), its tail term and unseen counts."""
+    @overload
+    def _encode(
+        self, data: Any, per_column: Literal[False] = False
+    ) -> tuple[_core.MixtureCodes, FloatArray, npt.NDArray[np.int64]]: ...
+
+    @overload
+    def _encode(
+        self, data: Any, per_column: Literal[True]
+    ) -> tuple[_core.MixtureCodes, list[bytes | None], npt.NDArray[np.int64]]: ...
+
+    def _encode(self, data: Any, per_column: bool = False) -> Any:
+        """Every row of ``data`` as codes (in memory), its tail term and unseen counts.
+
+        With ``per_column``, the tail terms per column (None for a column without a tail).
+        """
         tree = self.single_tree_
         names = [str(n) for n in tree.feature_names_in_]
         source = open_source(data)
@@ -316,6 +330,9 @@ class TreeMixture(Params):
         table = pa.Table.from_batches(batches).combine_chunks()
         merged = table.to_batches()
         batch = merged[0] if merged else pa.RecordBatch.from_pylist([], schema=table.schema)
+        if per_column:
+            codes, columns, unseen = _core.MixtureCodes.encode_columns(tree._fitted(), batch)
+            return codes, columns, np.array(unseen, dtype=np.int64)
         codes, tails, unseen = _core.MixtureCodes.encode(tree._fitted(), batch)
         return codes, np.frombuffer(tails, "<f8"), np.array(unseen, dtype=np.int64)
 
@@ -396,6 +413,10 @@ class TreeMixture(Params):
         codes, tails, unseen = self._encode(data)
         ll = np.frombuffer(codes.log_likelihoods(comps), "<f8").reshape(codes.n_rows, len(comps))
         total, resp = _log_mix(ll, self.weights_)
+        self._warn_unseen(unseen)
+        return total + tails, resp
+
+    def _warn_unseen(self, unseen: npt.NDArray[np.int64]) -> None:
         if unseen.any():
             names = [str(n) for n in self.feature_names_in_]
             report = ", ".join(f"{names[c]!r}: {m}" for c, m in enumerate(unseen) if m)
@@ -404,7 +425,6 @@ class TreeMixture(Params):
                 f"alpha={self.alpha}): {report}",
                 UnseenCategoryWarning,
             )
-        return total + tails, resp
 
     def score_samples(self, data: Any) -> FloatArray:
         """The log-probability of each row under the mixture, in nats.
@@ -418,16 +438,95 @@ class TreeMixture(Params):
         """The total log-likelihood of ``data`` (nats), as ``DependencyTree.score``."""
         return float(self.score_samples(data).sum())
 
-    def predict_proba(self, data: Any) -> FloatArray:
-        """The responsibilities P(component k | row), shape (rows, K); rows sum to 1."""
+    def predict_proba(self, data: Any, target: str | int | None = None) -> FloatArray:
+        """Posterior probabilities: of the components, or of one column's values.
+
+        Without ``target``, the responsibilities P(component k | row), shape (rows, K), rows
+        summing to 1 (as scikit-learn's ``GaussianMixture.predict_proba``). With ``target``,
+        as ``DependencyTree.predict_proba``: P(target = category | the row's other columns),
+        exact, each component's posterior mixed by P(k | the row's other columns); columns
+        follow ``single_tree_.categories_[target]``.
+        """
+        if target is not None:
+            return mixture_inference.predict_proba(self, data, target)
         return self._mixed(data)[1]
 
-    def predict(self, data: Any) -> npt.NDArray[np.intp]:
-        """Each row's most responsible component."""
+    def predict(
+        self, data: Any, target: str | int | None = None, *, allow_null: bool = False
+    ) -> Any:
+        """Each row's most responsible component, or the most probable value of ``target``.
+
+        With ``target``, the most probable value of that column given the rest of the row, as
+        ``DependencyTree.predict`` gives it.
+        """
+        if target is not None:
+            return mixture_inference.predict(self, data, target, allow_null)
         return np.asarray(np.argmax(self.predict_proba(data), axis=1), dtype=np.intp)
 
+    def marginals(self, evidence: Mapping[str, Any] | None = None) -> dict[str, FloatArray]:
+        """Every column's posterior given ``evidence`` (a dict column -> value).
+
+        Each component's posterior, mixed by its posterior weight, as ``DependencyTree.marginals``.
+        """
+        return mixture_inference.marginals(self, evidence)
+
+    def impute(
+        self, data: Any, strategy: str = "joint", random_state: RandomState = None
+    ) -> pa.Table:
+        """Fill the nulls of ``data`` from the mixture.
+
+        ``"marginal"`` (exact) and ``"sample"`` (an exact draw from the row's posterior) are
+        the mixture's own answers. ``"joint"`` takes each component's most probable completion
+        and keeps the one the mixture finds most probable (the exact maximum over a sum of
+        trees has no message-passing solution). See ``treewise.mixture_inference.impute``.
+        """
+        return mixture_inference.impute(self, data, strategy, random_state)
+
+    def surprisal(self, data: Any) -> pa.Table:
+        """Which columns made each row unlikely, under the component that explains it best.
+
+        Returns
+        -------
+        pyarrow.Table
+            One float64 column per modelled column holding -ln P_k(x_column | x_parent) in
+            nats under the row's most responsible component k (its own tree and parent), with
+            the tail term of a value behind "other", as ``DependencyTree.surprisal`` gives it;
+            ``component`` (k); ``component_total``, the sum of those columns
+            (-ln P_k(row)); ``total``, -ln p(row) under the whole mixture (minus
+            ``score_samples``); and ``responsibility_<j>`` = P(component j | row) for every j.
+        """
+        comps = self._fitted()
+        names = [str(n) for n in self.feature_names_in_]
+        codes, tails, unseen = self._encode(data, per_column=True)
+        n = codes.n_rows
+        ll = np.frombuffer(codes.log_likelihoods(comps), "<f8").reshape(n, len(comps))
+        total, resp = _log_mix(ll, self.weights_)
+        self._warn_unseen(unseen)
+        which = np.argmax(resp, axis=1).astype(np.uint32)
+        terms = codes.column_terms(comps, which.tobytes())
+        arrays: dict[str, Any] = {}
+        own = np.zeros(n)
+        for name, term, tail in zip(names, terms, tails, strict=True):
+            value = -np.frombuffer(term, "<f8")
+            if tail is not None:
+                value = value - np.frombuffer(tail, "<f8")
+            own += value
+            arrays[name] = pa.array(value)
+        tail_sum = sum((np.frombuffer(t, "<f8") for t in tails if t is not None), np.zeros(n))
+        arrays["component"] = pa.array(which.astype(np.int64))
+        arrays["component_total"] = pa.array(own)
+        arrays["total"] = pa.array(-(total + tail_sum))
+        for j in range(len(comps)):
+            arrays[f"responsibility_{j}"] = pa.array(resp[:, j])
+        return pa.table(arrays)
+
     def sample(
-        self, n: int, random_state: RandomState = None, *, return_components: bool = False
+        self,
+        n: int | None = None,
+        random_state: RandomState = None,
+        *,
+        given: Mapping[str, Any] | Any = None,
+        return_components: bool = False,
     ) -> Any:
         """Draw ``n`` synthetic rows: a component by its weight, then a row from its tree.
 
@@ -436,7 +535,18 @@ class TreeMixture(Params):
         same ``random_state`` gives the same rows on any number of threads. With
         ``return_components``, also returns each row's component (as scikit-learn's
         ``GaussianMixture.sample`` returns labels).
+
+        With ``given`` (a dict fixed for every row, or a table with one row of evidence per
+        sampled row, as ``DependencyTree.sample``), each row draws its component from
+        P(k | evidence), then its unobserved cells from that component given the evidence: an
+        exact conditional draw from the mixture.
         """
+        if given is not None:
+            if return_components:
+                raise ValueError("return_components is not available with given=")
+            return mixture_inference.sample_given(self, n, given, random_state)
+        if n is None:
+            raise TypeError("sample() needs n, the number of rows (or given= evidence)")
         comps = self._fitted()
         n = check_int("n", n, 0, MAX_SAMPLE_ROWS)
         tree = self.single_tree_
@@ -520,26 +630,49 @@ def choose_n_components(
     *,
     criterion: str = "heldout",
     validation: Any = None,
+    rule: str = "one_se",
     **params: Any,
 ) -> tuple[int, dict[int, float]]:
     """Fit a ``TreeMixture`` for each K in ``candidates`` and pick one.
 
-    ``criterion="heldout"`` keeps the K with the highest mean log-likelihood per row of
-    ``validation`` (required); ``"bic"`` the K with the lowest BIC on ``data``. Returns the
-    chosen K and each candidate's figure. ``params`` go to every ``TreeMixture``.
+    ``criterion="heldout"`` scores every candidate on the rows of ``validation`` (required).
+    With ``rule="one_se"`` (the default) it keeps the smallest K whose mean held-out
+    log-likelihood per row is within one standard error of the best K's, the standard error
+    being that of the per-row differences from the best (the one-standard-error rule of
+    Breiman et al., "Classification and Regression Trees", 1984; Hastie, Tibshirani & Friedman,
+    "The Elements of Statistical Learning", section 7.10: common practice). A larger mixture
+    then has to beat a smaller one by more than the noise of the validation rows, which keeps
+    small tables from choosing components that overfit. ``rule="best"`` keeps the highest mean.
+    ``criterion="bic"`` keeps the K with the lowest BIC on ``data``. Returns the chosen K and
+    each candidate's figure (mean held-out log-likelihood per row, or BIC). ``params`` go to
+    every ``TreeMixture``.
     """
     if criterion not in ("heldout", "bic"):
         raise ValueError(f"criterion must be 'heldout' or 'bic', got {criterion!r}")
+    if rule not in ("one_se", "best"):
+        raise ValueError(f"rule must be 'one_se' or 'best', got {rule!r}")
     if criterion == "heldout" and validation is None:
         raise ValueError("criterion='heldout' needs validation= data")
+    ks = sorted({check_int("candidates", k, 1, 1024) for k in candidates})
+    if not ks:
+        raise ValueError("candidates must hold at least one number of components")
     figures: dict[int, float] = {}
-    for k in candidates:
+    rows: dict[int, FloatArray] = {}
+    for k in ks:
         model = TreeMixture(n_components=k, **params).fit(data)
         if criterion == "bic":
             figures[k] = model.bic(data)
         else:
-            figures[k] = float(model.score_samples(validation).mean())
-    pick = min if criterion == "bic" else max
-    return pick(
-        figures, key=lambda k: (figures[k], k) if pick is min else (figures[k], -k)
-    ), figures
+            rows[k] = model.score_samples(validation)
+            figures[k] = float(rows[k].mean())
+    if criterion == "bic":
+        return min(ks, key=lambda k: (figures[k], k)), figures
+    best = max(ks, key=lambda k: (figures[k], -k))
+    if rule == "best":
+        return best, figures
+    for k in ks:
+        diff = rows[best] - rows[k]
+        se = float(diff.std(ddof=1) / math.sqrt(len(diff))) if len(diff) > 1 else 0.0
+        if figures[k] >= figures[best] - se:
+            return k, figures
+    return best, figures

@@ -416,28 +416,7 @@ pub fn log_likelihoods(
 ) -> Result<Vec<f64>> {
     let n = check_codes(codes, cards, true)?;
     let k = components.len();
-    let d = cards.len();
-    let fits = |comp: &Component| {
-        comp.parent.len() == d
-            && comp.tables.len() == d
-            && comp.tables.iter().enumerate().all(|(c, t)| {
-                let rows = match comp.parent[c] {
-                    None => Some(1),
-                    Some(p) => cards.get(p).copied().filter(|_| p != c),
-                };
-                rows.is_some_and(|rows| {
-                    t.card == cards[c]
-                        && t.logp.len() == rows * cards[c]
-                        && t.unseen.len() == rows
-                        && t.marginal.len() == cards[c]
-                })
-            })
-    };
-    if !components.iter().all(fits) {
-        return Err(Error::Invalid(
-            "a component fitted to columns of other cardinalities".into(),
-        ));
-    }
+    check_components(cards, components)?;
     let mut out = vec![0.0; n * k];
     let token = crate::cancel::current();
     out.par_chunks_mut(SCORE_CHUNK * k.max(1))
@@ -472,6 +451,71 @@ pub fn log_likelihoods(
                 }
             }
         });
+    token.check()?;
+    Ok(out)
+}
+
+/// Every component must have a table of the right shape for every column.
+fn check_components(cards: &[usize], components: &[Component]) -> Result<()> {
+    let d = cards.len();
+    let fits = |comp: &Component| {
+        comp.parent.len() == d
+            && comp.tables.len() == d
+            && comp.tables.iter().enumerate().all(|(c, t)| {
+                let rows = match comp.parent[c] {
+                    None => Some(1),
+                    Some(p) => cards.get(p).copied().filter(|_| p != c),
+                };
+                rows.is_some_and(|rows| {
+                    t.card == cards[c]
+                        && t.logp.len() == rows * cards[c]
+                        && t.unseen.len() == rows
+                        && t.marginal.len() == cards[c]
+                })
+            })
+    };
+    if !components.iter().all(fits) {
+        return Err(Error::Invalid(
+            "a component fitted to columns of other cardinalities".into(),
+        ));
+    }
+    Ok(())
+}
+
+/// ln P_k(x_c | x_parent) for every column c and row, under component `which[row]` of each
+/// row (codes may be UNSEEN, scored as [`log_likelihoods`] scores them): one column per model
+/// column. Their sum over the columns is that component's entry of [`log_likelihoods`].
+pub fn column_terms(
+    codes: &[Vec<u16>],
+    cards: &[usize],
+    components: &[Component],
+    which: &[u32],
+) -> Result<Vec<Vec<f64>>> {
+    let n = check_codes(codes, cards, true)?;
+    check_components(cards, components)?;
+    if which.len() != n || which.iter().any(|&w| w as usize >= components.len()) {
+        return Err(Error::Invalid(format!(
+            "{} component indices for {n} rows of a mixture of {}",
+            which.len(),
+            components.len()
+        )));
+    }
+    let token = crate::cancel::current();
+    let out = (0..cards.len())
+        .into_par_iter()
+        .map(|c| {
+            if token.cancelled() {
+                return Vec::new();
+            }
+            (0..n)
+                .map(|row| {
+                    let comp = &components[which[row] as usize];
+                    let a = comp.parent[c].map_or(0, |p| codes[p][row]);
+                    comp.tables[c].log_prob(a, codes[c][row])
+                })
+                .collect()
+        })
+        .collect();
     token.check()?;
     Ok(out)
 }
@@ -655,6 +699,34 @@ mod tests {
             0.5,
         );
         assert!(matches!(bad, Err(Error::CorruptModel(_))));
+    }
+
+    #[test]
+    fn column_terms_add_up_to_the_component_likelihood() -> Result<()> {
+        let codes = vec![
+            vec![0u16, 1, 1, 0, 1, 0],
+            vec![2u16, 0, 2, 2, 1, UNSEEN],
+            vec![1u16, 1, 0, 0, 1, 1],
+        ];
+        let cards = [2, 3, 2];
+        let resp = [0.9, 0.1, 0.2, 0.8, 0.5, 0.5, 1.0, 0.0, 0.3, 0.7, 0.6, 0.4];
+        let mut clean = codes.clone();
+        clean[1][5] = 1;
+        let stats = weighted_stats(&clean, &cards, &resp, 2)?;
+        let comps = stats
+            .iter()
+            .map(|s| fit_component(&cards, s, 0.5))
+            .collect::<Result<Vec<_>>>()?;
+        let ll = log_likelihoods(&codes, &cards, &comps)?;
+        let which = [0u32, 1, 1, 0, 1, 0];
+        let terms = column_terms(&codes, &cards, &comps, &which)?;
+        for (row, &k) in which.iter().enumerate() {
+            let sum: f64 = terms.iter().map(|t| t[row]).sum();
+            assert!((sum - ll[row * 2 + k as usize]).abs() < 1e-12);
+        }
+        assert!(column_terms(&codes, &cards, &comps, &[0, 1]).is_err());
+        assert!(column_terms(&codes, &cards, &comps, &[0, 1, 2, 0, 0, 0]).is_err());
+        Ok(())
     }
 
     #[test]

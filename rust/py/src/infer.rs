@@ -11,6 +11,7 @@ use crate::arrow_import::import_batch;
 use crate::buffers::{codes_and_floats, le_bytes};
 use crate::codebook::PyCodebook;
 use crate::errors::{detached, to_py};
+use crate::mixture::PyMixtureComponent;
 use crate::model::PyTreeModel;
 use crate::pair_stats::PyPairStats;
 
@@ -35,6 +36,17 @@ fn filled<'py>(py: Python<'py>, f: &Filled, unseen: Vec<u64>) -> PyResult<Filled
     Ok((codes, floats, unseen, f.impossible))
 }
 
+/// Column indices as one flag per column; an index past the columns is an error.
+fn fill_flags(fill: &[usize], d: usize) -> treewise_core::Result<Vec<bool>> {
+    let mut flags = vec![false; d];
+    for &c in fill {
+        *flags
+            .get_mut(c)
+            .ok_or_else(|| Error::Invalid(format!("no column {c}")))? = true;
+    }
+    Ok(flags)
+}
+
 #[pymethods]
 impl PyTreeInference {
     /// A fitted model prepared for inference; `backoff` pulls each child's table toward its
@@ -44,6 +56,23 @@ impl PyTreeInference {
     fn from_model(py: Python<'_>, model: &PyTreeModel, backoff: f64) -> PyResult<Self> {
         let model = model.inner.clone();
         let inner = detached(py, move || Inference::with_backoff(model, backoff))?;
+        Ok(PyTreeInference { inner })
+    }
+
+    /// One component of a mixture prepared for inference: its forest and tables, with the
+    /// codebook (and the values behind codes) of `model`, the mixture's single tree.
+    #[staticmethod]
+    fn from_component(
+        py: Python<'_>,
+        model: &PyTreeModel,
+        component: &PyMixtureComponent,
+    ) -> PyResult<Self> {
+        let model = model.inner.clone();
+        let comp = component.inner.clone();
+        let inner = detached(py, move || {
+            let logp = comp.tables.into_iter().map(|t| t.logp).collect();
+            Inference::from_tables(model, comp.parent, comp.order, logp)
+        })?;
         Ok(PyTreeInference { inner })
     }
 
@@ -152,17 +181,25 @@ impl PyTreeInference {
     /// row-major n x r f64 bytes, NaN rows where the evidence is impossible; values without a
     /// code per column; impossible rows).
     #[allow(clippy::type_complexity)]
+    #[pyo3(signature = (batch, targets, fill = None))]
     fn posterior<'py>(
         &self,
         py: Python<'py>,
         batch: &Bound<'py, PyAny>,
         targets: Vec<usize>,
+        fill: Option<Vec<usize>>,
     ) -> PyResult<(Vec<Bound<'py, PyBytes>>, Vec<u64>, u64)> {
         let batch = import_batch(batch)?;
         let inf = &self.inner;
         let (post, unseen) = detached(py, || {
             let ev = inf.evidence(&batch)?;
-            Ok((inf.posterior(&ev, &targets)?, ev.unseen))
+            let flags = fill
+                .map(|fill| fill_flags(&fill, ev.unseen.len()))
+                .transpose()?;
+            Ok((
+                inf.posterior_filling(&ev, &targets, flags.as_deref())?,
+                ev.unseen,
+            ))
         })?;
         let tables = post
             .tables
@@ -173,17 +210,23 @@ impl PyTreeInference {
     }
 
     /// ln P(observed cells) per row (f64 bytes, -inf where impossible) and the values without a
-    /// code per column.
+    /// code per column. With `fill` (column indices), a null in those columns is known to hold
+    /// one of the column's values, as `impute` conditions.
+    #[pyo3(signature = (batch, fill = None))]
     fn log_evidence<'py>(
         &self,
         py: Python<'py>,
         batch: &Bound<'py, PyAny>,
+        fill: Option<Vec<usize>>,
     ) -> PyResult<(Bound<'py, PyBytes>, Vec<u64>)> {
         let batch = import_batch(batch)?;
         let inf = &self.inner;
         let (logz, unseen) = detached(py, || {
             let ev = inf.evidence(&batch)?;
-            Ok((inf.log_evidence(&ev)?, ev.unseen))
+            let flags = fill
+                .map(|fill| fill_flags(&fill, ev.unseen.len()))
+                .transpose()?;
+            Ok((inf.log_evidence_filling(&ev, flags.as_deref())?, ev.unseen))
         })?;
         Ok((le_bytes(py, &[&logz])?, unseen))
     }
@@ -214,12 +257,7 @@ impl PyTreeInference {
         let inf = &self.inner;
         let (f, unseen) = detached(py, || {
             let ev = inf.evidence(&batch)?;
-            let mut flags = vec![false; ev.unseen.len()];
-            for c in fill {
-                *flags
-                    .get_mut(c)
-                    .ok_or_else(|| Error::Invalid(format!("no column {c}")))? = true;
-            }
+            let flags = fill_flags(&fill, ev.unseen.len())?;
             Ok((
                 inf.impute(&ev, &flags, strategy, seed, first_row)?,
                 ev.unseen,

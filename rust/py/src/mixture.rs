@@ -40,7 +40,47 @@ pub struct PyMixtureCodes {
 #[pyclass(name = "MixtureComponent", module = "treewise._core")]
 #[derive(Clone)]
 pub struct PyMixtureComponent {
-    inner: Component,
+    pub(crate) inner: Component,
+}
+
+impl PyMixtureCodes {
+    /// The codes of `batch`, the tail terms per column and the values per column without a code.
+    #[allow(clippy::type_complexity)]
+    fn encode_parts(
+        py: Python<'_>,
+        model: &PyTreeModel,
+        batch: &Bound<'_, PyAny>,
+    ) -> PyResult<(PyMixtureCodes, Vec<Option<Vec<f64>>>, Vec<u64>)> {
+        let batch = import_batch(batch)?;
+        let model = &model.inner;
+        let cards = model.codebook().cardinalities();
+        let d = cards.len();
+        let mut codes: Vec<Vec<u16>> = vec![Vec::with_capacity(batch.num_rows()); d];
+        let mut tails: Vec<Option<Vec<f64>>> = vec![None; d];
+        for slice in slices(&batch) {
+            let (part, terms) = detached(py, || {
+                let part = model.codebook().encode(&slice, false)?;
+                let terms = model.tail_terms(&slice, &part)?;
+                Ok((part, terms))
+            })?;
+            let before = codes[0].len();
+            for (c, t) in terms.into_iter().enumerate() {
+                if let Some(t) = t {
+                    let column = tails[c].get_or_insert_with(|| vec![0.0; before]);
+                    column.extend(t);
+                } else if let Some(column) = &mut tails[c] {
+                    column.resize(before + slice.num_rows(), 0.0);
+                }
+            }
+            codes.iter_mut().zip(part).for_each(|(c, p)| c.extend(p));
+            py.check_signals()?;
+        }
+        let unseen = codes
+            .iter()
+            .map(|c| c.iter().filter(|x| **x == u16::MAX).count() as u64)
+            .collect();
+        Ok((PyMixtureCodes { codes, cards }, tails, unseen))
+    }
 }
 
 #[pymethods]
@@ -71,35 +111,44 @@ impl PyMixtureCodes {
         model: &PyTreeModel,
         batch: &Bound<'py, PyAny>,
     ) -> PyResult<(PyMixtureCodes, Bound<'py, PyBytes>, Vec<u64>)> {
-        let batch = import_batch(batch)?;
-        let model = &model.inner;
-        let cards = model.codebook().cardinalities();
-        let d = cards.len();
-        let mut codes: Vec<Vec<u16>> = vec![Vec::with_capacity(batch.num_rows()); d];
-        let mut tails: Vec<f64> = Vec::with_capacity(batch.num_rows());
-        for slice in slices(&batch) {
-            let (part, tail) = detached(py, || {
-                let part = model.codebook().encode(&slice, false)?;
-                let terms = model.tail_terms(&slice, &part)?;
-                let mut tail = vec![0.0; slice.num_rows()];
-                for t in terms.iter().flatten() {
-                    tail.iter_mut().zip(t).for_each(|(s, t)| *s += t);
-                }
-                Ok((part, tail))
-            })?;
-            codes.iter_mut().zip(part).for_each(|(c, p)| c.extend(p));
-            tails.extend(tail);
-            py.check_signals()?;
+        let (codes, terms, unseen) = Self::encode_parts(py, model, batch)?;
+        let mut tails = vec![0.0; codes.n_rows()];
+        for t in terms.iter().flatten() {
+            tails.iter_mut().zip(t).for_each(|(s, t)| *s += t);
         }
-        let unseen = codes
+        Ok((codes, le_bytes(py, &[&tails])?, unseen))
+    }
+
+    /// As `encode`, with the tail terms per column (None for a column without a tail table).
+    #[staticmethod]
+    #[allow(clippy::type_complexity)]
+    fn encode_columns<'py>(
+        py: Python<'py>,
+        model: &PyTreeModel,
+        batch: &Bound<'py, PyAny>,
+    ) -> PyResult<(PyMixtureCodes, Vec<Option<Bound<'py, PyBytes>>>, Vec<u64>)> {
+        let (codes, terms, unseen) = Self::encode_parts(py, model, batch)?;
+        let terms = terms
             .iter()
-            .map(|c| c.iter().filter(|x| **x == u16::MAX).count() as u64)
-            .collect();
-        Ok((
-            PyMixtureCodes { codes, cards },
-            le_bytes(py, &[&tails])?,
-            unseen,
-        ))
+            .map(|t| t.as_ref().map(|t| le_bytes(py, &[t])).transpose())
+            .collect::<PyResult<_>>()?;
+        Ok((codes, terms, unseen))
+    }
+
+    /// ln P_k(x_c | x_parent) of every column of every row, under the component `which[row]`
+    /// (the tail terms left out): one f64 bytes column per model column.
+    fn column_terms<'py>(
+        &self,
+        py: Python<'py>,
+        components: Vec<PyRef<'py, PyMixtureComponent>>,
+        which: &[u8],
+    ) -> PyResult<Vec<Bound<'py, PyBytes>>> {
+        let which = from_le::<4, u32>(which, "components", u32::from_le_bytes)?;
+        let comps: Vec<Component> = components.iter().map(|c| c.inner.clone()).collect();
+        let terms = detached(py, || {
+            mixture::column_terms(&self.codes, &self.cards, &comps, &which)
+        })?;
+        terms.iter().map(|t| le_bytes(py, &[t])).collect()
     }
 
     #[getter]

@@ -146,7 +146,6 @@ impl Inference {
         let d = model.parent().len();
         let cards = model.codebook().cardinalities();
         let parent = model.parent().to_vec();
-        let children = tree::children(&parent);
         let missing = |c: usize| Error::Invalid(format!("the model has no table for column {c}"));
         let logp: Vec<Vec<f64>> = (0..d)
             .map(|c| {
@@ -169,6 +168,57 @@ impl Inference {
                     .collect())
             })
             .collect::<Result<_>>()?;
+        let order = model.order().to_vec();
+        Ok(Self::assemble(model, parent, order, &logp))
+    }
+
+    /// Prepares one component of a mixture for inference: its own forest (`parent`, with
+    /// `order` listing every parent before its children) and log tables (`logp[c]` is ln P(x |
+    /// a) row-major by the parent's code, one row for a root), with `model`'s codebook, for
+    /// reading evidence and drawing values inside a code. Every shape is checked.
+    pub fn from_tables(
+        model: TreeModel,
+        parent: Vec<Option<usize>>,
+        order: Vec<usize>,
+        logp: Vec<Vec<f64>>,
+    ) -> Result<Self> {
+        let cards = model.codebook().cardinalities();
+        let d = cards.len();
+        let mut seen = vec![false; d];
+        let shaped = parent.len() == d
+            && logp.len() == d
+            && (0..d).all(|c| {
+                let rows = parent[c].map_or(Some(1), |p| cards.get(p).copied());
+                rows.is_some_and(|rows| logp[c].len() == rows * cards[c])
+            });
+        // Every parent (checked above to be a column) comes before its children.
+        let ordered = shaped
+            && order.len() == d
+            && order.iter().all(|&c| {
+                let ok = c < d && !seen[c] && parent[c].is_none_or(|p| seen[p]);
+                if c < d {
+                    seen[c] = true;
+                }
+                ok
+            });
+        if !(shaped && ordered) {
+            return Err(Error::Invalid(
+                "a component's forest or tables do not match the model's columns".into(),
+            ));
+        }
+        Ok(Self::assemble(model, parent, order, &logp))
+    }
+
+    /// The prepared tables and message layout of a forest over `model`'s codebook.
+    fn assemble(
+        model: TreeModel,
+        parent: Vec<Option<usize>>,
+        order: Vec<usize>,
+        logp: &[Vec<f64>],
+    ) -> Self {
+        let d = parent.len();
+        let cards = model.codebook().cardinalities();
+        let children = tree::children(&parent);
         let prob: Vec<Vec<f64>> = logp
             .iter()
             .map(|t| t.iter().map(|l| l.exp()).collect())
@@ -211,8 +261,8 @@ impl Inference {
             .map(|c| children[c].len() * cards[c])
             .max()
             .unwrap_or(0);
-        Ok(Inference {
-            order: model.order().to_vec(),
+        Inference {
+            order,
             model,
             encoders,
             cards,
@@ -228,7 +278,7 @@ impl Inference {
             up_total,
             max_card,
             max_fan,
-        })
+        }
     }
 
     /// The model.
@@ -262,11 +312,29 @@ impl Inference {
 
     /// ln P(observed cells) per row; -inf where the evidence is impossible.
     pub fn log_evidence(&self, ev: &Evidence) -> Result<Vec<f64>> {
+        self.log_evidence_filling(ev, None)
+    }
+
+    /// ln P(observed cells) per row, where a null in a column flagged in `fill` is known to hold
+    /// one of the column's values (as [`Inference::impute`] conditions); -inf where impossible.
+    pub fn log_evidence_filling(&self, ev: &Evidence, fill: Option<&[bool]>) -> Result<Vec<f64>> {
         self.check(ev)?;
+        self.check_fill(fill)?;
         self.per_row(ev.n_rows, Self::scratch, |s, i| {
-            self.load(ev, i, None, s);
+            self.load(ev, i, fill, s);
             self.upward(s)
         })
+    }
+
+    fn check_fill(&self, fill: Option<&[bool]>) -> Result<()> {
+        match fill {
+            Some(f) if f.len() != self.cards.len() => Err(Error::Invalid(format!(
+                "{} fill flags for {} columns",
+                f.len(),
+                self.cards.len()
+            ))),
+            _ => Ok(()),
+        }
     }
 
     fn check(&self, ev: &Evidence) -> Result<()> {
@@ -283,7 +351,19 @@ impl Inference {
     /// The posterior marginals of `targets` per row (row-major n x r per target). Rows whose
     /// evidence is impossible are NaN.
     pub fn posterior(&self, ev: &Evidence, targets: &[usize]) -> Result<Posterior> {
+        self.posterior_filling(ev, targets, None)
+    }
+
+    /// As [`Inference::posterior`], where a null in a column flagged in `fill` is known to
+    /// hold one of the column's values (as [`Inference::impute`] conditions).
+    pub fn posterior_filling(
+        &self,
+        ev: &Evidence,
+        targets: &[usize],
+        fill: Option<&[bool]>,
+    ) -> Result<Posterior> {
         self.check(ev)?;
+        self.check_fill(fill)?;
         let d = self.cards.len();
         if let Some(t) = targets.iter().find(|&&t| t >= d) {
             return Err(Error::Invalid(format!("no column {t} of {d}")));
@@ -301,7 +381,7 @@ impl Inference {
             }
         }
         let rows: Vec<Option<Vec<Vec<f64>>>> = self.per_row(ev.n_rows, Self::scratch, |s, i| {
-            self.load(ev, i, None, s);
+            self.load(ev, i, fill, s);
             if self.upward(s) == f64::NEG_INFINITY {
                 return None;
             }
@@ -355,13 +435,7 @@ impl Inference {
         first_row: u64,
     ) -> Result<Filled> {
         self.check(ev)?;
-        if fill.len() != self.cards.len() {
-            return Err(Error::Invalid(format!(
-                "{} fill flags for {} columns",
-                fill.len(),
-                self.cards.len()
-            )));
-        }
+        self.check_fill(Some(fill))?;
         let d = self.cards.len();
         let all = vec![true; d];
         let rows = self.per_row(ev.n_rows, Self::scratch, |s, i| {

@@ -224,3 +224,31 @@ fn back_off_tables_are_distributions_between_the_counts_and_the_marginal() -> Re
     assert!(Inference::with_backoff(model, -1.0).is_err());
     Ok(())
 }
+
+#[test]
+fn a_forest_given_by_its_tables_answers_as_the_model() -> Result<()> {
+    let cards = [2, 3, 2];
+    let parent = vec![None, Some(0), Some(1)];
+    let inf = forest(&cards, parent.clone(), 0.5, 11)?;
+    let model = inf.model().clone();
+    let logp: Vec<Vec<f64>> = (0..3)
+        .map(|c| model.log_table(c).map(<[f64]>::to_vec).unwrap_or_default())
+        .collect();
+    let order = model.order().to_vec();
+    let same = Inference::from_tables(model.clone(), parent.clone(), order.clone(), logp.clone())?;
+    let ev = evidence(&[vec![Some(1), None, Some(0)], vec![None, Some(2), None]]);
+    assert_eq!(same.log_evidence(&ev)?, inf.log_evidence(&ev)?);
+    assert_eq!(
+        same.posterior(&ev, &[0, 1, 2])?.tables,
+        inf.posterior(&ev, &[0, 1, 2])?.tables
+    );
+    // Shapes that do not fit the codebook, and an order with a child before its parent.
+    let mut short = logp.clone();
+    short[1].pop();
+    assert!(Inference::from_tables(model.clone(), parent.clone(), order.clone(), short).is_err());
+    assert!(
+        Inference::from_tables(model.clone(), parent.clone(), vec![2, 1, 0], logp.clone()).is_err()
+    );
+    assert!(Inference::from_tables(model, vec![None, Some(0)], order, logp).is_err());
+    Ok(())
+}
