@@ -58,9 +58,7 @@ def _joint(model: treewise.TreeMixture) -> tuple[np.ndarray, np.ndarray]:
 def _values(model: treewise.TreeMixture, rows: np.ndarray) -> pa.Table:
     names = [str(n) for n in model.feature_names_in_]
     cats = model.single_tree_.categories_
-    return pa.table(
-        {n: pa.array([cats[c][x] for x in rows[:, c]]) for c, n in enumerate(names)}
-    )
+    return pa.table({n: pa.array([cats[c][x] for x in rows[:, c]]) for c, n in enumerate(names)})
 
 
 def _fits(observed: np.ndarray, expected: np.ndarray, n: int) -> bool:
@@ -128,7 +126,9 @@ def test_one_component_answers_as_the_tree() -> None:
     mixture = treewise.TreeMixture(1, random_state=0).fit(table)
     tree = mixture.single_tree_
     holes = table.slice(0, 400).set_column(
-        1, "Sex", pa.array([None if i % 3 == 0 else v for i, v in enumerate(table["Sex"][:400].to_pylist())])
+        1,
+        "Sex",
+        pa.array([None if i % 3 == 0 else v for i, v in enumerate(table["Sex"][:400].to_pylist())]),
     )
     for target in ["Class", "Survived"]:
         np.testing.assert_allclose(
