@@ -248,7 +248,7 @@ def test_conditional_samples_follow_the_posterior(fitted: treewise.TreeMixture) 
 
 
 def test_table_evidence_keeps_the_given_cells(fitted: treewise.TreeMixture) -> None:
-    table, pattern = _evidence_patterns(fitted)
+    table, _ = _evidence_patterns(fitted)
     drawn = fitted.sample(None, random_state=2, given=table)
     assert drawn.num_rows == table.num_rows
     for name in table.column_names:
