@@ -12,7 +12,7 @@ unobserved in every row. See docs/inference.md.
 from __future__ import annotations
 
 import weakref
-from collections.abc import Collection, Mapping
+from collections.abc import Callable, Collection, Mapping
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -38,20 +38,20 @@ __all__ = [
     "EvidenceTally",
     "ImpossibleEvidenceWarning",
     "as_evidence",
-    "as_output",
-    "assemble",
     "decode_prediction",
     "evidence_batches",
     "filled_cells",
     "impossible_message",
     "impute",
+    "impute_with",
     "marginals",
-    "merge_filled",
     "one_row",
     "predict",
     "predict_proba",
     "read_table",
+    "replace_filled",
     "sample_given",
+    "sample_given_with",
 ]
 
 #: Rows per call of conditional sampling with one fixed row of evidence.
@@ -313,9 +313,32 @@ def impute(
         whose evidence is impossible (alpha=0 only) keep their nulls, with an
         ``ImpossibleEvidenceWarning``.
     """
+    return impute_with(model, data, strategy, random_state, _engine(model).impute)
+
+
+#: Fills one batch of evidence: (evidence, fill column indices, strategy, seed, first row) to
+#: (codes, floats per column, unseen values per column, impossible rows), as
+#: ``TreeInference.impute`` returns them.
+FillBatch = Callable[
+    [pa.RecordBatch, list[int], str, int, int], tuple[bytes, list[Any], list[int], int]
+]
+
+
+def impute_with(
+    model: DependencyTree,
+    data: Any,
+    strategy: str,
+    random_state: RandomState,
+    fill_batch: FillBatch,
+) -> pa.Table:
+    """Fill the nulls of ``data`` batch by batch with ``fill_batch``; ``model`` decodes them.
+
+    The loop shared by a tree's and a mixture's ``impute``: evidence from each batch, the
+    filled cells decoded into values of the fitted types and merged into the batch's columns,
+    and one warning for values without a code and impossible rows.
+    """
     if strategy not in STRATEGIES:
         raise ValueError(f"strategy must be one of {STRATEGIES}, got {strategy!r}")
-    engine = _engine(model)
     names = _names(model)
     seed = seed_of(random_state) if strategy == "sample" else 0
     tally = EvidenceTally(names)
@@ -327,24 +350,27 @@ def impute(
         for batch in batches:
             present = set(batch.schema.names)
             fill = [c for c, name in enumerate(names) if name in present]
-            codes, floats, unseen, impossible = engine.impute(
+            codes, floats, unseen, impossible = fill_batch(
                 as_evidence(batch, names), fill, strategy, seed, first
             )
             tally.add(unseen, impossible)
             rng = np.random.default_rng([seed, first]) if strategy == "sample" else None
             filled = filled_cells(model, codes, floats, batch.num_rows, schema, rng)
-            arrays = [
-                merge_filled(batch.column(i), filled[f.name])
-                if f.name in filled
-                else batch.column(i)
-                for i, f in enumerate(batch.schema)
-            ]
-            out.append(pa.RecordBatch.from_arrays(arrays, names=batch.schema.names))
+            out.append(replace_filled(batch, filled))
             first += batch.num_rows
     tally.warn("their nulls are left as they were")
     if not out:
         return pa.table({n: pa.nulls(0) for n in source.names})
     return pa.Table.from_batches(out)
+
+
+def replace_filled(batch: pa.RecordBatch, filled: dict[str, Any]) -> pa.RecordBatch:
+    """``batch`` with the filled cells of ``filled_cells`` in place; other columns pass through."""
+    arrays = [
+        _merge_filled(batch.column(i), filled[f.name]) if f.name in filled else batch.column(i)
+        for i, f in enumerate(batch.schema)
+    ]
+    return pa.RecordBatch.from_arrays(arrays, names=batch.schema.names)
 
 
 def filled_cells(
@@ -370,7 +396,7 @@ def filled_cells(
     return out
 
 
-def merge_filled(
+def _merge_filled(
     original: pa.Array[Any], filled: tuple[npt.NDArray[np.bool_], pa.Array[Any]]
 ) -> Any:
     """``original`` with the filled cells replaced, in ``original``'s type when it can hold them."""
@@ -421,7 +447,28 @@ def sample_given(
         Impossible fixed evidence raises ``DataError``; impossible rows of a table stay null,
         with an ``ImpossibleEvidenceWarning``.
     """
-    engine = _engine(model)
+    return sample_given_with(model, n, given, random_state, _engine(model).sample_given)
+
+
+#: Draws rows given evidence: (evidence, count, first row, seed) to (codes, floats per column,
+#: unseen values per column, impossible rows), as ``TreeInference.sample_given`` returns them.
+#: With one row of evidence it is shared by all ``count`` rows.
+DrawGiven = Callable[[pa.RecordBatch, int, int, int], tuple[bytes, list[Any], list[int], int]]
+
+
+def sample_given_with(
+    model: DependencyTree,
+    n: int | None,
+    given: Mapping[str, Any] | Any,
+    random_state: RandomState,
+    draw: DrawGiven,
+) -> pa.Table:
+    """Conditional sampling with ``draw``; ``model`` reads the evidence and decodes the rows.
+
+    The loop shared by a tree's and a mixture's ``sample(given=...)``: fixed evidence in
+    blocks of SAMPLE_ROWS, or a table's batches, each drawn, decoded and laid over the given
+    cells, with one warning for values without a code and impossible rows.
+    """
     names = _names(model)
     seed = seed_of(random_state)
     schema = model._output_schema()
@@ -432,17 +479,17 @@ def sample_given(
             raise TypeError("sample_given needs n, the number of rows, with a dict of evidence")
         n = check_int("n", n, 0, MAX_SAMPLE_ROWS)
         row = one_row(model, given)
-        fixed = as_output(row, schema)
+        fixed = _as_output(row, schema)
         for start in range(0, n, SAMPLE_ROWS):
             count = min(SAMPLE_ROWS, n - start)
-            codes, floats, unseen, impossible = engine.sample_given(row, count, start, seed)
+            codes, floats, unseen, impossible = draw(row, count, start, seed)
             if impossible:
                 raise DataError(impossible_message(given))
             if start == 0:
                 tally.add(unseen)
             repeated = fixed.take(np.zeros(count, dtype=np.int64))
             rng = np.random.default_rng([seed, start])
-            out.append(assemble(model, codes, floats, count, schema, repeated, rng))
+            out.append(_assemble(model, codes, floats, count, schema, repeated, rng))
     else:
         source = open_source(given)
         if n is not None and source.total_rows is not None and n != source.total_rows:
@@ -451,13 +498,11 @@ def sample_given(
         with evidence_batches(source, names) as batches:
             for batch in batches:
                 evidence = as_evidence(batch, names)
-                codes, floats, unseen, impossible = engine.sample_given(
-                    evidence, batch.num_rows, first, seed
-                )
+                codes, floats, unseen, impossible = draw(evidence, batch.num_rows, first, seed)
                 tally.add(unseen, impossible)
-                given_rows = as_output(evidence, schema)
+                given_rows = _as_output(evidence, schema)
                 rng = np.random.default_rng([seed, first])
-                out.append(assemble(model, codes, floats, batch.num_rows, schema, given_rows, rng))
+                out.append(_assemble(model, codes, floats, batch.num_rows, schema, given_rows, rng))
                 first += batch.num_rows
         if n is not None and n != first:
             raise ValueError(f"n={n} but the evidence has {first} rows; give n=None")
@@ -465,7 +510,7 @@ def sample_given(
     return pa.Table.from_batches(out, schema=schema)
 
 
-def as_output(batch: pa.RecordBatch, schema: pa.Schema) -> pa.RecordBatch:
+def _as_output(batch: pa.RecordBatch, schema: pa.Schema) -> pa.RecordBatch:
     """Evidence in the model's output types (absent columns all null)."""
     arrays = []
     for column, field in zip(batch.columns, schema, strict=True):
@@ -482,7 +527,7 @@ def as_output(batch: pa.RecordBatch, schema: pa.Schema) -> pa.RecordBatch:
     return pa.RecordBatch.from_arrays(arrays, schema=schema)
 
 
-def assemble(
+def _assemble(
     model: DependencyTree,
     codes: bytes,
     floats: list[bytes | None],
@@ -494,7 +539,7 @@ def assemble(
     """Sampled cells over the given ones."""
     filled = filled_cells(model, codes, floats, n, schema, rng)
     arrays = [
-        merge_filled(given.column(c), filled[f.name]) if f.name in filled else given.column(c)
+        _merge_filled(given.column(c), filled[f.name]) if f.name in filled else given.column(c)
         for c, f in enumerate(schema)
     ]
     return pa.RecordBatch.from_arrays(arrays, schema=schema)

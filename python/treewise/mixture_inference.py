@@ -23,22 +23,20 @@ import numpy.typing as npt
 import pyarrow as pa
 
 from treewise import _core
-from treewise.checks import MAX_SAMPLE_ROWS, RandomState, check_int, seed_of
+from treewise.checks import RandomState
 from treewise.errors import DataError
 from treewise.inference import (
     KEPT,
-    SAMPLE_ROWS,
-    STRATEGIES,
     EvidenceTally,
     as_evidence,
-    as_output,
-    assemble,
     decode_prediction,
     evidence_batches,
     filled_cells,
     impossible_message,
-    merge_filled,
+    impute_with,
     one_row,
+    replace_filled,
+    sample_given_with,
 )
 from treewise.sources import open_source
 
@@ -178,10 +176,17 @@ def marginals(
     return {name: table[0].copy() for name, table in zip(names, tables, strict=True)}
 
 
-def _pick(draws: list[Any], which: npt.NDArray[np.intp], d: int, n: int) -> tuple[bytes, list[Any]]:
-    """Row i of the result is row i of ``draws[which[i]]`` (each a core ``Filled`` tuple)."""
+def _pick(
+    draws: list[Any], which: npt.NDArray[np.intp], impossible: npt.NDArray[np.bool_]
+) -> tuple[bytes, list[Any]]:
+    """Row i of the result is row i of ``draws[which[i]]`` (each a core ``Filled`` tuple).
+
+    Impossible rows are left as they were (KEPT codes).
+    """
+    d, n = len(draws[0][1]), len(which)
     codes = np.stack([np.frombuffer(f[0], "<u2").reshape(d, n) for f in draws])
     picked = np.take_along_axis(codes, which[None, None, :], axis=0)[0]
+    picked[:, impossible] = KEPT
     floats: list[Any] = []
     for c in range(d):
         columns = [f[1][c] for f in draws]
@@ -222,57 +227,29 @@ def impute(
     best-of-components answer and it is exact when one component dominates. Otherwise as
     ``DependencyTree.impute``.
     """
-    if strategy not in STRATEGIES:
-        raise ValueError(f"strategy must be one of {STRATEGIES}, got {strategy!r}")
-    tree = mixture.single_tree_
-    names = _names(mixture)
-    d = len(names)
-    seed = seed_of(random_state) if strategy == "sample" else 0
-    tally = EvidenceTally(names)
-    schema = tree._output_schema()
-    out: list[pa.RecordBatch] = []
-    first = 0
-    source = open_source(data)
-    with evidence_batches(source, None) as batches:
-        for batch in batches:
-            n = batch.num_rows
-            present = set(batch.schema.names)
-            fill = [c for c, name in enumerate(names) if name in present]
-            evidence = as_evidence(batch, names)
-            weights, unseen = posterior_weights(mixture, evidence, fill)
-            impossible = np.isnan(weights[:, 0])
-            tally.add(unseen, int(impossible.sum()))
-            rng = np.random.default_rng([seed, first])
-            if strategy == "marginal":
-                codes, floats = _marginal_fill(mixture, evidence, fill, weights)
+    _names(mixture)
+    prepared = engines(mixture)
+
+    def fill_batch(
+        evidence: pa.RecordBatch, fill: list[int], how: str, seed: int, first: int
+    ) -> tuple[bytes, list[Any], list[int], int]:
+        weights, unseen = posterior_weights(mixture, evidence, fill)
+        impossible = np.isnan(weights[:, 0])
+        if how == "marginal":
+            codes, floats = _marginal_fill(mixture, evidence, fill, weights)
+        else:
+            draws = [
+                engine.impute(evidence, fill, how, _component_seed(seed, k), first)
+                for k, engine in enumerate(prepared)
+            ]
+            if how == "sample":
+                which = _draw_components(weights, np.random.default_rng([seed, first, 1]))
             else:
-                draws = [
-                    engine.impute(evidence, fill, strategy, _component_seed(seed, k), first)
-                    for k, engine in enumerate(engines(mixture))
-                ]
-                if strategy == "sample":
-                    which = _draw_components(weights, rng)
-                else:
-                    which = _best_completion(mixture, batch, draws, names, schema)
-                codes, floats = _pick(draws, which, d, n)
-            matrix = np.frombuffer(codes, "<u2").reshape(d, n).copy()
-            matrix[:, impossible] = KEPT
-            filled = filled_cells(tree, matrix.tobytes(), floats, n, schema, rng)
-            out.append(_replace(batch, filled))
-            first += n
-    tally.warn("their nulls are left as they were")
-    if not out:
-        return pa.table({name: pa.nulls(0) for name in source.names})
-    return pa.Table.from_batches(out)
+                which = _best_completion(mixture, evidence, draws)
+            codes, floats = _pick(draws, which, impossible)
+        return codes, floats, unseen, int(impossible.sum())
 
-
-def _replace(batch: pa.RecordBatch, filled: dict[str, Any]) -> pa.RecordBatch:
-    """``batch`` with its filled cells in place (other columns pass through)."""
-    arrays = [
-        merge_filled(batch.column(i), filled[f.name]) if f.name in filled else batch.column(i)
-        for i, f in enumerate(batch.schema)
-    ]
-    return pa.RecordBatch.from_arrays(arrays, names=batch.schema.names)
+    return impute_with(mixture.single_tree_, data, strategy, random_state, fill_batch)
 
 
 def _marginal_fill(
@@ -308,30 +285,30 @@ def _marginal_fill(
 
 
 def _best_completion(
-    mixture: TreeMixture,
-    batch: pa.RecordBatch,
-    draws: list[Any],
-    names: list[str],
-    schema: pa.Schema,
+    mixture: TreeMixture, evidence: pa.RecordBatch, draws: list[Any]
 ) -> npt.NDArray[np.intp]:
-    """Per row, the component whose completion the mixture finds most probable."""
+    """Per row, the component whose completion the mixture finds most probable.
+
+    Each completion is decoded into values and scored as evidence under every component, so
+    a column the data lacks stays unobserved (summed out) in the comparison.
+    """
     tree = mixture.single_tree_
-    n = batch.num_rows
+    schema = tree._output_schema()
+    n = evidence.num_rows
+    absent = {f.name for f in evidence.schema if pa.types.is_null(f.type)}
     scores = []
     for codes, floats, _, _ in draws:
         filled = filled_cells(tree, codes, floats, n, schema)
-        completed = as_evidence(_replace(batch, filled), names)
-        weights_and_total = [e.log_evidence(completed)[0] for e in engines(mixture)]
+        kept = {name: cells for name, cells in filled.items() if name not in absent}
+        completed = replace_filled(evidence, kept)
+        parts = [engine.log_evidence(completed)[0] for engine in engines(mixture)]
         with np.errstate(divide="ignore"):
-            joint = np.stack([np.frombuffer(w, "<f8") for w in weights_and_total], axis=1)
+            joint = np.stack([np.frombuffer(p, "<f8") for p in parts], axis=1)
             joint = joint + np.log(mixture.weights_)[None, :]
         top = joint.max(axis=1)
         safe = np.where(np.isfinite(top), top, 0.0)
-        scores.append(
-            np.where(
-                np.isfinite(top), safe + np.log(np.exp(joint - safe[:, None]).sum(axis=1)), -np.inf
-            )
-        )
+        total = safe + np.log(np.exp(joint - safe[:, None]).sum(axis=1))
+        scores.append(np.where(np.isfinite(top), total, -np.inf))
     return np.asarray(np.argmax(np.stack(scores, axis=1), axis=1), dtype=np.intp)
 
 
@@ -349,67 +326,37 @@ def sample_given(
     or a table with one row of evidence per sampled row. The same ``random_state`` gives the
     same rows, whatever the threads.
     """
-    tree = mixture.single_tree_
     names = _names(mixture)
     d = len(names)
-    seed = seed_of(random_state)
-    schema = tree._output_schema()
-    tally = EvidenceTally(names)
-    out: list[pa.RecordBatch] = []
     prepared = engines(mixture)
-    if isinstance(given, Mapping):
-        if n is None:
-            raise TypeError(
-                "sample(given=...) needs n, the number of rows, with a dict of evidence"
-            )
-        n = check_int("n", n, 0, MAX_SAMPLE_ROWS)
-        row = one_row(tree, given)
-        weights, unseen = posterior_weights(mixture, row)
-        if np.isnan(weights).any():
-            raise DataError(impossible_message(given))
-        tally.add(unseen)
-        fixed = as_output(row, schema)
-        for start in range(0, n, SAMPLE_ROWS):
-            count = min(SAMPLE_ROWS, n - start)
-            rng = np.random.default_rng([seed, start])
+
+    def draw(
+        evidence: pa.RecordBatch, count: int, first: int, seed: int
+    ) -> tuple[bytes, list[Any], list[int], int]:
+        weights, unseen = posterior_weights(mixture, evidence)
+        impossible = np.isnan(weights[:, 0])
+        rng = np.random.default_rng([seed, first, 1])
+        if evidence.num_rows == 1:
+            # One row of evidence for every draw: only the rows that drew component k need
+            # that component's draws.
+            if impossible[0]:
+                return np.full((d, count), KEPT, np.uint16).tobytes(), [None] * d, unseen, count
             which = _draw_components(np.repeat(weights, count, axis=0), rng)
-            draws = []
+            parts = []
             for k, engine in enumerate(prepared):
-                # Only the rows that drew component k need its draws.
                 m = int((which == k).sum())
-                part = engine.sample_given(row, m, start, _component_seed(seed, k))
-                draws.append((m, part))
-            codes, floats = _interleave(draws, which, d, count)
-            repeated = fixed.take(np.zeros(count, dtype=np.int64))
-            out.append(assemble(tree, codes, floats, count, schema, repeated, rng))
-    else:
-        source = open_source(given)
-        if n is not None and source.total_rows is not None and n != source.total_rows:
-            raise ValueError(f"n={n} but the evidence has {source.total_rows} rows; give n=None")
-        first = 0
-        with evidence_batches(source, names) as batches:
-            for batch in batches:
-                count = batch.num_rows
-                evidence = as_evidence(batch, names)
-                weights, unseen = posterior_weights(mixture, evidence)
-                impossible = np.isnan(weights[:, 0])
-                tally.add(unseen, int(impossible.sum()))
-                rng = np.random.default_rng([seed, first])
-                which = _draw_components(weights, rng)
-                every = [
-                    engine.sample_given(evidence, count, first, _component_seed(seed, k))
-                    for k, engine in enumerate(prepared)
-                ]
-                codes, floats = _pick(every, which, d, count)
-                matrix = np.frombuffer(codes, "<u2").reshape(d, count).copy()
-                matrix[:, impossible] = KEPT
-                given_rows = as_output(evidence, schema)
-                out.append(assemble(tree, matrix.tobytes(), floats, count, schema, given_rows, rng))
-                first += count
-        if n is not None and n != first:
-            raise ValueError(f"n={n} but the evidence has {first} rows; give n=None")
-    tally.warn("their unobserved cells are left null")
-    return pa.Table.from_batches(out, schema=schema)
+                parts.append((m, engine.sample_given(evidence, m, first, _component_seed(seed, k))))
+            codes, floats = _interleave(parts, which, d, count)
+            return codes, floats, unseen, 0
+        which = _draw_components(weights, rng)
+        every = [
+            engine.sample_given(evidence, count, first, _component_seed(seed, k))
+            for k, engine in enumerate(prepared)
+        ]
+        codes, floats = _pick(every, which, impossible)
+        return codes, floats, unseen, int(impossible.sum())
+
+    return sample_given_with(mixture.single_tree_, n, given, random_state, draw)
 
 
 def _interleave(
