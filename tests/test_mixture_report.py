@@ -136,6 +136,10 @@ def test_typical_rows_belong_to_their_component(
         (tbody,) = [c for c in table.children if c.tag == "tbody"]
         shown = [cells(r) for r in tbody.children]
         assert len(shown) == TYPICAL
+        # The most typical: no other row of the component has a higher responsibility.
+        mine = resp[np.argmax(resp, axis=1) == k, k]
+        positions = [int(row[0].replace(",", "")) for row in shown]
+        assert min(resp[positions, k]) >= np.sort(mine)[-TYPICAL]
         for row in shown:
             r = int(row[0].replace(",", ""))
             assert int(np.argmax(resp[r])) == k
