@@ -772,8 +772,8 @@ def shop_sessions_with_crawlers(
     A share ``anomaly_rate`` of the people's sessions become *hybrid* anomalies: a person's
     session whose navigation (:data:`NAVIGATION_COLUMNS`: landing page, pages, products,
     seconds, search and filters) is taken from a fresh crawler session. Such a row breaks the
-    people's dependency of time on pages (sixteen pages in a few seconds), while every pair of
-    its values is common among all sessions, people and crawlers together.
+    people's dependency of time on pages (many pages at about a second each), while its
+    navigation on its own is common among all sessions, people and crawlers together.
 
     Parameters
     ----------

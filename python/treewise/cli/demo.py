@@ -400,8 +400,8 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
             "own: they land anywhere, go as deep as the landing page suggests, a second or so "
             "per page, and never buy. In the held-out sessions, "
             f"{seen.n_planted:,} people's sessions took a crawler's navigation (hybrid "
-            "anomalies): sixteen pages in seconds, which people never do, though every pair "
-            "of values in them is common among all sessions together."
+            "anomalies): many pages at about a second each, which people never do, though "
+            "such navigation on its own is common among all sessions, crawlers included."
         )
         mix.save(visitors_path)
         written.append(visitors_path)
