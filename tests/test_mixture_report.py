@@ -42,7 +42,7 @@ def loaded(mixture: TreeMixture, tmp_path_factory: pytest.TempPathFactory) -> Tr
 
 @pytest.fixture(scope="module")
 def page_path(
-    loaded: TreeMixture, held: pa.Table, tmp_path_factory: pytest.TempPathFactory
+    loaded: TreeMixture, train: pa.Table, held: pa.Table, tmp_path_factory: pytest.TempPathFactory
 ) -> Path:
     path = tmp_path_factory.mktemp("page") / "mixture.html"
     written = write_mixture_report(
@@ -51,6 +51,7 @@ def page_path(
         held,
         typical=TYPICAL,
         keys=["session_id", "visitor_kind"],
+        training=train,
         choice={1: -16.0, 2: -15.0, 3: -15.1},
     )
     assert written == path
@@ -79,7 +80,7 @@ def test_the_page_has_every_section_and_stays_offline(page_path: Path) -> None:
 
 
 def test_the_figures_are_the_models_own(
-    page_path: Path, loaded: TreeMixture, held: pa.Table
+    page_path: Path, loaded: TreeMixture, train: pa.Table, held: pa.Table
 ) -> None:
     page = Page(page_path.read_text("utf-8"))
     names = [str(n) for n in loaded.feature_names_in_]
@@ -96,12 +97,13 @@ def test_the_figures_are_the_models_own(
         assert row[3] == str(len(shared))
         assert row[4] == str(len(comp_edges - single))
         assert row[6] == f"{counts[k]:,} ({counts[k] / len(best):.1%})"
-    # The held-out means, recomputed from score_samples of both models.
+    # The held-out and training means, recomputed from score_samples of both models.
     means = [cells(r) for r in body_rows(page.section("likelihood"))]
-    mix = float(loaded.score_samples(held).mean())
-    tree = float(loaded.single_tree_.score_samples(held).mean())
-    assert means[0][1] == f"{mix:.4f}" and means[1][1] == f"{tree:.4f}"
-    assert means[2][1] == f"{mix - tree:+.4f}"
+    for column, rows in ((1, held), (2, train)):
+        mix = float(loaded.score_samples(rows).mean())
+        tree = float(loaded.single_tree_.score_samples(rows).mean())
+        assert means[0][column] == f"{mix:.4f}" and means[1][column] == f"{tree:.4f}"
+        assert means[2][column] == f"{mix - tree:+.4f}"
     assert "this model" in page.section("likelihood").all_text()
 
 

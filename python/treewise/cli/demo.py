@@ -159,6 +159,7 @@ class VisitorFigures:
     tree: treewise.DependencyTree
     mixture: TreeMixture
     train_rows: int
+    train: pa.Table
     held_out: pa.Table
     crawler_component: int
     crawlers_found: float  # held-out crawlers whose most responsible component is the crawlers'
@@ -202,6 +203,7 @@ def visitor_figures(rows: int, seed: int) -> VisitorFigures:
         tree=tree,
         mixture=mixture,
         train_rows=n_train,
+        train=train,
         held_out=held,
         crawler_component=k,
         crawlers_found=found[k],
@@ -433,12 +435,14 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
             visitors_report,
             seen.held_out,
             keys=["session_id", "visitor_kind"],
+            training=seen.train,
             title="A mixture of two trees: the shop's people and crawlers",
         )
         written.append(visitors_report)
         console.print(
             f"Wrote {visitors_report}: both trees side by side, the edges the single tree "
-            "lacks, and the held-out sessions each component explains."
+            "lacks, the held-out sessions each component explains, and both models' mean ln p "
+            "on the held-out and the training sessions."
         )
         console.print(SCORE_CAUTION)
 

@@ -8,6 +8,7 @@ that comes from the data or the model.
 from __future__ import annotations
 
 import os
+import warnings
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -15,6 +16,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from treewise.checks import check_int
+from treewise.errors import UnseenCategoryWarning
 from treewise.files import write_atomically
 from treewise.sources import check_columns, open_source
 from treewise.views.components import (
@@ -217,25 +219,45 @@ ln p(row) under the mixture. They are real rows of the data.</p>
 </section>"""
 
 
+def _means(model: TreeMixture, data: Any) -> tuple[float, float]:
+    """Mean ln p per row of ``data`` under the mixture and under its single tree."""
+    mixture = float(model.score_samples(data).mean())
+    with warnings.catch_warnings():
+        # score_samples has already warned about values never seen in fitting.
+        warnings.simplefilter("ignore", UnseenCategoryWarning)
+        tree = float(model.single_tree_.score_samples(data).mean())
+    return mixture, tree
+
+
 def _likelihood(
     model: TreeMixture,
     assignment: Assignment | None,
+    training: tuple[float, float] | None,
     choice: Mapping[int, float] | None,
     choice_rule: str,
 ) -> str:
     parts = []
+    sides = []
     if assignment is not None:
-        mix, tree = float(assignment.scores.mean()), float(assignment.tree_scores.mean())
-        body = [
-            ["the mixture", f"{mix:.4f}"],
-            ["the single tree", f"{tree:.4f}"],
-            ["gain of the mixture", f"{mix - tree:+.4f}"],
+        data = (float(assignment.scores.mean()), float(assignment.tree_scores.mean()))
+        sides.append(("the data given", data))
+    if training is not None:
+        sides.append(("the training rows", training))
+    if sides:
+        head = [("model", False)] + [
+            (f"mean ln p per row of {esc(n)} (nats)", True) for n, _ in sides
         ]
-        parts.append(data_table([("model", False), ("mean ln p per row (nats)", True)], body))
+        body = [
+            ["the mixture", *(f"{m:.4f}" for _, (m, _) in sides)],
+            ["the single tree", *(f"{t:.4f}" for _, (_, t) in sides)],
+            ["gain of the mixture", *(f"{m - t:+.4f}" for _, (m, t) in sides)],
+        ]
+        parts.append(data_table(head, body))
         parts.append(
-            '<p class="note">On the data given to this report, which is held-out data only if '
-            "the mixture was not fitted on it. A gain near 0 says one tree explains these rows "
-            "as well as the mixture does.</p>"
+            '<p class="note">The data given to this report is held-out data only if the mixture '
+            "was not fitted on it. Both models score every value, the rare ones behind "
+            '"other" included. A held-out gain near 0 says one tree explains new rows as well '
+            "as the mixture does; on the training rows a mixture always gains a little.</p>"
         )
     if choice:
         kept = len(model.components_)
@@ -262,6 +284,7 @@ def render_mixture_report(
     typical: int = 5,
     keys: Sequence[str] = (),
     tree_edges: int | None = 80,
+    training: Any = None,
     choice: Mapping[int, float] | None = None,
     choice_rule: str = "Held-out mean ln p per row for each number of components K; the "
     "highest is chosen.",
@@ -296,7 +319,8 @@ def render_mixture_report(
     if assignment is not None:
         sections.append(("rows", "Rows per component"))
         body.append(_rows(model, assignment, data, keys, typical))
-    likelihood = _likelihood(model, assignment, choice, choice_rule)
+    trained = None if training is None else _means(model, training)
+    likelihood = _likelihood(model, assignment, trained, choice, choice_rule)
     if likelihood:
         sections.append(("likelihood", "Against the single tree"))
         body.append(likelihood)
@@ -345,6 +369,8 @@ def write_mixture_report(
         Columns of ``data`` to show beside each row.
     tree_edges : int or None, default 80
         Draw at most this many edges (the strongest) per component; None: all.
+    training : table, path or stream, optional
+        The rows the mixture was fitted on, to show both models' mean ln p on them too.
     choice : mapping of int to float, optional
         The figure per candidate number of components, as ``choose_n_components`` returns it.
     choice_rule : str
