@@ -257,7 +257,8 @@ def _likelihood(
             '<p class="note">The data given to this report is held-out data only if the mixture '
             "was not fitted on it. Both models score every value, the rare ones behind "
             '"other" included. A held-out gain near 0 says one tree explains new rows as well '
-            "as the mixture does; on the training rows a mixture always gains a little.</p>"
+            "as the mixture does; a held-out gain well below the training gain says the extra "
+            "trees fit noise.</p>"
         )
     if choice:
         kept = len(model.components_)
