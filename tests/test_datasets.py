@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import re
 from pathlib import Path
 
@@ -136,3 +137,56 @@ def test_demo_runs_and_reports_recovery(tmp_path: Path, capsys: pytest.CaptureFi
     listed = re.findall(r"missed: (\S+) - (\S+)", out)
     assert sorted(listed) == sorted(missed)
     assert "device" in out and "Try next" in out
+
+
+# -- people and crawlers -----------------------------------------------------------------------
+
+
+def test_crawlers_are_their_share_and_hybrids_are_people() -> None:
+    from treewise.datasets import NAVIGATION_COLUMNS, shop_sessions_with_crawlers
+
+    table = shop_sessions_with_crawlers(10_000, seed=2, crawler_share=0.25, anomaly_rate=0.01)
+    assert table.column_names == [*shop_sessions(10, seed=0).column_names, "visitor_kind"]
+    assert "visitor_kind" not in model_columns(table)
+    kind = np.asarray(table["visitor_kind"].to_pylist())
+    planted = np.asarray(table["planted_anomaly"].to_pylist())
+    assert (kind == "crawler").sum() == 2_500 and planted.sum() == 100
+    assert not (planted & (kind == "crawler")).any()
+    assert shop_sessions_with_crawlers(
+        10_000, seed=2, crawler_share=0.25, anomaly_rate=0.01
+    ).equals(table)
+    # A hybrid's navigation comes from a crawler: about a second per page, unlike people.
+    seconds = np.asarray(table["session_seconds"].to_pylist())
+    deep = np.isin(np.asarray(table["pages_viewed"].to_pylist()), ["8-15", "16+"])
+    people = (kind == "person") & ~planted
+    assert np.median(seconds[deep & people]) > 10 * np.median(seconds[deep & planted])
+    assert "session_seconds" in NAVIGATION_COLUMNS
+    with pytest.raises(ValueError, match="crawler_share"):
+        shop_sessions_with_crawlers(100, crawler_share=0.6)
+
+
+def test_each_kind_of_visitor_has_its_own_tree() -> None:
+    # Constructed truth: datasets.CRAWLER_HIDDEN_EDGES and SHOP_HIDDEN_EDGES are the trees the
+    # two kinds are drawn from. A tree fitted to one kind's rows finds that kind's strong
+    # edges, and the edges that set the kinds apart are missing from the other kind's tree.
+    from treewise.datasets import shop_sessions_with_crawlers
+
+    table = shop_sessions_with_crawlers(40_000, seed=1)
+    columns = model_columns(table)
+
+    def fitted_edges(kind: str) -> set[frozenset[str]]:
+        rows = table.filter(pc.equal(table["visitor_kind"], kind))
+        # Crawlers never log in or pay: those columns are constant or null among them, and flagged.
+        flagged = pytest.warns(treewise.ColumnKindWarning)
+        with flagged if kind == "crawler" else contextlib.nullcontext():
+            model = treewise.DependencyTree(columns=columns).fit(rows)
+        names = list(model.feature_names_in_)
+        return {frozenset((names[p], names[c])) for c, p in enumerate(model.parent_) if p >= 0}
+
+    crawlers, people = fitted_edges("crawler"), fitted_edges("person")
+    own = [("landing_section", "product_views"), ("landing_section", "filter_used"),
+           ("browser_family", "os_family")]  # fmt: skip
+    for edge in own:
+        assert frozenset(edge) in crawlers and frozenset(edge) not in people
+    for edge in [("pages_viewed", "product_views"), ("search_used", "filter_used")]:
+        assert frozenset(edge) in people and frozenset(edge) not in crawlers

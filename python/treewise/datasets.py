@@ -45,13 +45,15 @@ __all__ = [
     "model_columns",
     "shop_sessions",
     "shop_sessions_broken_tag",
+    "shop_sessions_with_crawlers",
 ]
 
 Level = str | bool
 Codes = npt.NDArray[np.int64]
 
-#: Columns a fit must leave out: a unique key and the planted-anomaly answer key.
-NON_MODEL_COLUMNS: Final = ("session_id", "planted_anomaly")
+#: Columns a fit must leave out: a unique key and the answer keys (planted anomalies, and the
+#: kind of visitor in :func:`shop_sessions_with_crawlers`).
+NON_MODEL_COLUMNS: Final = ("session_id", "planted_anomaly", "visitor_kind")
 
 #: The (parent, child) edges of the tree the sessions are drawn from, parents before children.
 SHOP_HIDDEN_EDGES: Final[tuple[tuple[str, str], ...]] = (
@@ -346,7 +348,10 @@ def hidden_edges() -> list[tuple[str, str]]:
 
 
 def model_columns(table: pa.Table) -> list[str]:
-    """Return the columns of ``table`` to fit: all but ``session_id`` and ``planted_anomaly``.
+    """Return the columns of ``table`` to fit: all but the key and the answer keys.
+
+    The key is ``session_id``; the answer keys are ``planted_anomaly`` and, in tables of
+    :func:`shop_sessions_with_crawlers`, ``visitor_kind``.
 
     Parameters
     ----------
@@ -356,7 +361,7 @@ def model_columns(table: pa.Table) -> list[str]:
     Returns
     -------
     list of str
-        The column names in table order, without the key and the anomaly label.
+        The column names in table order, without the key and the answer keys.
     """
     return [name for name in table.column_names if name not in NON_MODEL_COLUMNS]
 
@@ -502,7 +507,21 @@ def shop_sessions(n: int = 100_000, seed: int = 0, anomaly_rate: float = 0.002) 
     rate = _check_arguments(n, seed, anomaly_rate)
     n = int(n)
     rng = np.random.default_rng(int(seed))
+    codes, seconds, basket = _draw_people(rng, n)
 
+    n_anomalies = round(n * rate)
+    planted = np.zeros(n, dtype=np.bool_)
+    if n_anomalies:
+        rows = np.sort(rng.choice(n, size=n_anomalies, replace=False)).astype(np.int64)
+        planted[rows] = True
+        _plant_anomalies(rng, codes, seconds, basket, rows)
+    return _assemble(rng, codes, seconds, basket, planted)
+
+
+def _draw_people(
+    rng: np.random.Generator, n: int
+) -> tuple[dict[str, Codes], npt.NDArray[np.float64], npt.NDArray[np.float64]]:
+    """Draw ``n`` people's sessions from the hidden tree: codes, seconds and baskets."""
     codes: dict[str, Codes] = {
         "device": rng.choice(len(DEVICE_MARGINAL), size=n, p=DEVICE_MARGINAL).astype(np.int64)
     }
@@ -527,14 +546,18 @@ def shop_sessions(n: int = 100_000, seed: int = 0, anomaly_rate: float = 0.002) 
             if table_parent != parent:
                 raise AssertionError(f"{child!r} is drawn from {table_parent!r}, not {parent!r}")
             codes[child] = _draw_child(rng, codes[parent], table)
+    return codes, seconds, basket
 
-    n_anomalies = round(n * rate)
-    planted = np.zeros(n, dtype=np.bool_)
-    if n_anomalies:
-        rows = np.sort(rng.choice(n, size=n_anomalies, replace=False)).astype(np.int64)
-        planted[rows] = True
-        _plant_anomalies(rng, codes, seconds, basket, rows)
 
+def _assemble(
+    rng: np.random.Generator,
+    codes: dict[str, Codes],
+    seconds: npt.NDArray[np.float64],
+    basket: npt.NDArray[np.float64],
+    planted: npt.NDArray[np.bool_],
+) -> pa.Table:
+    """The table of COLUMNS from drawn codes; the key's gaps are the last draws of ``rng``."""
+    n = planted.shape[0]
     no_payment = _code("payment_method", "none")
     # Random gaps make the key look like an id sequence shared with other traffic.
     session_id = 1_000_000 + np.cumsum(rng.integers(1, 8, n, dtype=np.int64))
@@ -586,3 +609,218 @@ def shop_sessions_broken_tag(
     fired = table.column("cart_add").to_numpy(zero_copy_only=False)
     index = table.schema.get_field_index("cart_add")
     return table.set_column(index, "cart_add", pa.array(fired & ~broken, pa.bool_()))
+
+
+# -- a second kind of visitor: scripted crawlers ---------------------------------------------
+
+#: The (parent, child) edges of the crawlers' own hidden tree, parents before children. It
+#: differs from the people's: crawlers land anywhere and their landing page sets how deep they
+#: go, how many products they fetch and whether they follow filter links; their operating system
+#: goes with their browser, not their device; they never log in, fill a cart or pay.
+CRAWLER_HIDDEN_EDGES: Final[tuple[tuple[str, str], ...]] = (
+    ("device", "browser_family"),
+    ("browser_family", "os_family"),
+    ("device", "hour_bucket"),
+    ("hour_bucket", "weekday_bucket"),
+    ("device", "region"),
+    ("region", "site_language"),
+    ("device", "referrer_kind"),
+    ("referrer_kind", "landing_section"),
+    ("referrer_kind", "returning_visitor"),
+    ("returning_visitor", "logged_in"),
+    ("returning_visitor", "newsletter_signup"),
+    ("logged_in", "wishlist_add"),
+    ("landing_section", "pages_viewed"),
+    ("landing_section", "product_views"),
+    ("landing_section", "filter_used"),
+    ("pages_viewed", "session_seconds"),
+    ("pages_viewed", "search_used"),
+    ("product_views", "cart_add"),
+    ("cart_add", "payment_method"),
+    ("payment_method", "coupon_entered"),
+    ("payment_method", "support_chat"),
+    ("payment_method", "basket_value_eur"),
+    ("basket_value_eur", "purchase"),
+)
+
+CRAWLER_DEVICE_MARGINAL: Final = (0.95, 0.05, 0.0)
+
+
+def _same(row: Sequence[float], parent: str) -> dict[Level, Sequence[float]]:
+    """One row of probabilities for every level of ``parent``: the child ignores its parent."""
+    return dict.fromkeys(LEVELS[parent], row)
+
+
+#: The crawlers' P(child | parent), laid out as CONDITIONALS; invented like the people's.
+CRAWLER_CONDITIONALS: Final[dict[str, tuple[str, Mapping[Level, Sequence[float]]]]] = {
+    "browser_family": ("device", _same((0.25, 0.0, 0.05, 0.0, 0.70), "device")),
+    "os_family": (
+        "browser_family",
+        {
+            "chrome": (0.05, 0.0, 0.90, 0.0, 0.0, 0.05),
+            "safari": (0.0, 0.50, 0.0, 0.0, 0.0, 0.50),
+            "firefox": (0.0, 0.0, 0.95, 0.0, 0.0, 0.05),
+            "in_app": (0.0, 0.0, 0.0, 0.0, 0.0, 1.0),
+            "other": (0.0, 0.0, 0.25, 0.0, 0.0, 0.75),
+        },
+    ),
+    # Crawlers run round the clock, every day alike.
+    "hour_bucket": ("device", _same((0.25, 0.25, 0.25, 0.25), "device")),
+    "weekday_bucket": ("hour_bucket", _same((5 / 7, 2 / 7), "hour_bucket")),
+    "region": ("device", _same((0.0, 0.0, 0.0, 0.25, 0.75), "device")),
+    "site_language": (
+        "region",
+        _same((0.5, 0.5, 0.0), "region") | {"abroad": (0.05, 0.90, 0.05)},
+    ),
+    "referrer_kind": ("device", _same((0.85, 0.0, 0.0, 0.0, 0.0, 0.15), "device")),
+    "landing_section": (
+        "referrer_kind",
+        _same((0.22, 0.22, 0.22, 0.14, 0.10, 0.10), "referrer_kind"),
+    ),
+    "returning_visitor": ("referrer_kind", _same((0.99, 0.01), "referrer_kind")),
+    "logged_in": ("returning_visitor", _same((1.0, 0.0), "returning_visitor")),
+    "newsletter_signup": ("returning_visitor", _same((1.0, 0.0), "returning_visitor")),
+    "wishlist_add": ("logged_in", _same((1.0, 0.0), "logged_in")),
+    "pages_viewed": (
+        "landing_section",
+        {
+            "home": (0.0, 0.0, 0.0, 0.05, 0.25, 0.70),
+            "category": (0.0, 0.0, 0.05, 0.15, 0.50, 0.30),
+            "product": (0.0, 0.80, 0.20, 0.0, 0.0, 0.0),
+            "sale": (0.0, 0.0, 0.10, 0.30, 0.45, 0.15),
+            "guides": (0.0, 0.10, 0.60, 0.30, 0.0, 0.0),
+            "campaign": (0.0, 0.90, 0.10, 0.0, 0.0, 0.0),
+        },
+    ),
+    "product_views": (
+        "landing_section",
+        {
+            "home": (0.05, 0.0, 0.15, 0.50, 0.30),
+            "category": (0.0, 0.0, 0.05, 0.25, 0.70),
+            "product": (0.0, 1.0, 0.0, 0.0, 0.0),
+            "sale": (0.0, 0.0, 0.10, 0.30, 0.60),
+            "guides": (0.90, 0.10, 0.0, 0.0, 0.0),
+            "campaign": (0.70, 0.30, 0.0, 0.0, 0.0),
+        },
+    ),
+    "filter_used": (
+        "landing_section",
+        {
+            "home": (0.70, 0.30),
+            "category": (0.15, 0.85),
+            "product": (1.0, 0.0),
+            "sale": (0.30, 0.70),
+            "guides": (1.0, 0.0),
+            "campaign": (1.0, 0.0),
+        },
+    ),
+    "search_used": ("pages_viewed", _same((0.98, 0.02), "pages_viewed")),
+    "cart_add": ("product_views", _same((1.0, 0.0), "product_views")),
+    "payment_method": ("cart_add", _same((1.0, 0.0, 0.0, 0.0, 0.0, 0.0), "cart_add")),
+    "coupon_entered": ("payment_method", _same((1.0, 0.0), "payment_method")),
+    "support_chat": ("payment_method", _same((1.0, 0.0), "payment_method")),
+}
+
+#: Crawlers fetch a page in about a second: median session seconds per pages_viewed level.
+CRAWLER_SECONDS_MEDIAN: Final = (1.0, 1.0, 2.0, 4.0, 9.0, 18.0)
+CRAWLER_SECONDS_SIGMA: Final = 0.35
+#: The columns a hybrid anomaly takes from a crawler: how the session moved through the shop.
+NAVIGATION_COLUMNS: Final = (
+    "landing_section",
+    "pages_viewed",
+    "product_views",
+    "session_seconds",
+    "search_used",
+    "filter_used",
+)
+
+
+def _draw_crawlers(
+    rng: np.random.Generator, n: int
+) -> tuple[dict[str, Codes], npt.NDArray[np.float64], npt.NDArray[np.float64]]:
+    """Draw ``n`` crawler sessions from the crawlers' hidden tree: codes, seconds and baskets."""
+    device = rng.choice(3, size=n, p=CRAWLER_DEVICE_MARGINAL).astype(np.int64)
+    codes: dict[str, Codes] = {"device": device}
+    seconds = np.empty(0)
+    for parent, child in CRAWLER_HIDDEN_EDGES:
+        if child == "session_seconds":
+            log_median = np.log(np.asarray(CRAWLER_SECONDS_MEDIAN))[codes[parent]]
+            raw = np.exp(log_median + CRAWLER_SECONDS_SIGMA * rng.standard_normal(n))
+            seconds = np.maximum(np.round(raw), 1.0)
+        elif child in ("basket_value_eur", "checkout_started", "purchase"):
+            continue  # crawlers never pay: no basket, no checkout, no purchase
+        else:
+            table_parent, rows = CRAWLER_CONDITIONALS[child]
+            if table_parent != parent:
+                raise AssertionError(f"{child!r} is drawn from {table_parent!r}, not {parent!r}")
+            table = np.array([rows[level] for level in LEVELS[parent]], dtype=np.float64)
+            codes[child] = _draw_child(rng, codes[parent], table)
+    return codes, seconds, np.full(n, np.nan)
+
+
+def shop_sessions_with_crawlers(
+    n: int = 100_000, seed: int = 0, crawler_share: float = 0.3, anomaly_rate: float = 0.0
+) -> pa.Table:
+    """Sessions of the invented shop from two kinds of visitor: people and scripted crawlers.
+
+    People's sessions are drawn as :func:`shop_sessions` draws them (without its planted
+    anomalies); crawlers' from a second hidden tree with other edges and tables
+    (:data:`CRAWLER_HIDDEN_EDGES`): they land anywhere, go as deep as their landing page
+    suggests in a second or so per page, and never log in or buy. The two kinds are shuffled
+    together. A single tree has to average the two structures; a mixture of two trees need not.
+
+    A share ``anomaly_rate`` of the people's sessions become *hybrid* anomalies: a person's
+    session whose navigation (:data:`NAVIGATION_COLUMNS`: landing page, pages, products,
+    seconds, search and filters) is taken from a fresh crawler session. Such a row breaks the
+    people's dependency of time on pages (many pages at about a second each), while its
+    navigation on its own is common among all sessions, people and crawlers together.
+
+    Parameters
+    ----------
+    n : int, default 100_000
+        Sessions, at least 1.
+    seed : int, default 0
+        Seed of the random generator; the same arguments give the same table.
+    crawler_share : float, default 0.3
+        The share of crawler sessions, at least 0 and below 0.5 (``round(n * crawler_share)``).
+    anomaly_rate : float, default 0.0
+        The share of all rows made hybrid anomalies (taken from the people), in ``[0, 0.5)``.
+
+    Returns
+    -------
+    pyarrow.Table
+        The columns of :func:`shop_sessions` (``planted_anomaly`` marks the hybrids) and
+        ``visitor_kind`` ("person" or "crawler"), the answer key of the two kinds, which
+        :func:`model_columns` leaves out like the other keys.
+    """
+    rate = _check_arguments(n, seed, anomaly_rate)
+    if isinstance(crawler_share, bool) or not isinstance(crawler_share, numbers.Real):
+        raise TypeError(f"crawler_share must be a number, got {crawler_share!r}")
+    share = float(crawler_share)
+    if not (math.isfinite(share) and 0.0 <= share < 0.5):
+        raise ValueError(f"crawler_share must be at least 0 and below 0.5, got {crawler_share}")
+    n = int(n)
+    rng = np.random.default_rng(int(seed))
+    n_crawlers = round(n * share)
+    people, people_seconds, people_basket = _draw_people(rng, n - n_crawlers)
+    bots, bot_seconds, bot_basket = _draw_crawlers(rng, n_crawlers)
+    order = rng.permutation(n)
+    codes = {name: np.concatenate([people[name], bots[name]])[order] for name in people}
+    seconds = np.concatenate([people_seconds, bot_seconds])[order]
+    basket = np.concatenate([people_basket, bot_basket])[order]
+    crawler = (np.arange(n) >= n - n_crawlers)[order]
+
+    planted = np.zeros(n, dtype=np.bool_)
+    n_anomalies = min(round(n * rate), n - n_crawlers)
+    if n_anomalies:
+        rows = np.sort(rng.choice(np.flatnonzero(~crawler), size=n_anomalies, replace=False))
+        planted[rows] = True
+        donor, donor_seconds, _ = _draw_crawlers(rng, n_anomalies)
+        for name in NAVIGATION_COLUMNS:
+            if name == "session_seconds":
+                seconds[rows] = donor_seconds
+            else:
+                codes[name][rows] = donor[name]
+    table = _assemble(rng, codes, seconds, basket, planted)
+    kind = pa.array(np.where(crawler, "crawler", "person"), pa.string())
+    return table.append_column("visitor_kind", kind)

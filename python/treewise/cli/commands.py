@@ -16,10 +16,12 @@ import click
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
+from click.core import ParameterSource
 from rich.console import Console
 
 import treewise
 from treewise.checks import check_memory_limit
+from treewise.cli import mixtures
 from treewise.domains import read_domains
 from treewise.private import guarantee_lines
 from treewise.sources import open_source
@@ -74,12 +76,30 @@ def _check_output(path: str) -> None:
         raise FileNotFoundError(f"the output's directory {parent} does not exist; create it first")
 
 
-def _load(path: str) -> treewise.DependencyTree:
-    """Load a model file, saying which file was bad."""
+def _load(path: str, command: str = "this command") -> treewise.DependencyTree:
+    """Load a tree file, saying which file was bad; a mixture file is refused by name."""
+    if mixtures.is_mixture(path):
+        raise click.UsageError(
+            f"{path} is a mixture of trees; {command} takes a single tree file, not a mixture "
+            "(not available for mixtures yet)"
+        )
     try:
         return treewise.load(path)
     except treewise.CorruptModelError as e:
         raise treewise.CorruptModelError(f"cannot read the model file {path}: {e}") from e
+
+
+def _given(*names: str) -> list[str]:
+    """Which of the current command's parameters were given on the command line."""
+    ctx = click.get_current_context()
+    return [n for n in names if ctx.get_parameter_source(n) is ParameterSource.COMMANDLINE]
+
+
+def _refuse_for_mixture(what: str, *names: str) -> None:
+    """A usage error naming the first of ``names`` given, which a mixture cannot do yet."""
+    for name in _given(*names):
+        option = "--" + name.replace("_", "-")
+        raise click.UsageError(f"{option} is not available for a mixture {what} yet")
 
 
 def _seconds(start: float) -> str:
@@ -188,6 +208,19 @@ def _prune(ctx: click.Context, param: click.Parameter, value: str | None) -> str
     if not 0.0 < level < 1.0:
         raise click.BadParameter(f"give 'bic' or a level between 0 and 1, not {value!r}")
     return level
+
+
+def _components(ctx: click.Context, param: click.Parameter, value: str | None) -> int | str | None:
+    """``--components``: ``auto``, or a number of trees from 1 to 1024."""
+    if value is None or value == "auto":
+        return value
+    try:
+        k = int(value)
+    except ValueError:
+        k = 0
+    if not 1 <= k <= 1024:
+        raise click.BadParameter(f"give 'auto' or a number of trees from 1 to 1024, not {value!r}")
+    return k
 
 
 def _memory_limit(_ctx: click.Context, _param: click.Parameter, value: str | None) -> str | None:
@@ -361,6 +394,21 @@ Example:
     help="Seed the privacy noise, for tests and demos only: a seeded release is NOT private "
     "against anyone who knows the seed.",
 )
+@click.option(
+    "--components",
+    callback=_components,
+    metavar="K|auto",
+    help="Fit a mixture of K trees by EM and save a mixture file; 'auto' picks K from "
+    "1,2,3,4,6,8 by the mean ln p of a seeded 20%% of rows held out (K=1 saves a tree file).",
+)
+@click.option(
+    "--seed",
+    type=click.IntRange(0, 2**64 - 1),
+    metavar="S",
+    default=0,
+    show_default=True,
+    help="With --components: seed of EM's start and of auto's held-out rows.",
+)
 @click.option("--no-progress", is_flag=True, help="Never show a progress bar.")
 def fit(
     data: tuple[str, ...],
@@ -380,9 +428,11 @@ def fit(
     domains_path: str | None,
     privacy_split: dict[str, float] | None,
     noise_seed: int | None,
+    components: int | str | None,
+    seed: int,
     no_progress: bool,
 ) -> None:
-    """Fit a dependency tree to DATA and save it to MODEL.
+    """Fit a dependency tree (or, with --components, a mixture of trees) to DATA; save it to MODEL.
 
     DATA: Parquet, CSV or Arrow IPC files, directories of them, or globs; they are read batch
     by batch, so they may be larger than memory. Leave out keys and labels (ids, timestamps,
@@ -390,6 +440,32 @@ def fit(
     """
     chosen = _columns(data, columns, exclude)
     _check_output(output)
+    if components is None and _given("seed"):
+        raise click.UsageError("--seed applies to --components; a tree fit draws nothing at random")
+    if components is not None:
+        given = {
+            "--root": root,
+            "--prune": prune,
+            "--batch-rows": batch_rows,
+            "--epsilon": epsilon,
+            "--delta": delta,
+            "--domains": domains_path,
+            "--privacy-split": privacy_split,
+            "--noise-seed": noise_seed,
+        }
+        for option, value in given.items():
+            if value is not None:
+                raise click.UsageError(f"{option} is not available with --components yet")
+        tree_params = {
+            "columns": chosen,
+            "max_categories": max_categories,
+            "n_bins": bins,
+            "kinds": kinds or None,
+            "alpha": alpha,
+            "memory_limit": _limit(memory_limit),
+        }
+        mixtures.fit_mixture(_console(), _source(data), output, components, seed, tree_params)
+        return
     start = time.perf_counter()
     model = treewise.DependencyTree(
         columns=chosen,
@@ -456,8 +532,19 @@ def score(
 
     OUT holds the key columns, `score` (ln p(row) in nats: lower is more surprising) and, with
     --surprisal, `surprisal_<column>` for each modelled column (-ln P(value | parent value)).
-    The most surprising rows are printed with the three columns that made them so.
+    The most surprising rows are printed with the three columns that made them so. A mixture
+    file writes `score`, `component` and `responsibility_<k>` (docs/cli.md, "Mixtures of trees").
     """
+    if mixtures.is_mixture(model_path):
+        if surprisal:
+            raise click.UsageError(
+                "--surprisal is not available for a mixture yet; score writes score, "
+                "component and responsibility_<k>"
+            )
+        mix = mixtures.load_mixture(model_path)
+        _check_output(output)
+        mixtures.score_mixture(_console(), mix, _source(data), output, keys, top)
+        return
     model = _load(model_path)
     _check_output(output)
     start = time.perf_counter()
@@ -519,13 +606,20 @@ def sample(
 
     The rows have the fitted columns and types, with real values: a numeric column gets a value
     drawn from those seen inside the sampled bin, the "other" code one of the rare values behind
-    it, and only the null code comes back as null.
+    it, and only the null code comes back as null. A mixture file draws a component by its
+    weight, then a row from its tree.
     """
+    if seed is None:
+        seed = secrets.randbits(63)
+    if mixtures.is_mixture(model_path):
+        _refuse_for_mixture("sample (its rows are drawn in memory)", "batch_rows", "memory_limit")
+        mix = mixtures.load_mixture(model_path)
+        _check_output(output)
+        mixtures.sample_mixture(_console(), mix, n_rows, output, seed)
+        return
     model = _load(model_path)
     model.set_params(memory_limit=_limit(memory_limit))
     _check_output(output)
-    if seed is None:
-        seed = secrets.randbits(63)
     start = time.perf_counter()
     written = model.sample_to_parquet(
         n_rows, output, random_state=seed, batch_rows=batch_rows, progress=_progress(no_progress)
@@ -550,8 +644,12 @@ Example:
 def show(model_path: str, as_json: bool) -> None:
     """Show the tree of MODEL, indented from the root.
 
-    Each column shows its cardinality and its mutual information with its parent (nats).
+    Each column shows its cardinality and its mutual information with its parent (nats). A
+    mixture file shows its components, then each component's tree.
     """
+    if mixtures.is_mixture(model_path):
+        mixtures.show_mixture(_console(), mixtures.load_mixture(model_path), model_path, as_json)
+        return
     model = _load(model_path)
     if as_json:
         click.echo(json.dumps(model_json(model), indent=2, allow_nan=False))
@@ -615,6 +713,14 @@ Example:
     show_default=True,
     help="Draw at most this many edges (the strongest) in the tree picture.",
 )
+@click.option(
+    "--typical",
+    type=click.IntRange(0, 10_000),
+    metavar="K",
+    default=5,
+    show_default=True,
+    help="For a mixture: show this many of each component's most typical rows of DATA.",
+)
 @click.option("--title", metavar="TEXT", help="The page's title (default: from MODEL).")
 def report(
     model_path: str,
@@ -626,6 +732,7 @@ def report(
     seed: int,
     heatmaps: int,
     tree_edges: int,
+    typical: int,
     title: str | None,
 ) -> None:
     """Write a self-contained HTML report about MODEL (and DATA) to OUT.
@@ -633,14 +740,33 @@ def report(
     The page shows the tree, its edges, the conditional tables of the strongest edges and
     every column's distribution. With DATA it also shows how the rows score, the most
     surprising rows and why, and how rows sampled from MODEL compare with DATA. It has no
-    scripts and fetches nothing: open it in any browser, offline.
+    scripts and fetches nothing: open it in any browser, offline. A mixture file gets the
+    mixture report: its components, their trees, and with DATA the rows each one explains.
     """
     from treewise.views.report import write_report  # matplotlib loads only for this command
 
-    model = _load(model_path)
-    _check_output(output)
     if keys and not data:
         raise click.UsageError("--key needs DATA to take the column from")
+    if mixtures.is_mixture(model_path):
+        _refuse_for_mixture("report", "top", "synthetic_rows", "seed", "heatmaps")
+        mix = mixtures.load_mixture(model_path)
+        _check_output(output)
+        start = time.perf_counter()
+        mixtures.report_mixture(
+            mix,
+            output,
+            _source(data) if data else None,
+            keys,
+            typical,
+            tree_edges,
+            title or f"Mixture of trees report: {Path(model_path).name}",
+        )
+        _console().print(f"Wrote the report to {output} in {_seconds(start)}.")
+        return
+    if _given("typical"):
+        raise click.UsageError("--typical is for a mixture's report; MODEL is a single tree")
+    model = _load(model_path)
+    _check_output(output)
     start = time.perf_counter()
     write_report(
         model,
@@ -663,7 +789,7 @@ def _side(spec: str) -> Any:
     if path.is_file():
         with open(path, "rb") as f:
             if f.read(8) == b"TREEWISE":
-                return _load(spec)
+                return _load(spec, "compare")
     return spec
 
 

@@ -12,9 +12,11 @@ import math
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import numpy.typing as npt
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.dataset as pads
@@ -30,8 +32,10 @@ from treewise.datasets import (
     model_columns,
     shop_sessions,
     shop_sessions_broken_tag,
+    shop_sessions_with_crawlers,
 )
 from treewise.fidelity import compare_columns
+from treewise.mixture import TreeMixture
 from treewise.views.terminal import (
     SAMPLE_CAUTION,
     SCORE_CAUTION,
@@ -39,11 +43,12 @@ from treewise.views.terminal import (
     changed_edges_table,
     explain_rows,
     fidelity_table,
+    mixture_table,
     surprising_table,
     tree_view,
 )
 
-__all__ = ["run"]
+__all__ = ["VisitorFigures", "run", "visitor_figures"]
 
 #: How many Parquet files the sessions are split into.
 N_FILES = 8
@@ -61,6 +66,13 @@ REPORT_SYNTHETIC_ROWS = 50_000
 WEEK_TWO_SHARE = 0.25
 #: Rows of the second week shown as the most unlike the first.
 WEEK_TWO_ROWS = 5
+#: Training sessions of the two-visitor step: ``--rows``, within these bounds (it stays quick).
+VISITOR_ROWS = (2_000, 100_000)
+#: The share of crawler sessions, and of held-out sessions made hybrid anomalies.
+CRAWLER_SHARE = 0.3
+HYBRID_RATE = 0.005
+#: The share of held-out sessions flagged (the lowest scores) when counting caught hybrids.
+FLAG_SHARE = 0.01
 
 
 @contextmanager
@@ -140,6 +152,71 @@ def _synthetic_table(
     return table, largest
 
 
+@dataclass(frozen=True)
+class VisitorFigures:
+    """What the two-visitor step measures, on training and held-out sessions of its seed."""
+
+    tree: treewise.DependencyTree
+    mixture: TreeMixture
+    train_rows: int
+    train: pa.Table
+    held_out: pa.Table
+    crawler_component: int
+    crawlers_found: float  # held-out crawlers whose most responsible component is the crawlers'
+    purity: float  # sessions the crawler component explains best that are crawlers
+    tree_mean: float  # held-out mean ln p per session
+    mixture_mean: float
+    n_planted: int
+    n_flagged: int
+    tree_caught: int
+    mixture_caught: int
+
+
+def visitor_figures(rows: int, seed: int) -> VisitorFigures:
+    """Fit a tree and a mixture of two to people and crawlers; measure them on held-out rows.
+
+    ``rows`` (clipped to VISITOR_ROWS) training sessions and half as many held-out ones are
+    drawn by :func:`treewise.datasets.shop_sessions_with_crawlers` (seeds ``seed + 10`` and
+    ``seed + 11``); the held-out ones hold hybrid anomalies. Each model flags the FLAG_SHARE
+    of held-out sessions with the lowest ``score_samples``.
+    """
+    n_train = min(max(rows, VISITOR_ROWS[0]), VISITOR_ROWS[1])
+    train = shop_sessions_with_crawlers(n_train, seed=seed + 10, crawler_share=CRAWLER_SHARE)
+    held = shop_sessions_with_crawlers(
+        n_train // 2, seed=seed + 11, crawler_share=CRAWLER_SHARE, anomaly_rate=HYBRID_RATE
+    )
+    columns = model_columns(train)
+    tree = treewise.DependencyTree(columns=columns).fit(train)
+    mixture = TreeMixture(n_components=2, columns=columns, random_state=seed).fit(train)
+    crawler = np.asarray(held["visitor_kind"].to_pylist()) == "crawler"
+    planted = np.asarray(held["planted_anomaly"].to_pylist(), dtype=np.bool_)
+    best = mixture.predict(held)
+    found = [float(np.mean(best[crawler] == k)) if crawler.any() else 0.0 for k in range(2)]
+    k = int(np.argmax(found))
+    tree_scores, mixture_scores = tree.score_samples(held), mixture.score_samples(held)
+    n_flagged = max(1, math.ceil(held.num_rows * FLAG_SHARE))
+
+    def caught(scores: npt.NDArray[np.float64]) -> int:
+        return int(planted[np.argsort(scores, kind="stable")[:n_flagged]].sum())
+
+    return VisitorFigures(
+        tree=tree,
+        mixture=mixture,
+        train_rows=n_train,
+        train=train,
+        held_out=held,
+        crawler_component=k,
+        crawlers_found=found[k],
+        purity=float(np.mean(crawler[best == k])) if (best == k).any() else 0.0,
+        tree_mean=float(tree_scores.mean()),
+        mixture_mean=float(mixture_scores.mean()),
+        n_planted=int(planted.sum()),
+        n_flagged=n_flagged,
+        tree_caught=caught(tree_scores),
+        mixture_caught=caught(mixture_scores),
+    )
+
+
 def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> None:
     """Run the demo and print what it finds.
 
@@ -165,6 +242,8 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     report_path = directory / "report.html"
     week_two = directory / "week2"
     changes_path = directory / "changes.html"
+    visitors_path = directory / "visitors-mixture.treewise"
+    visitors_report = directory / "visitors.html"
 
     with _step(console, 1, f"Generate {rows:,} sessions of an invented shop"):
         table = shop_sessions(n=rows, seed=seed)
@@ -311,6 +390,62 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
             "and the sessions most unlike the first week."
         )
 
+    with _step(console, 9, "Two kinds of visitor: one tree, or a mixture of two trees?"):
+        from treewise.views.mixture_report import write_mixture_report
+
+        seen = visitor_figures(rows, seed)
+        mix = seen.mixture
+        n_held = seen.held_out.num_rows
+        console.print(
+            f"Drew {seen.train_rows:,} training and {n_held:,} held-out sessions of the same shop "
+            f"in which {CRAWLER_SHARE:.0%} are scripted crawlers. Crawlers follow a tree of their "
+            "own: they land anywhere, go as deep as the landing page suggests, a second or so "
+            "per page, and never buy. In the held-out sessions, "
+            f"{seen.n_planted:,} people's sessions took a crawler's navigation (hybrid "
+            "anomalies): many pages at about a second each, which people never do, though "
+            "such navigation on its own is common among all sessions, crawlers included."
+        )
+        mix.save(visitors_path)
+        written.append(visitors_path)
+        state = "converged" if mix.converged_ else "not converged"
+        console.print(
+            f"Fitted one tree and a mixture of 2 trees ({mix.n_iter_} EM iterations, {state}) "
+            f"to the training sessions; saved the mixture to {visitors_path}."
+        )
+        console.print(mixture_table(mix))
+        console.print(
+            f"Component {seen.crawler_component} is the crawlers: it is the most responsible "
+            f"component of {seen.crawlers_found:.1%} of the held-out crawler sessions, and "
+            f"{seen.purity:.1%} of the sessions it explains best are crawlers."
+        )
+        gain = seen.mixture_mean - seen.tree_mean
+        console.print(
+            f"Held-out mean ln p per session: {seen.tree_mean:.3f} under the tree, "
+            f"{seen.mixture_mean:.3f} under the mixture, a gain of {gain:.3f} nats per session."
+        )
+        planted = max(1, seen.n_planted)
+        console.print(
+            f"Flagging the {seen.n_flagged:,} lowest-scoring held-out sessions "
+            f"({FLAG_SHARE:.0%}): the tree catches {seen.tree_caught} of the "
+            f"{seen.n_planted} hybrid anomalies ({seen.tree_caught / planted:.0%}), the mixture "
+            f"{seen.mixture_caught} ({seen.mixture_caught / planted:.0%})."
+        )
+        write_mixture_report(
+            mix,
+            visitors_report,
+            seen.held_out,
+            keys=["session_id", "visitor_kind"],
+            training=seen.train,
+            title="A mixture of two trees: the shop's people and crawlers",
+        )
+        written.append(visitors_report)
+        console.print(
+            f"Wrote {visitors_report}: both trees side by side, the edges the single tree "
+            "lacks, the held-out sessions each component explains, and both models' mean ln p "
+            "on the held-out and the training sessions."
+        )
+        console.print(SCORE_CAUTION)
+
     console.print()
     console.rule(Text("Done", style="bold"), align="left")
     console.print(f"In {time.perf_counter() - begin:.1f} s the demo wrote:")
@@ -323,6 +458,7 @@ def run(rows: int, directory: Path, seed: int, progress: bool | None = None) -> 
     )
     console.print(f"  treewise sample {model_path} -n 10000 -o more-sessions.parquet --seed 1")
     console.print(f"  treewise report {model_path} -o shop-report.html")
+    console.print(f"  treewise show {visitors_path}")
     console.print(
         f"  treewise compare {folder} {week_two} -o week2-changes.html "
         "--exclude session_id,planted_anomaly --key session_id"

@@ -28,6 +28,8 @@ __all__ = [
     "Findings",
     "find",
     "histogram_section",
+    "replayable",
+    "rows_at",
     "surprising_section",
     "synthetic_section",
 ]
@@ -51,7 +53,7 @@ class Findings:
     pairs: pa.Table | None = None  # per numeric edge: rank correlations
 
 
-def _replayable(data: Any) -> Any:
+def replayable(data: Any) -> Any:
     """``data`` as something that can be read several times (a one-shot stream is read now)."""
     source = open_source(data)
     if source.replayable:
@@ -62,7 +64,7 @@ def _replayable(data: Any) -> Any:
     return table
 
 
-def _rows_at(source: Source, columns: list[str], positions: npt.NDArray[np.int64]) -> pa.Table:
+def rows_at(source: Source, columns: list[str], positions: npt.NDArray[np.int64]) -> pa.Table:
     """The rows at ``positions`` (in that order), read batch by batch."""
     wanted = np.sort(positions)
     pieces: list[pa.Table] = []
@@ -92,7 +94,7 @@ def find(
 ) -> Findings:
     """Score ``data``, find its most surprising rows, and compare synthetic rows with it."""
     names = [str(n) for n in model.feature_names_in_]
-    data = _replayable(data)
+    data = replayable(data)
     source = open_source(data)
     keys = check_columns(source.names, list(keys), source.description) if keys else []
     scores = model.score_samples(data)
@@ -101,7 +103,7 @@ def find(
     positions = np.argsort(scores, kind="stable")[:top].astype(np.int64)
     columns = keys + [n for n in names if n not in keys]
     if top:
-        top_rows = _rows_at(source, columns, positions)
+        top_rows = rows_at(source, columns, positions)
         with warnings.catch_warnings():
             # score_samples has already warned about values never seen in fitting.
             warnings.simplefilter("ignore", UnseenCategoryWarning)
@@ -143,7 +145,7 @@ def find(
         rng = np.random.default_rng(random_state if isinstance(random_state, int) else None)
         take = min(len(scores), synthetic_rows)
         picked = np.sort(rng.choice(len(scores), size=take, replace=False)).astype(np.int64)
-        real_rows = _rows_at(source, names, picked)
+        real_rows = rows_at(source, names, picked)
         edges = [(names[int(p)], names[c]) for c, p in enumerate(model.parent_) if p >= 0]
         columns_cmp, pairs_cmp = compare_columns(
             real_rows, synthetic, dict(model.kinds_), rng, edges

@@ -39,19 +39,29 @@ from treewise.views.plot import conditional_svg, figure_svg, plot_tree
 if TYPE_CHECKING:
     from treewise.estimator import DependencyTree
 
-__all__ = ["category_label", "page_html", "render_report", "write_report"]
+__all__ = ["CAUTIONS", "category_label", "cautions", "page_html", "render_report", "write_report"]
 
 #: The most categories a column's bars show; the rest are summed in one line.
 MARGINAL_BARS = 12
 
-CAUTIONS = """
+
+def cautions(
+    knows: str = "the model only knows the dependencies of one tree",
+    quoted: str = "the most surprising ones",
+) -> str:
+    """The cautions section every model report ends with.
+
+    ``knows`` completes "rare but ordinary behaviour scores low too, and ..."; ``quoted`` says
+    which real rows the page quotes.
+    """
+    return f"""
 <section id="cautions">
 <h2>Cautions</h2>
 <div class="cautions">
 <div><h3>A score is evidence, not a verdict</h3>
 <p>A low score says a row is unusual under this model, and so worth a second look. It does not
 say the row is wrong, and it says nothing about intent: rare but ordinary behaviour scores low
-too, and the model only knows the dependencies of one tree. No decision about a person (to block,
+too, and {knows}. No decision about a person (to block,
 flag, refuse or charge them) should rest on a score alone. Let a person review the case, and let
 the person concerned be heard.</p></div>
 <div><h3>Synthetic rows can reveal real ones</h3>
@@ -61,7 +71,7 @@ combination and so point back to the real record behind it. It also keeps the ra
 each "other" code and the values seen inside each numeric bin, and sampling gives them back: leave
 out columns that identify people. Treat the model, its synthetic rows
 and this report as personal data whenever the fitted data was. This report also quotes real rows
-(the most surprising ones) when data was given.</p></div>
+({quoted}) when data was given.</p></div>
 <div><h3>Law and policy come first</h3>
 <p>The privacy law where you work and your organisation's policy on purpose, consent, retention
 and sharing take precedence over anything this report suggests. Check them before you score
@@ -74,6 +84,9 @@ is just the walk away from the root, not cause and effect.</p></div>
 </div>
 </section>
 """
+
+
+CAUTIONS = cautions()
 
 #: The page's style sheet (a file of this package).
 STYLE = resources.files("treewise.views").joinpath("report.css").read_text(encoding="utf-8")

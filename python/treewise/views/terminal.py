@@ -18,6 +18,7 @@ from rich.tree import Tree
 if TYPE_CHECKING:
     from treewise.compare import Comparison
     from treewise.estimator import DependencyTree
+    from treewise.mixture import TreeMixture
 
 __all__ = [
     "COMPARE_CAUTION",
@@ -27,6 +28,8 @@ __all__ = [
     "changed_edges_table",
     "explain_rows",
     "fidelity_table",
+    "mixture_json",
+    "mixture_table",
     "model_json",
     "new_rows_table",
     "strongest_table",
@@ -312,3 +315,68 @@ def new_rows_table(top: pa.Table, names: Sequence[str], keys: Sequence[str], tit
         cells = [str(key_values[key][r]) for key in keys]
         table.add_row(f"{rows[r]:,}", *cells, f"{scores[r]:+.2f}", why)
     return table
+
+
+def mixture_table(model: TreeMixture) -> Table:
+    """One line per component of a mixture: weight, root, edges shared or new, strongest edge."""
+    from treewise.views.components import component_edges
+
+    table = Table(title=f"{len(model.components_)} components (MI in nats)")
+    for head, justify in [
+        ("k", "right"),
+        ("weight", "right"),
+        ("root", "left"),
+        ("edges", "right"),
+        ("shared", "right"),
+        ("new", "right"),
+        ("strongest new edge", "left"),
+    ]:
+        table.add_column(head, justify=justify)  # type: ignore[arg-type]
+    table.caption = (
+        "shared: edges every component has; new: edges the single tree (fitted to all rows) "
+        "does not have"
+    )
+    names = [str(n) for n in model.feature_names_in_]
+    for k, comp in enumerate(model.components_):
+        edges = component_edges(model, k)
+        new = [e for e in edges if not e["in_single"]]
+        strongest = (
+            f"{new[0]['parent']} - {new[0]['child']}\n{new[0]['mutual_info']:.4f}" if new else "—"
+        )
+        table.add_row(
+            str(k),
+            f"{comp.weight:.3f}",
+            names[int(comp.root_)],
+            str(len(edges)),
+            str(sum(e["shared"] for e in edges)),
+            str(len(new)),
+            strongest,
+        )
+    return table
+
+
+def mixture_json(model: TreeMixture) -> dict[str, Any]:
+    """A mixture's structure as plain JSON types (``treewise show --json`` of a mixture)."""
+    from treewise.views.components import component_edges
+
+    names = [str(name) for name in model.feature_names_in_]
+    return {
+        "kind": "mixture",
+        "columns": names,
+        "cardinalities": [len(categories) for categories in model.single_tree_.categories_],
+        "n_rows": int(model.n_rows_),
+        "alpha": float(model.alpha),
+        "n_iter": int(model.n_iter_),
+        "converged": bool(model.converged_),
+        "components": [
+            {
+                "weight": float(comp.weight),
+                "parent": [names[int(p)] if p >= 0 else None for p in comp.parent_],
+                "edges": [
+                    {key: e[key] for key in ("parent", "child", "mutual_info", "shared")}
+                    for e in component_edges(model, k)
+                ],
+            }
+            for k, comp in enumerate(model.components_)
+        ],
+    }

@@ -1,0 +1,247 @@
+"""The mixture side of the ``treewise`` commands: fit --components, and a mixture file's uses.
+
+Here are ``fit --components`` and the show, score, sample and report of a mixture file;
+``commands.py`` parses the options and calls these when a fit asks for components or a model
+file turns out to be a mixture (its first bytes are ``mixture_file.MAGIC``).
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import time
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import click
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+from rich.console import Console
+from rich.table import Table
+
+import treewise
+from treewise.files import write_atomically
+from treewise.mixture import TreeMixture, choose_n_components
+from treewise.mixture_file import MAGIC
+from treewise.sources import read_table
+from treewise.views.terminal import (
+    SAMPLE_CAUTION,
+    SCORE_CAUTION,
+    mixture_json,
+    mixture_table,
+    tree_view,
+)
+
+__all__ = [
+    "AUTO_CANDIDATES",
+    "HELD_OUT_SHARE",
+    "fit_mixture",
+    "is_mixture",
+    "load_mixture",
+    "report_mixture",
+    "sample_mixture",
+    "score_mixture",
+    "show_mixture",
+]
+
+#: The numbers of components ``--components auto`` tries; K=1 is the single tree.
+AUTO_CANDIDATES = (1, 2, 3, 4, 6, 8)
+#: The share of rows ``--components auto`` holds out to judge each K.
+HELD_OUT_SHARE = 0.2
+#: ``--components auto`` needs at least this many rows (two held out, the rest to fit).
+AUTO_MIN_ROWS = 10
+
+
+def is_mixture(path: str | Path) -> bool:
+    """Whether ``path`` is a file that starts like a mixture file."""
+    target = Path(path)
+    if not target.is_file():
+        return False
+    with open(target, "rb") as f:
+        return f.read(len(MAGIC)) == MAGIC
+
+
+def load_mixture(path: str) -> TreeMixture:
+    """Load a mixture file, saying which file was bad."""
+    try:
+        return TreeMixture.load(path)
+    except treewise.CorruptModelError as e:
+        raise treewise.CorruptModelError(f"cannot read the mixture file {path}: {e}") from e
+
+
+def _seconds(start: float) -> str:
+    return f"{time.perf_counter() - start:.2f} s"
+
+
+def _split(table: pa.Table, seed: int) -> tuple[pa.Table, pa.Table]:
+    """A seeded HELD_OUT_SHARE of the rows held out (both parts keep the rows' order)."""
+    n = table.num_rows
+    if n < AUTO_MIN_ROWS:
+        raise treewise.DataError(
+            f"--components auto needs at least {AUTO_MIN_ROWS} rows to hold some out; the data "
+            f"has {n}. Give --components K instead."
+        )
+    held = np.zeros(n, dtype=np.bool_)
+    held[np.random.default_rng(seed).permutation(n)[: round(n * HELD_OUT_SHARE)]] = True
+    return table.filter(pa.array(~held)), table.filter(pa.array(held))
+
+
+def _choice_table(figures: Mapping[int, float], chosen: int) -> Table:
+    table = Table(title="Held-out mean ln p per row (nats) for each number of components K")
+    table.add_column("K", justify="right")
+    table.add_column("held-out mean ln p", justify="right")
+    table.add_column("against K=1", justify="right")
+    table.add_column("")
+    base = figures.get(1)
+    for k in sorted(figures):
+        gain = "—" if base is None else f"{figures[k] - base:+.4f}"
+        table.add_row(str(k), f"{figures[k]:.4f}", gain, "chosen" if k == chosen else "")
+    return table
+
+
+def fit_mixture(
+    console: Console,
+    data: str | list[str],
+    output: str,
+    components: int | str,
+    seed: int,
+    tree_params: dict[str, Any],
+) -> None:
+    """Fit ``--components K`` (or ``auto``) to ``data`` and save it to ``output``.
+
+    K=1 (given or chosen) saves an ordinary tree file: a mixture of one tree is the single
+    tree. ``tree_params`` are the encoding options and ``alpha``, as ``DependencyTree`` takes
+    them.
+    """
+    start = time.perf_counter()
+    table = read_table(data)
+    mixture_params = {**tree_params, "random_state": seed}
+    if components == "auto":
+        train, held = _split(table, seed)
+        k, figures = choose_n_components(
+            train, AUTO_CANDIDATES, criterion="heldout", validation=held, **mixture_params
+        )
+        console.print(
+            f"Held out {held.num_rows:,} of {table.num_rows:,} rows (seed {seed}) and fitted "
+            f"K = {', '.join(map(str, AUTO_CANDIDATES))} to the other {train.num_rows:,}."
+        )
+        console.print(_choice_table(figures, k))
+        console.print(f"Chose K={k}; refitting it to all {table.num_rows:,} rows.")
+    else:
+        k = int(components)
+    if k == 1:
+        tree = treewise.DependencyTree(**tree_params).fit(table)
+        tree.save(output)
+        console.print(
+            f"Fitted one tree to {tree.n_rows_:,} rows x {tree.n_features_in_} columns "
+            f"(K=1 is the single tree, saved as an ordinary tree file)."
+        )
+        console.print(f"Saved the model to {output} in {_seconds(start)}.")
+        return
+    model = TreeMixture(n_components=k, **mixture_params).fit(table)
+    model.save(output)
+    state = "converged" if model.converged_ else "stopped at max_iter, not converged"
+    console.print(
+        f"Fitted a mixture of {k} trees to {int(model.n_rows_):,} rows x "
+        f"{model.n_features_in_} columns: {model.n_iter_} EM "
+        f"iterations ({state}), {model.n_parameters_:,} free parameters, training mean ln p "
+        f"{model.lower_bound_:.4f} nats per row."
+    )
+    console.print(mixture_table(model))
+    console.print(f"Saved the mixture to {output} in {_seconds(start)}.")
+
+
+def show_mixture(console: Console, model: TreeMixture, path: str, as_json: bool) -> None:
+    """``treewise show`` of a mixture: the components, then each one's tree."""
+    if as_json:
+        click.echo(json.dumps(mixture_json(model), indent=2, allow_nan=False))
+        return
+    from treewise.views.components import component_tree
+
+    console.print(
+        f"{path}: a mixture of {len(model.components_)} trees over {model.n_features_in_} "
+        f"columns, fitted on {int(model.n_rows_):,} rows."
+    )
+    console.print(mixture_table(model))
+    for k, comp in enumerate(model.components_):
+        view = component_tree(model, k)
+        console.print(tree_view(view, f"component {k} (weight {comp.weight:.3f})"))
+
+
+def score_mixture(
+    console: Console,
+    model: TreeMixture,
+    data: str | list[str],
+    output: str,
+    keys: Sequence[str],
+    top: int,
+) -> None:
+    """``treewise score`` of a mixture: ln p(row), its component and responsibilities."""
+    from treewise.views.components import assign, assignment_table
+
+    start = time.perf_counter()
+    names = [str(n) for n in model.feature_names_in_]
+    wanted = list(dict.fromkeys([*keys, *names]))
+    table = read_table(data, wanted)
+    assignment = assign(model, table.select(names), 0)
+    scored = assignment_table(assignment, table.select(list(keys)) if keys else None)
+    scored = scored.drop_columns(["tree_score"])
+    sink = io.BytesIO()
+    pq.write_table(scored, sink)
+    write_atomically(output, sink.getvalue())
+    console.print(f"Scored {scored.num_rows:,} rows and wrote {output} in {_seconds(start)}.")
+    if top:
+        order = np.argsort(assignment.scores, kind="stable")[:top]
+        worst = Table(title=f"The {len(order)} most surprising rows")
+        worst.add_column("row", justify="right")
+        for key in keys:
+            worst.add_column(key)
+        worst.add_column("ln p", justify="right")
+        worst.add_column("component", justify="right")
+        worst.add_column("P(component | row)", justify="right")
+        key_values = {key: table[key].to_pylist() for key in keys}
+        for r in order:
+            k = int(assignment.best[r])
+            worst.add_row(
+                f"{int(r):,}",
+                *(str(key_values[key][r]) for key in keys),
+                f"{assignment.scores[r]:.2f}",
+                str(k),
+                f"{assignment.responsibilities[r, k]:.3f}",
+            )
+        console.print(worst)
+    console.print(SCORE_CAUTION)
+
+
+def sample_mixture(
+    console: Console, model: TreeMixture, n_rows: int, output: str, seed: int
+) -> None:
+    """``treewise sample`` of a mixture: rows drawn in memory, then written at once."""
+    start = time.perf_counter()
+    table = model.sample(n_rows, random_state=seed)
+    sink = io.BytesIO()
+    pq.write_table(table, sink)
+    write_atomically(output, sink.getvalue())
+    console.print(
+        f"Wrote {table.num_rows:,} synthetic rows to {output} in {_seconds(start)} (seed {seed})."
+    )
+    console.print(SAMPLE_CAUTION)
+
+
+def report_mixture(
+    model: TreeMixture,
+    output: str,
+    data: str | list[str] | None,
+    keys: Sequence[str],
+    typical: int,
+    tree_edges: int,
+    title: str,
+) -> None:
+    """``treewise report`` of a mixture: the mixture report (views/mixture_report.py)."""
+    from treewise.views.mixture_report import write_mixture_report
+
+    write_mixture_report(
+        model, output, data, typical=typical, keys=keys, tree_edges=tree_edges, title=title
+    )
