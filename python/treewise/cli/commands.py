@@ -533,17 +533,13 @@ def score(
     OUT holds the key columns, `score` (ln p(row) in nats: lower is more surprising) and, with
     --surprisal, `surprisal_<column>` for each modelled column (-ln P(value | parent value)).
     The most surprising rows are printed with the three columns that made them so. A mixture
-    file writes `score`, `component` and `responsibility_<k>` (docs/cli.md, "Mixtures of trees").
+    file writes `score`, `component` and `responsibility_<k>`, and with --surprisal each
+    column's surprisal under the row's component (docs/cli.md, "Mixtures of trees").
     """
     if mixtures.is_mixture(model_path):
-        if surprisal:
-            raise click.UsageError(
-                "--surprisal is not available for a mixture yet; score writes score, "
-                "component and responsibility_<k>"
-            )
         mix = mixtures.load_mixture(model_path)
         _check_output(output)
-        mixtures.score_mixture(_console(), mix, _source(data), output, keys, top)
+        mixtures.score_mixture(_console(), mix, _source(data), output, keys, top, surprisal)
         return
     model = _load(model_path)
     _check_output(output)

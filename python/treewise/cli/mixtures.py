@@ -177,8 +177,13 @@ def score_mixture(
     output: str,
     keys: Sequence[str],
     top: int,
+    surprisal: bool = False,
 ) -> None:
-    """``treewise score`` of a mixture: ln p(row), its component and responsibilities."""
+    """``treewise score`` of a mixture: ln p(row), its component and responsibilities.
+
+    With ``surprisal``, also ``surprisal_<column>``: -ln P_k(value | parent value) under the
+    row's most responsible component k (``TreeMixture.surprisal``).
+    """
     from treewise.views.components import assign, assignment_table
 
     start = time.perf_counter()
@@ -188,6 +193,10 @@ def score_mixture(
     assignment = assign(model, table.select(names), 0)
     scored = assignment_table(assignment, table.select(list(keys)) if keys else None)
     scored = scored.drop_columns(["tree_score"])
+    explained = model.surprisal(table.select(names)) if surprisal else None
+    if explained is not None:
+        for name in names:
+            scored = scored.append_column(f"surprisal_{name}", explained[name])
     sink = io.BytesIO()
     pq.write_table(scored, sink)
     write_atomically(output, sink.getvalue())
@@ -201,6 +210,8 @@ def score_mixture(
         worst.add_column("ln p", justify="right")
         worst.add_column("component", justify="right")
         worst.add_column("P(component | row)", justify="right")
+        if explained is not None:
+            worst.add_column("most surprising columns")
         key_values = {key: table[key].to_pylist() for key in keys}
         for r in order:
             k = int(assignment.best[r])
@@ -210,9 +221,16 @@ def score_mixture(
                 f"{assignment.scores[r]:.2f}",
                 str(k),
                 f"{assignment.responsibilities[r, k]:.3f}",
+                *([_worst_columns(explained, names, int(r))] if explained is not None else []),
             )
         console.print(worst)
     console.print(SCORE_CAUTION)
+
+
+def _worst_columns(explained: pa.Table, names: list[str], row: int) -> str:
+    """The three columns with the highest surprisal in ``row``, with their nats."""
+    values = [(float(explained[name][row].as_py()), name) for name in names]
+    return ", ".join(f"{name} {v:.1f}" for v, name in sorted(values, reverse=True)[:3])
 
 
 def sample_mixture(
