@@ -40,7 +40,7 @@ pub struct PyMixtureCodes {
 #[pyclass(name = "MixtureComponent", module = "treewise._core")]
 #[derive(Clone)]
 pub struct PyMixtureComponent {
-    inner: Component,
+    pub(crate) inner: Component,
 }
 
 #[pymethods]
