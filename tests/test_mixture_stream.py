@@ -277,11 +277,26 @@ def test_progress_shows_each_iteration(parquet: Path, capsys: pytest.CaptureFixt
         assert f"EM iteration {it}: mean log-likelihood {bound:.6f} nats per row" in err
 
 
-def test_degenerate_components_do_not_crash(tmp_path: Path) -> None:
+def test_degenerate_components_do_not_crash(tmp_path: Path, monkeypatch: Any) -> None:
     # Two distinct rows for four components: components empty out and are reseeded.
     path = tmp_path / "two.parquet"
     pq.write_table(pa.table({"a": ["x", "y"] * 200, "b": ["u", "v"] * 200}), path)
     model = treewise.TreeMixture(4, random_state=0, max_iter=30).fit(path)
+    assert model.weights_.sum() == pytest.approx(1.0)
+    assert np.all(np.isfinite(model.lower_bounds_))
+    # Hard EM empties components during the passes too: they are refitted to sample rows
+    # until the reseeds run out (10 on the sample, 10 in the passes), then left at weight 0.
+    reseeded: list[int] = []
+    real = mixture_stream._reseed
+
+    def spy(*args: Any) -> Any:
+        out = real(*args)
+        reseeded.append(out[2])
+        return out
+
+    monkeypatch.setattr(mixture_stream, "_reseed", spy)
+    model = treewise.TreeMixture(4, random_state=0, max_iter=30, algorithm="hard").fit(path)
+    assert sum(reseeded) > 0 and model.n_reseeds_ >= sum(reseeded)
     assert model.weights_.sum() == pytest.approx(1.0)
     assert np.all(np.isfinite(model.lower_bounds_))
     one = tmp_path / "one.parquet"
