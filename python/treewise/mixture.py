@@ -26,6 +26,7 @@ from treewise.errors import NotFittedError, UnseenCategoryWarning, warn
 from treewise.estimator import DependencyTree
 from treewise.files import read_model_file, write_atomically
 from treewise.mixture_file import mixture_from_bytes, mixture_to_bytes
+from treewise.mixture_stream import EmParts, fit_streaming, wants_streaming
 from treewise.params import Params
 from treewise.sources import BATCH_ROWS, BatchLoop, check_columns, open_source
 
@@ -122,8 +123,19 @@ class TreeMixture(Params):
     counts in f64 through the same kernel.
 
     One codebook is learned with the ordinary fit (a single ``DependencyTree``, kept as
-    ``single_tree_``), and every row is encoded once. The rows live in memory as codes, and
-    ``data`` is read twice (a table, a DataFrame or files; not a one-shot stream).
+    ``single_tree_``). In memory (``streaming=False``), every row is encoded once and kept as
+    codes across the iterations, and ``data`` is read twice (a table, a DataFrame or files;
+    not a one-shot stream).
+
+    Streaming (``streaming=True``, docs/scaling.md): the in-memory EM (seeding, ``n_init``
+    starts) runs on a uniform sample of at most ``SAMPLE_ROWS`` (50,000) rows, then every
+    iteration is one pass over all the data: each batch is scored under the current
+    components, and its weighted pair counts are added to running f64 sums that the next
+    components are fitted from. Memory holds the sums, one batch and the sample, whatever the
+    size of the data; ``lower_bounds_`` are then the passes' mean log-likelihoods over all
+    rows. A one-shot stream is copied to temporary Arrow files as the tree reads it. A Dask
+    DataFrame is always fitted so: each pass maps a task over the partitions, whose sums are
+    tree-reduced on the driver.
 
     Everything a tree answers, a mixture answers too: ``surprisal`` (under each row's most
     responsible component, with the responsibilities), ``predict_proba``/``predict`` of a
@@ -153,6 +165,11 @@ class TreeMixture(Params):
         Seeds the initialisation. None draws from the operating system.
     columns, max_categories, n_bins, kinds, memory_limit
         As in ``DependencyTree``.
+    streaming : bool, optional
+        Fit by one pass over the data per iteration (True) or with every row in memory
+        (False). None (the default) streams data that is not in memory: paths, Parquet, CSV or
+        Arrow files, datasets, one-shot streams and Dask DataFrames. A Dask DataFrame always
+        streams. The model file does not record it.
 
     Attributes
     ----------
@@ -190,6 +207,7 @@ class TreeMixture(Params):
         n_bins: int = 10,
         kinds: Mapping[str, str] | None = None,
         memory_limit: int | str | None = None,
+        streaming: bool | None = None,
     ) -> None:
         self.n_components = n_components
         self.alpha = alpha
@@ -204,6 +222,7 @@ class TreeMixture(Params):
         self.n_bins = n_bins
         self.kinds = kinds
         self.memory_limit = memory_limit
+        self.streaming = streaming
 
     _PARAMS = (
         "n_components",
@@ -219,12 +238,25 @@ class TreeMixture(Params):
         "n_bins",
         "kinds",
         "memory_limit",
+        "streaming",
     )
 
     # -- fitting ---------------------------------------------------------------------------------
 
-    def fit(self, data: Any, y: None = None) -> TreeMixture:
-        """Fit the mixture to ``data`` (any input ``DependencyTree.fit`` takes)."""
+    def fit(
+        self,
+        data: Any,
+        y: None = None,
+        *,
+        progress: bool | None = None,
+        batch_rows: int | None = None,
+    ) -> TreeMixture:
+        """Fit the mixture to ``data``: any input ``DependencyTree.fit`` takes, or Dask data.
+
+        ``progress`` (default: only when stderr is a terminal) draws a bar per pass of a
+        streaming fit and prints each iteration's mean log-likelihood per row; ``batch_rows``
+        is the rows per batch of a streaming fit (default 262,144).
+        """
         k = check_int("n_components", self.n_components, 1, 1024)
         alpha = check_alpha(self.alpha)
         max_iter = check_int("max_iter", self.max_iter, 1, 1_000_000)
@@ -235,6 +267,20 @@ class TreeMixture(Params):
         if self.init not in ("kmeans++", "random"):
             raise ValueError(f"init must be 'kmeans++' or 'random', got {self.init!r}")
         check_int("max_categories", self.max_categories, 2, MAX_CATEGORIES)
+        if wants_streaming(data, self.streaming):
+            fit_streaming(
+                self,
+                data,
+                k=k,
+                alpha=alpha,
+                max_iter=max_iter,
+                tol=tol,
+                n_init=n_init,
+                progress=progress,
+                batch_rows=batch_rows,
+                em=EmParts(_log_mix, MIN_COMPONENT_ROWS, MAX_RESEEDS),
+            )
+            return self
         tree = DependencyTree(
             columns=self.columns,
             max_categories=self.max_categories,

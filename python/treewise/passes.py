@@ -24,6 +24,7 @@ from treewise.sources import BatchLoop, Source, open_source
 
 __all__ = [
     "ONE_PASS_CELLS",
+    "Spool",
     "TypeRecorder",
     "count_pairs",
     "learn_and_count",
@@ -133,7 +134,7 @@ def learn_codebook(
     block ends: one pass over the stream, exact counts, memory near one batch.
     """
     builder = _core.CodebookBuilder(names)
-    spool = None if source.replayable else _Spool()
+    spool = None if source.replayable else Spool()
     try:
         _read_once(source, names, batch_rows, bar, types, "learning codes", builder.observe, spool)
         codebook, caps, notes = builder.finish(max_categories, n_bins, list((kinds or {}).items()))
@@ -153,7 +154,7 @@ def _read_once(
     types: TypeRecorder,
     title: str,
     observe: Callable[[pa.RecordBatch], None],
-    spool: _Spool | None,
+    spool: Spool | None,
 ) -> None:
     """The first pass over ``source``: each batch's types recorded, observed and spooled."""
     with BatchLoop(source, names, batch_rows, bar, title) as batches:
@@ -164,7 +165,7 @@ def _read_once(
                 spool.write(batch)
 
 
-def _to_count(source: Source, spool: _Spool | None) -> Source:
+def _to_count(source: Source, spool: Spool | None) -> Source:
     """The source a second pass reads: ``source`` again, or the spool of a one-shot stream."""
     if spool is None:
         return source
@@ -172,7 +173,7 @@ def _to_count(source: Source, spool: _Spool | None) -> Source:
     return open_source(spool.paths)
 
 
-class _Spool:
+class Spool:
     """Temporary Arrow IPC files that a one-shot stream is copied to, batch by batch.
 
     An IPC file has one schema and one dictionary per column, but the batches of a stream may
@@ -186,6 +187,7 @@ class _Spool:
         self.schema: pa.Schema | None = None
 
     def write(self, batch: pa.RecordBatch) -> None:
+        """Append ``batch`` (dictionaries as plain values; a new schema starts a new file)."""
         batch = pa.RecordBatch.from_arrays(
             [
                 c.cast(c.type.value_type) if pa.types.is_dictionary(c.type) else c
@@ -203,11 +205,13 @@ class _Spool:
         self.writer.write_batch(batch)
 
     def close(self) -> None:
+        """Finish the file being written; the files can then be read."""
         if self.writer is not None:
             self.writer.close()
             self.writer = None
 
     def remove(self) -> None:
+        """Close and delete every file of the spool."""
         self.close()
         for path in self.paths:
             path.unlink(missing_ok=True)
@@ -293,7 +297,7 @@ def learn_and_count_many(
             # Data in memory is cheap to read again: a column that will be binned is counted
             # faster with its bins in a second pass than value by value in this one.
             counter.stop_past_bins(n_bins, categorical)
-    spools = [None if source.replayable else _Spool() for source in sources]
+    spools = [None if source.replayable else Spool() for source in sources]
     try:
         for source, counter, spool in zip(sources, counters, spools, strict=True):
             title = "learning codes, counting pairs"

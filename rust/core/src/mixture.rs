@@ -76,6 +76,56 @@ pub fn weighted_stats(
     resp: &[f64],
     k: usize,
 ) -> Result<Vec<WeightedStats>> {
+    let len = weighted_sums_len(cards, k)?;
+    let mut sums = vec![0.0; len];
+    add_weighted_sums(&mut sums, codes, cards, resp, k)?;
+    split_weighted_sums(&sums, cards, k)
+}
+
+/// How many f64 the running weighted sums of `k` components hold (see [`add_weighted_sums`]);
+/// an error past [`MAX_WEIGHTED_CELLS`] pair cells.
+pub fn weighted_sums_len(cards: &[usize], k: usize) -> Result<usize> {
+    if k == 0 || cards.is_empty() {
+        return Err(Error::Invalid(format!(
+            "weighted sums need at least one column and one component, got {} and {k}",
+            cards.len()
+        )));
+    }
+    let cells: u64 = pairs(cards.len())
+        .iter()
+        .map(|&(i, j)| (cards[i] as u64).saturating_mul(cards[j] as u64))
+        .fold(0u64, u64::saturating_add)
+        .saturating_mul(k as u64);
+    if cells > MAX_WEIGHTED_CELLS {
+        return Err(Error::ResourceLimit(format!(
+            "the weighted pair tables of {k} components would hold {cells} cells, more than \
+             {MAX_WEIGHTED_CELLS}; use fewer components, columns or categories"
+        )));
+    }
+    let marginals = cards
+        .iter()
+        .map(|&r| r as u64)
+        .fold(0u64, u64::saturating_add)
+        .saturating_mul(k as u64);
+    usize::try_from(cells.saturating_add(marginals))
+        .map_err(|_| Error::ResourceLimit("the weighted sums do not fit in memory".into()))
+}
+
+/// Adds the rows' weighted marginals and pair tables to the running `sums` of `k` components
+/// (flat, [`weighted_sums_len`] values: each column's `r x k` marginals, then each pair's
+/// `r_i x r_j x k` table in pair-index order, the components inner). `resp` as in
+/// [`weighted_stats`].
+///
+/// Every cell adds its rows in row order to what it already holds, on one thread: adding the
+/// rows batch by batch gives the same bits as adding them all at once, for any batch sizes and
+/// any number of threads.
+pub fn add_weighted_sums(
+    sums: &mut [f64],
+    codes: &[Vec<u16>],
+    cards: &[usize],
+    resp: &[f64],
+    k: usize,
+) -> Result<()> {
     let n = check_codes(codes, cards, false)?;
     if k == 0 || Some(resp.len()) != n.checked_mul(k) {
         return Err(Error::Invalid(format!(
@@ -88,44 +138,51 @@ pub fn weighted_stats(
             "responsibilities must be finite and non-negative".into(),
         ));
     }
+    let len = weighted_sums_len(cards, k)?;
+    if sums.len() != len {
+        return Err(Error::Invalid(format!(
+            "the weighted sums hold {} values, not the {len} of these columns and {k} components",
+            sums.len()
+        )));
+    }
     let d = cards.len();
     let all = pairs(d);
-    let cells: u64 = all
-        .iter()
-        .map(|&(i, j)| (cards[i] * cards[j]) as u64)
-        .sum::<u64>()
-        .saturating_mul(k as u64);
-    if cells > MAX_WEIGHTED_CELLS {
-        return Err(Error::ResourceLimit(format!(
-            "the weighted pair tables of {k} components would hold {cells} cells, more than \
-             {MAX_WEIGHTED_CELLS}; use fewer components, columns or categories"
-        )));
+    let (marginal_sums, mut rest) = sums.split_at_mut(cards.iter().sum::<usize>() * k);
+    let mut marginals: Vec<&mut [f64]> = Vec::with_capacity(d);
+    let mut left = marginal_sums;
+    for &r in cards {
+        let (m, tail) = std::mem::take(&mut left).split_at_mut(r * k);
+        marginals.push(m);
+        left = tail;
+    }
+    let mut tables: Vec<&mut [f64]> = Vec::with_capacity(all.len());
+    for &(i, j) in &all {
+        let (t, tail) = std::mem::take(&mut rest).split_at_mut(cards[i] * cards[j] * k);
+        tables.push(t);
+        rest = tail;
     }
     let token = crate::cancel::current();
     // Marginals: one task per column, rows in order.
-    let marginals: Vec<Vec<f64>> = (0..d)
-        .into_par_iter()
-        .map(|c| {
-            let mut m = vec![0.0; cards[c] * k];
-            for (&x, r) in codes[c].iter().zip(resp.chunks_exact(k)) {
-                let cell = &mut m[usize::from(x) * k..usize::from(x) * k + k];
-                cell.iter_mut().zip(r).for_each(|(m, r)| *m += r);
+    marginals
+        .par_iter_mut()
+        .zip(codes.par_iter())
+        .for_each(|(m, col)| {
+            for (&x, r) in col.iter().zip(resp.chunks_exact(k)) {
+                let at = usize::from(x) * k;
+                if let Some(cell) = m.get_mut(at..at + k) {
+                    cell.iter_mut().zip(r).for_each(|(m, r)| *m += r);
+                }
             }
-            m
-        })
-        .collect();
+        });
     // Pair tables, cell-major with the k components inner. Pairs are cut into tasks; a task
     // walks the rows block by block and, inside a block, its pairs, so the block's
     // responsibilities are read from cache.
     let tasks = (rayon::current_num_threads() * 8).max(1);
     let per_task = all.len().div_ceil(tasks).max(1);
-    let tables: Vec<Vec<f64>> = all
-        .par_chunks(per_task)
-        .flat_map_iter(|chunk| {
-            let mut out: Vec<Vec<f64>> = chunk
-                .iter()
-                .map(|&(i, j)| vec![0.0; cards[i] * cards[j] * k])
-                .collect();
+    tables
+        .par_chunks_mut(per_task)
+        .zip(all.par_chunks(per_task))
+        .for_each(|(out, chunk)| {
             for start in (0..n).step_by(ROW_BLOCK) {
                 if token.cancelled() {
                     break;
@@ -148,17 +205,40 @@ pub fn weighted_stats(
                     }
                 }
             }
-            out
-        })
-        .collect();
-    token.check()?;
+        });
+    token.check()
+}
+
+/// The running sums of [`add_weighted_sums`] as one [`WeightedStats`] per component (its `n`
+/// is the sum of its first column's marginal, in code order).
+pub fn split_weighted_sums(sums: &[f64], cards: &[usize], k: usize) -> Result<Vec<WeightedStats>> {
+    let len = weighted_sums_len(cards, k)?;
+    if sums.len() != len {
+        return Err(Error::Invalid(format!(
+            "the weighted sums hold {} values, not the {len} of these columns and {k} components",
+            sums.len()
+        )));
+    }
+    let all = pairs(cards.len());
+    let mut parts: Vec<&[f64]> = Vec::with_capacity(cards.len() + all.len());
+    let mut rest = sums;
+    let sizes = cards
+        .iter()
+        .map(|&r| r * k)
+        .chain(all.iter().map(|&(i, j)| cards[i] * cards[j] * k));
+    for size in sizes {
+        let (part, tail) = rest.split_at(size);
+        parts.push(part);
+        rest = tail;
+    }
+    let (marginals, tables) = parts.split_at(cards.len());
     // Split the component-inner layout into one WeightedStats per component.
     let split =
         |v: &[f64], t: usize| -> Vec<f64> { v.iter().skip(t).step_by(k).copied().collect() };
     Ok((0..k)
         .map(|t| {
             let marginals: Vec<Vec<f64>> = marginals.iter().map(|m| split(m, t)).collect();
-            let n = marginals[0].iter().sum();
+            let n = marginals.first().map_or(0.0, |m| m.iter().sum());
             WeightedStats {
                 n,
                 marginals,
@@ -662,6 +742,33 @@ mod tests {
         assert_eq!(s[1].n, 1.25);
         assert_eq!(s[0].tables[0], vec![0.0, 0.25, 1.0, 0.5]);
         assert_eq!(s[1].tables[0], vec![0.0, 0.75, 0.0, 0.5]);
+        Ok(())
+    }
+
+    #[test]
+    fn sums_added_batch_by_batch_are_the_same_bits() -> Result<()> {
+        // Uneven weights whose f64 sums depend on the order of the additions.
+        let n = 10_007;
+        let cards = [3, 5, 2, 7];
+        let codes: Vec<Vec<u16>> = cards
+            .iter()
+            .enumerate()
+            .map(|(c, &r)| (0..n).map(|i| ((i * (c + 3) + i / 7) % r) as u16).collect())
+            .collect();
+        let k = 3;
+        let resp: Vec<f64> = (0..n * k)
+            .map(|i| 1.0 / (1.0 + (i % 97) as f64 * 0.37))
+            .collect();
+        let whole = weighted_stats(&codes, &cards, &resp, k)?;
+        let mut sums = vec![0.0; weighted_sums_len(&cards, k)?];
+        for (start, end) in [(0, 1), (1, 4096), (4096, 4100), (4100, n)] {
+            let part: Vec<Vec<u16>> = codes.iter().map(|c| c[start..end].to_vec()).collect();
+            add_weighted_sums(&mut sums, &part, &cards, &resp[start * k..end * k], k)?;
+        }
+        assert_eq!(split_weighted_sums(&sums, &cards, k)?, whole);
+        // The wrong length of sums is an error, not a panic.
+        assert!(add_weighted_sums(&mut sums[1..], &codes, &cards, &resp, k).is_err());
+        assert!(split_weighted_sums(&sums[1..], &cards, k).is_err());
         Ok(())
     }
 

@@ -7,6 +7,7 @@ mod codebook_builder;
 mod errors;
 mod infer;
 mod mixture;
+mod mixture_stats;
 mod model;
 mod one_pass;
 mod pair_stats;
@@ -56,6 +57,9 @@ fn _core(m: &Bound<'_, PyModule>) -> PyResult<()> {
     m.add_class::<mixture::PyMixtureComponent>()?;
     m.add("SAMPLE_BLOCK", treewise_core::model::SAMPLE_BLOCK)?;
     m.add_function(wrap_pyfunction!(mixture::mixture_sample, m)?)?;
+    m.add_function(wrap_pyfunction!(mixture_stats::mixture_sums_len, m)?)?;
+    m.add_function(wrap_pyfunction!(mixture_stats::mixture_add_sums, m)?)?;
+    m.add_function(wrap_pyfunction!(mixture_stats::mixture_fit_sums, m)?)?;
     m.add_function(wrap_pyfunction!(chi2_sf, m)?)?;
     m.add_function(wrap_pyfunction!(thread_count, m)?)?;
     m.add("DEBUG_BUILD", cfg!(debug_assertions))?;
