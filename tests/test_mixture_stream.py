@@ -181,15 +181,12 @@ def test_the_bound_never_decreases_at_alpha_0(parquet: Path) -> None:
     _monotone(parquet)  # every row is in the sample
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="a core defect, not the streaming: responsibilities near 1e-310 give weighted counts "
-    "whose marginal product underflows to 0 in weights::mutual_info, an infinite mutual "
-    "information and a wrong tree (the in-memory M-step from the same parameters drops too)",
-)
 def test_the_bound_never_decreases_at_alpha_0_from_a_sample(
     parquet: Path, monkeypatch: Any
 ) -> None:
+    # Rows outside the sample can get responsibilities near 1e-310; their weighted counts once
+    # made weights::mutual_info divide by a product that underflowed to 0 (an infinite mutual
+    # information, a wrong tree and a lower bound). The test failed before that fix.
     monkeypatch.setattr(mixture_stream, "SAMPLE_ROWS", 150)
     _monotone(parquet)
 

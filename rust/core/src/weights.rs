@@ -68,7 +68,16 @@ pub fn mutual_info<T: Count>(table: &[T], ma: &[T], mb: &[T], n: T) -> f64 {
         for (b, &nb) in mb.iter().enumerate() {
             let cf = table[a * rb + b].value();
             if cf > 0.0 {
-                terms.push((cf / nf) * ((cf * nf) / (na.value() * nb.value())).ln());
+                let (top, bottom) = (cf * nf, na.value() * nb.value());
+                // Weighted counts (a mixture's responsibilities) can be so small that a product
+                // leaves the normal range and the ratio goes to 0 or infinity: take logs then.
+                // Integer counts always stay in range and keep the product form.
+                let log_ratio = if top.is_normal() && bottom.is_normal() {
+                    (top / bottom).ln()
+                } else {
+                    cf.ln() + nf.ln() - na.value().ln() - nb.value().ln()
+                };
+                terms.push((cf / nf) * log_ratio);
             }
         }
     }
@@ -194,6 +203,21 @@ mod tests {
         // Outer product of marginals (2, 2) x (3, 1): cells are exact, so MI is exactly 0.
         let t = [6, 2, 6, 2];
         assert_eq!(mutual_info(&t, &[8, 8], &[12, 4], 16), 0.0);
+    }
+
+    #[test]
+    fn tiny_weighted_counts_keep_their_information() {
+        // Mutual information does not depend on the scale of the counts (it is a function of
+        // the proportions), so counts scaled down to the subnormal range must give the same
+        // figure, not an infinite one from a product that underflows to 0.
+        let t = [3.0, 1.0, 1.0, 5.0];
+        let (ma, mb, n) = ([4.0, 6.0], [4.0, 6.0], 10.0);
+        let full = mutual_info(&t, &ma, &mb, n);
+        for scale in [1e-160, 1e-300, 1e-310] {
+            let s = |v: &[f64]| v.iter().map(|x| x * scale).collect::<Vec<_>>();
+            let tiny = mutual_info(&s(&t), &s(&ma), &s(&mb), n * scale);
+            assert!(tiny.is_finite() && (tiny - full).abs() < 1e-9 * full, "{scale}: {tiny}");
+        }
     }
 
     #[test]
