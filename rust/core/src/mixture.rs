@@ -7,7 +7,7 @@ use crate::codebook::UNSEEN;
 use crate::error::{Error, Result};
 use crate::model::{push_cdf, smoothed_weighted_row, Sampled, TreeModel, SAMPLE_BLOCK};
 use crate::rng::Rng;
-use crate::stats::{pair_count, pairs};
+use crate::stats::{pair_count, pairs, PairStats};
 use crate::tree;
 use crate::weights::mutual_info;
 
@@ -267,6 +267,54 @@ fn add_rows_any(table: &mut [f64], xs: &[u16], ys: &[u16], rb: usize, block: &[f
         let cell = &mut table[at..at + k];
         cell.iter_mut().zip(r).for_each(|(t, r)| *t += r);
     }
+}
+
+/// Per component, the exact counts of the rows assigned to it (`assign[row]` < `k`): hard
+/// (classification) EM's M-step statistics. Each component's rows are gathered and counted by
+/// the integer kernels of `PairStats` (bitsets, popcounts), so a row costs one component's
+/// counting, not K; the counts are whole numbers below 2^53, so as f64 they are the same bits
+/// [`weighted_stats`] gives with 0/1 responsibilities.
+pub fn assigned_stats(
+    codes: &[Vec<u16>],
+    cards: &[usize],
+    assign: &[u32],
+    k: usize,
+) -> Result<Vec<WeightedStats>> {
+    let n = check_codes(codes, cards, false)?;
+    if k == 0 || assign.len() != n || assign.iter().any(|&a| a as usize >= k) {
+        return Err(Error::Invalid(format!(
+            "{} component indices for {n} rows, each below {k}",
+            assign.len()
+        )));
+    }
+    let mut rows: Vec<Vec<usize>> = vec![Vec::new(); k];
+    for (row, &a) in assign.iter().enumerate() {
+        rows[a as usize].push(row);
+    }
+    let token = crate::cancel::current();
+    let out = rows
+        .iter()
+        .map(|rows| {
+            token.check()?;
+            let subset: Vec<Vec<u16>> = codes
+                .par_iter()
+                .map(|col| rows.iter().map(|&r| col[r]).collect())
+                .collect();
+            let mut stats = PairStats::new(cards.to_vec())?;
+            stats.add_codes(&subset)?;
+            let as_f64 = |v: &[u64]| v.iter().map(|&x| x as f64).collect::<Vec<f64>>();
+            Ok(WeightedStats {
+                n: stats.n_rows() as f64,
+                marginals: stats.marginals().iter().map(|m| as_f64(m)).collect(),
+                tables: pairs(cards.len())
+                    .iter()
+                    .map(|&(i, j)| as_f64(stats.table(i, j)))
+                    .collect(),
+            })
+        })
+        .collect::<Result<Vec<_>>>()?;
+    token.check()?;
+    Ok(out)
 }
 
 /// One column's smoothed log-probabilities within a component: ln P(x | a) row-major by parent
@@ -806,6 +854,31 @@ mod tests {
             0.5,
         );
         assert!(matches!(bad, Err(Error::CorruptModel(_))));
+    }
+
+    #[test]
+    fn assigned_counts_are_the_weighted_counts_of_one_hot_responsibilities() -> Result<()> {
+        let codes = vec![
+            vec![0u16, 1, 1, 0, 1, 0, 2],
+            vec![2u16, 0, 2, 2, 1, 1, 0],
+            vec![1u16, 1, 0, 0, 1, 1, 0],
+        ];
+        let cards = [3, 3, 2];
+        let assign = [1u32, 0, 2, 1, 1, 0, 2];
+        let mut resp = vec![0.0; assign.len() * 3];
+        for (row, &a) in assign.iter().enumerate() {
+            resp[row * 3 + a as usize] = 1.0;
+        }
+        assert_eq!(
+            assigned_stats(&codes, &cards, &assign, 3)?,
+            weighted_stats(&codes, &cards, &resp, 3)?
+        );
+        // A component no row is assigned to has zero counts, not an error.
+        let empty = assigned_stats(&codes, &cards, &assign, 4)?;
+        assert_eq!(empty[3].n, 0.0);
+        assert!(assigned_stats(&codes, &cards, &assign, 2).is_err());
+        assert!(assigned_stats(&codes, &cards, &assign[..3], 3).is_err());
+        Ok(())
     }
 
     #[test]

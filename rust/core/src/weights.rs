@@ -216,7 +216,10 @@ mod tests {
         for scale in [1e-160, 1e-300, 1e-310] {
             let s = |v: &[f64]| v.iter().map(|x| x * scale).collect::<Vec<_>>();
             let tiny = mutual_info(&s(&t), &s(&ma), &s(&mb), n * scale);
-            assert!(tiny.is_finite() && (tiny - full).abs() < 1e-9 * full, "{scale}: {tiny}");
+            assert!(
+                tiny.is_finite() && (tiny - full).abs() < 1e-9 * full,
+                "{scale}: {tiny}"
+            );
         }
     }
 

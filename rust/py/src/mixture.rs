@@ -219,6 +219,28 @@ impl PyMixtureCodes {
             .collect())
     }
 
+    /// Hard EM's M-step: components fitted to the exact counts of the rows assigned to each
+    /// (`assign`: u32 bytes, one component index per row, each below `k`).
+    fn fit_assigned(
+        &self,
+        py: Python<'_>,
+        assign: &[u8],
+        k: usize,
+        alpha: f64,
+    ) -> PyResult<Vec<PyMixtureComponent>> {
+        let assign = from_le::<4, u32>(assign, "assignments", u32::from_le_bytes)?;
+        let comps = detached(py, || {
+            mixture::assigned_stats(&self.codes, &self.cards, &assign, k)?
+                .iter()
+                .map(|s| mixture::fit_component(&self.cards, s, alpha))
+                .collect::<Result<Vec<_>, Error>>()
+        })?;
+        Ok(comps
+            .into_iter()
+            .map(|inner| PyMixtureComponent { inner })
+            .collect())
+    }
+
     /// ln P(row | component) for every row and component (f64 bytes, rows x k, row-major).
     fn log_likelihoods<'py>(
         &self,
