@@ -317,3 +317,16 @@ def test_bad_questions_say_what_is_wrong(fitted: treewise.TreeMixture) -> None:
     unfitted: Any = treewise.TreeMixture(2)
     with pytest.raises(treewise.NotFittedError):
         unfitted.predict_proba(titanic(), "Sex")
+
+
+def test_the_notebook_view_lists_the_components(fitted: treewise.TreeMixture) -> None:
+    import html.parser
+
+    text = fitted._repr_html_()
+    # Well-formed enough for a notebook: the standard library's parser reads it to the end.
+    html.parser.HTMLParser().feed(text)
+    assert "TreeMixture" in text and f"{fitted.n_iter_} EM iterations" in text
+    for k, comp in enumerate(fitted.components_):
+        assert f">{comp.weight:.3f}<" in text
+        assert f">{k}</td>" in text
+    assert treewise.TreeMixture(3)._repr_html_() == "<pre>TreeMixture(n_components=3)</pre>"

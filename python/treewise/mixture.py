@@ -620,6 +620,12 @@ class TreeMixture(Params):
             return table, np.concatenate(labels)
         return table
 
+    def _repr_html_(self) -> str:
+        """The notebook view: the components, their weights and how their trees differ."""
+        from treewise.views.notebook import mixture_html
+
+        return mixture_html(self)
+
     def save(self, path: str | os.PathLike[str]) -> None:
         """Write the mixture to ``path`` (docs/model-format.md, "Mixture files"), atomically."""
         self._fitted()

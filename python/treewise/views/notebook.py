@@ -14,8 +14,9 @@ from treewise.views.plot import INK, MUTED, figure_svg, plot_tree
 
 if TYPE_CHECKING:
     from treewise.estimator import DependencyTree
+    from treewise.mixture import TreeMixture
 
-__all__ = ["NOTEBOOK_EDGES", "model_html"]
+__all__ = ["NOTEBOOK_EDGES", "mixture_html", "model_html"]
 
 #: The most edges drawn, and listed, in a notebook summary.
 NOTEBOOK_EDGES = 40
@@ -74,4 +75,59 @@ def model_html(model: DependencyTree) -> str:
         f'<div style="max-width:100%;overflow-x:auto">'
         f'<div style="max-width:900px">{svg}</div></div>'
         f"{listed}</div>"
+    )
+
+
+def mixture_html(model: TreeMixture) -> str:
+    """A compact HTML summary of a fitted mixture: one line of facts, then its components.
+
+    Per component: its weight, root, edges shared by every component, edges the single tree
+    lacks and the strongest of those. ``treewise report`` (or ``views.mixture_report``) draws
+    the trees.
+
+    An unfitted mixture shows its ``repr``.
+    """
+    from treewise.views.components import component_edges
+
+    if getattr(model, "_components", None) is None:
+        return f"<pre>{html.escape(repr(model))}</pre>"
+    names = [str(n) for n in model.feature_names_in_]
+    state = "converged" if model.converged_ else "not converged"
+    facts = [
+        f"{len(model.components_)} trees",
+        f"{len(names):,} columns",
+        f"{int(model.n_rows_):,} rows",
+        f"{int(model.n_parameters_):,} free parameters",
+        f"{model.n_iter_} EM iterations ({state})",
+        f"training mean ln p {model.lower_bound_:.4f} nats",
+    ]
+    cell = "padding:2px 10px 2px 0;text-align:left"
+    right = f"{cell};text-align:right"
+    head = "".join(
+        f'<th style="{cell}">{h}</th>'
+        for h in ("k", "weight", "root", "shared", "not in the single tree", "strongest new edge")
+    )
+    rows = []
+    for k, comp in enumerate(model.components_):
+        edges = component_edges(model, k)
+        new = [e for e in edges if not e["in_single"]]
+        strongest = (
+            f"{html.escape(new[0]['parent'])} → {html.escape(new[0]['child'])} "
+            f"({new[0]['mutual_info']:.4f})"
+            if new
+            else "—"
+        )
+        rows.append(
+            f'<tr><td style="{cell}">{k}</td><td style="{right}">{comp.weight:.3f}</td>'
+            f'<td style="{cell}">{html.escape(names[comp.root_])}</td>'
+            f'<td style="{right}">{sum(e["shared"] for e in edges)}</td>'
+            f'<td style="{right}">{len(new)}</td><td style="{cell}">{strongest}</td></tr>'
+        )
+    return (
+        f'<div style="color:{INK};font-family:system-ui,sans-serif;font-size:13px">'
+        f"<div><b>TreeMixture</b> · {html.escape(' · '.join(facts))}</div>"
+        f'<table style="border-collapse:collapse;font-size:12px;margin-top:6px">'
+        f"<tr>{head}</tr>{''.join(rows)}</table>"
+        f'<div style="color:{MUTED};font-size:12px">shared: edges every component has; '
+        "the report (treewise report) draws each component's tree</div></div>"
     )
