@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import re
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -67,13 +68,15 @@ def mixture_file(files: dict[str, Path]) -> Path:
 
 
 def test_fit_components_writes_the_mixture_the_library_fits(
-    mixture_file: Path, train: pa.Table, capsys: pytest.CaptureFixture[str]
+    mixture_file: Path, files: dict[str, Path], train: pa.Table, capsys: pytest.CaptureFixture[str]
 ) -> None:
     capsys.readouterr()
     assert mixture_file.read_bytes().startswith(MAGIC)
     loaded = TreeMixture.load(mixture_file)
-    direct = TreeMixture(2, columns=model_columns(train), alpha=0.25, random_state=7).fit(train)
-    # The command is a thin layer: the same data, parameters and seed give the same model.
+    direct = TreeMixture(2, columns=model_columns(train), alpha=0.25, random_state=7)
+    direct.fit(files["train"])
+    # The command is a thin layer: the same file (fitted by streaming EM, as the library fits
+    # a file), parameters and seed give the same model.
     np.testing.assert_array_equal(loaded.weights_, direct.weights_)
     for a, b in zip(loaded.components_, direct.components_, strict=True):
         np.testing.assert_array_equal(a.parent_, b.parent_)
@@ -214,6 +217,25 @@ def test_auto_needs_rows_to_hold_out(tmp_path: Path, capsys: pytest.CaptureFixtu
     pq.write_table(pa.table({"a": ["x", "y"] * 3, "b": ["p", "q", "q"] * 2}), tiny)
     err = refused(capsys, 1, "fit", tiny, "-o", tmp_path / "m.treewise", "--components", "auto")
     assert "needs at least 10 rows" in err
+
+
+def test_auto_chooses_on_a_sample_and_fits_all_rows(
+    files: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: Any
+) -> None:
+    from treewise.cli import mixtures
+
+    # Data larger than the sample: K is chosen on a random sample, then fitted to every row.
+    monkeypatch.setattr(mixtures, "AUTO_SAMPLE_ROWS", 1_000)
+    path = tmp_path / "sampled.treewise"
+    out = ok(capsys, "fit", files["train"], "-o", path, "--exclude", EXCLUDE,
+             "--components", "auto", "--seed", "2")  # fmt: skip
+    assert f"Held out 200 of 1,000 rows (a random sample of {N:,} rows) (seed 2)" in out
+    assert f"refitting it to all {N:,} rows" in out
+    chosen = int(re.findall(r"Chose K=(\d+);", out)[0])
+    if chosen > 1:
+        assert TreeMixture.load(path).n_rows_ == N
+    else:
+        assert treewise.DependencyTree.load(path).n_rows_ == N
 
 
 def test_the_demo_mixture_catches_more_hybrids_than_the_tree() -> None:

@@ -347,3 +347,33 @@ def test_dask_errors_are_clear(table: pa.Table) -> None:
         treewise.TreeMixture(2, streaming=False).fit(data)
     with pytest.raises(SchemaError, match="nope"):
         treewise.TreeMixture(2, columns=["nope"]).fit(data)
+
+
+def test_a_row_sample_is_uniform_and_does_not_depend_on_the_batches(tmp_path: Path) -> None:
+    from treewise.sources import sample_rows
+
+    # Constructed truth: rows numbered 0..n-1, so the sample says which rows it kept.
+    n = 20_000
+    table = pa.table({"i": pa.array(np.arange(n)), "g": pa.array(np.arange(n) % 7)})
+    path = tmp_path / "numbered.parquet"
+    pq.write_table(table, path, row_group_size=1_000)
+    sample, total = sample_rows(path, 2_000, seed=5)
+    assert total == n and sample.num_rows == 2_000
+    kept = sample["i"].to_numpy()
+    assert (np.diff(kept) > 0).all()  # in their order in the data
+    # The same rows from other batches: a table of 3 batches and a one-shot generator.
+    for other in (
+        pa.Table.from_batches(table.to_batches(max_chunksize=6_999)),
+        (b for b in table.to_batches(max_chunksize=333)),
+    ):
+        again, total = sample_rows(other, 2_000, seed=5)
+        assert total == n and again["i"].equals(sample["i"])
+    # Uniform: each tenth of the rows holds about a tenth of the sample. Source: Pearson's
+    # chi-square goodness of fit (scipy.stats.chisquare), at the 0.001 level (common practice).
+    import scipy.stats
+
+    counts = np.bincount(kept * 10 // n, minlength=10)
+    assert scipy.stats.chisquare(counts).pvalue > 0.001
+    assert not sample_rows(path, 2_000, seed=6)[0]["i"].equals(sample["i"])
+    everything, total = sample_rows(path, 50_000, seed=5)
+    assert total == n and everything["i"].equals(table["i"])

@@ -35,7 +35,14 @@ from treewise.errors import DataError
 from treewise.estimator import DependencyTree
 from treewise.passes import Spool
 from treewise.progress import PassProgress, wants_progress
-from treewise.sources import BATCH_ROWS, BatchLoop, Source, check_columns, open_source
+from treewise.sources import (
+    BATCH_ROWS,
+    BatchLoop,
+    Source,
+    check_columns,
+    open_source,
+    row_keys,
+)
 
 if TYPE_CHECKING:
     from treewise.mixture import TreeMixture, _Run
@@ -153,15 +160,6 @@ def _add_batch(
 # -- the sample ----------------------------------------------------------------------------------
 
 
-def _keys(seed: int, start: int, n: int) -> npt.NDArray[np.uint64]:
-    """A pseudo-random 64-bit key per global row index (splitmix64's finaliser, from memory)."""
-    z = np.arange(start, start + n, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15)
-    z = z + np.uint64(seed % 2**64)
-    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
-    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
-    return z ^ (z >> np.uint64(31))
-
-
 class _Sample:
     """A uniform sample of at most ``size`` rows: the rows with the smallest keys (ties by index).
 
@@ -186,7 +184,7 @@ class _Sample:
     def add_batch(self, codes: _core.MixtureCodes, seed: int, start: int) -> None:
         n, d = codes.n_rows, self.codes.shape[1]
         matrix = np.stack([np.frombuffer(codes.column(c), "<u2") for c in range(d)], axis=1)
-        keys = _keys(seed, start, n)
+        keys = row_keys(seed, start, n)
         index = np.arange(start, start + n, dtype=np.int64)
         if len(self.keys) >= self.size:
             # Only rows that beat the largest key kept can enter.

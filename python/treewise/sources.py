@@ -24,6 +24,8 @@ from pathlib import Path
 from types import TracebackType
 from typing import Any
 
+import numpy as np
+import numpy.typing as npt
 import pyarrow as pa
 import pyarrow.csv as pacsv
 import pyarrow.dataset as pads
@@ -627,3 +629,59 @@ def read_table(data: Any, columns: list[str] | None = None) -> pa.Table:
     if not tables:
         return pa.table({c: pa.nulls(0) for c in (columns or source.names)})
     return pa.concat_tables(tables, promote_options="default")
+
+
+def row_keys(seed: int, start: int, n: int) -> npt.NDArray[np.uint64]:
+    """A pseudo-random 64-bit key per global row index ``start .. start + n``.
+
+    splitmix64's finaliser (from memory) on the index plus the seed: a row's key depends on the
+    seed and its position in the whole data alone, whatever the batches or partitions.
+    """
+    z = np.arange(start, start + n, dtype=np.uint64) * np.uint64(0x9E3779B97F4A7C15)
+    z = z + np.uint64(seed % 2**64)
+    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    return z ^ (z >> np.uint64(31))
+
+
+def sample_rows(
+    data: Any, size: int, seed: int, columns: list[str] | None = None
+) -> tuple[pa.Table, int]:
+    """A uniform random sample of at most ``size`` rows of any source, read in one pass.
+
+    Returns the sampled rows in their order in the data, and how many rows the data has. The
+    rows kept are those with the ``size`` smallest ``row_keys`` (ties by position), so the
+    sample depends on the seed and the data alone, not on the batches; memory holds about
+    twice ``size`` rows.
+    """
+    source = data if isinstance(data, Source) else open_source(data)
+    names = check_columns(source.names, columns, source.description) if columns else None
+    parts: list[pa.Table] = []
+    keys: list[npt.NDArray[np.uint64]] = []
+    threshold: np.uint64 | None = None
+    n = 0
+
+    def compact() -> None:
+        nonlocal threshold
+        table = pa.concat_tables(parts, promote_options="default")
+        every = np.concatenate(keys)
+        keep = np.sort(np.argsort(every, kind="stable")[:size])
+        parts[:] = [table.take(keep)]
+        keys[:] = [every[keep]]
+        if len(keep) == size:
+            threshold = every[keep].max()
+
+    with BatchLoop(source, names or list(source.names)) as batches:
+        for batch in batches:
+            batch_keys = row_keys(seed, n, batch.num_rows)
+            n += batch.num_rows
+            enter = np.ones(batch.num_rows, bool) if threshold is None else batch_keys <= threshold
+            if enter.any():
+                parts.append(pa.Table.from_batches([batch]).filter(pa.array(enter)))
+                keys.append(batch_keys[enter])
+            if sum(len(k) for k in keys) > 2 * size:
+                compact()
+    if not parts:
+        return pa.table({c: pa.nulls(0) for c in (names or source.names)}), n
+    compact()
+    return parts[0], n

@@ -25,7 +25,7 @@ import treewise
 from treewise.files import write_atomically
 from treewise.mixture import TreeMixture, choose_n_components
 from treewise.mixture_file import MAGIC
-from treewise.sources import read_table
+from treewise.sources import read_table, sample_rows
 from treewise.views.terminal import (
     SAMPLE_CAUTION,
     SCORE_CAUTION,
@@ -52,6 +52,9 @@ AUTO_CANDIDATES = (1, 2, 3, 4, 6, 8)
 HELD_OUT_SHARE = 0.2
 #: ``--components auto`` needs at least this many rows (two held out, the rest to fit).
 AUTO_MIN_ROWS = 10
+#: ``--components auto`` chooses K on a uniform random sample of at most this many rows (all of
+#: them when fewer), then fits that K to all the data.
+AUTO_SAMPLE_ROWS = 200_000
 
 
 def is_mixture(path: str | Path) -> bool:
@@ -116,23 +119,27 @@ def fit_mixture(
     them.
     """
     start = time.perf_counter()
-    table = read_table(data)
     mixture_params = {**tree_params, "random_state": seed}
     if components == "auto":
+        table, total = sample_rows(data, AUTO_SAMPLE_ROWS, seed, tree_params.get("columns"))
         train, held = _split(table, seed)
         k, figures = choose_n_components(
             train, AUTO_CANDIDATES, criterion="heldout", validation=held, **mixture_params
         )
+        sampled = "" if total == table.num_rows else f" (a random sample of {total:,} rows)"
         console.print(
-            f"Held out {held.num_rows:,} of {table.num_rows:,} rows (seed {seed}) and fitted "
-            f"K = {', '.join(map(str, AUTO_CANDIDATES))} to the other {train.num_rows:,}."
+            f"Held out {held.num_rows:,} of {table.num_rows:,} rows{sampled} (seed {seed}) and "
+            f"fitted K = {', '.join(map(str, AUTO_CANDIDATES))} to the other "
+            f"{train.num_rows:,}."
         )
         console.print(_choice_table(figures, k))
-        console.print(f"Chose K={k}; refitting it to all {table.num_rows:,} rows.")
+        console.print(f"Chose K={k}; refitting it to all {total:,} rows.")
     else:
         k = int(components)
+    # The fits read ``data`` as a source: files stream through in batches (a mixture by one
+    # pass per EM iteration), so memory does not grow with the rows.
     if k == 1:
-        tree = treewise.DependencyTree(**tree_params).fit(table)
+        tree = treewise.DependencyTree(**tree_params).fit(data)
         tree.save(output)
         console.print(
             f"Fitted one tree to {tree.n_rows_:,} rows x {tree.n_features_in_} columns "
@@ -140,7 +147,7 @@ def fit_mixture(
         )
         console.print(f"Saved the model to {output} in {_seconds(start)}.")
         return
-    model = TreeMixture(n_components=k, **mixture_params).fit(table)
+    model = TreeMixture(n_components=k, **mixture_params).fit(data)
     model.save(output)
     state = "converged" if model.converged_ else "stopped at max_iter, not converged"
     console.print(
