@@ -274,6 +274,22 @@ def test_progress_shows_each_iteration(parquet: Path, capsys: pytest.CaptureFixt
         assert f"EM iteration {it}: mean log-likelihood {bound:.6f} nats per row" in err
 
 
+def test_progress_shows_each_iteration_in_memory_too(
+    parquet: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    table = pq.read_table(parquet)
+    model = treewise.TreeMixture(2, max_iter=3, tol=0.0, n_init=2, random_state=0)
+    model.fit(table, progress=True)
+    err = capsys.readouterr().err
+    # The kept start's bounds, under its label; the other start's lines are there too.
+    assert err.count("EM start 1 of 2, iteration") == err.count("EM start 2 of 2, iteration") == 3
+    lines = [
+        f"iteration {it}: mean log-likelihood {b:.6f}"
+        for it, b in enumerate(model.lower_bounds_, 1)
+    ]
+    assert all(line in err for line in lines)
+
+
 def test_degenerate_components_do_not_crash(tmp_path: Path, monkeypatch: Any) -> None:
     # Two distinct rows for four components: components empty out and are reseeded.
     path = tmp_path / "two.parquet"

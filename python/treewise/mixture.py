@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 import os
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Literal, overload
 
@@ -28,6 +28,7 @@ from treewise.files import read_model_file, write_atomically
 from treewise.mixture_file import mixture_from_bytes, mixture_to_bytes
 from treewise.mixture_stream import EmParts, fit_streaming, wants_streaming
 from treewise.params import Params
+from treewise.progress import PassProgress, wants_progress
 from treewise.sources import BATCH_ROWS, BatchLoop, check_columns, open_source
 
 __all__ = ["MixtureComponent", "TreeMixture", "choose_n_components"]
@@ -282,6 +283,7 @@ class TreeMixture(Params):
                 em=EmParts(_log_mix, MIN_COMPONENT_ROWS, MAX_RESEEDS),
             )
             return self
+        show = wants_progress(progress)
         tree = DependencyTree(
             columns=self.columns,
             max_categories=self.max_categories,
@@ -289,15 +291,17 @@ class TreeMixture(Params):
             kinds=self.kinds,
             alpha=alpha,
             memory_limit=self.memory_limit,
-        ).fit(data)
+        ).fit(data, progress=show)
         self._adopt_tree(tree)
         codes, _, _ = self._encode(data)
         rng = np.random.default_rng(seed_of(self.random_state))
         best: _Run | None = None
-        for _ in range(n_init):
-            run = self._em(codes, k, alpha, max_iter, tol, rng)
-            if best is None or run.bounds[-1] > best.bounds[-1]:
-                best = run
+        with PassProgress(show, None, 1) as bar:
+            for start in range(n_init):
+                label = f"start {start + 1} of {n_init}, " if n_init > 1 else ""
+                run = self._em(codes, k, alpha, max_iter, tol, rng, bar.note, label)
+                if best is None or run.bounds[-1] > best.bounds[-1]:
+                    best = run
         assert best is not None
         self._set_run(best, alpha)
         self.n_rows_ = codes.n_rows
@@ -415,7 +419,10 @@ class TreeMixture(Params):
         max_iter: int,
         tol: float,
         rng: np.random.Generator,
+        note: Callable[[str], None] | None = None,
+        label: str = "",
     ) -> _Run:
+        """One EM run from one start; ``note`` (if any) hears each iteration's bound."""
         n = codes.n_rows
         resp = self._init_resp(codes, k, rng)
         row_ll: FloatArray | None = None
@@ -448,6 +455,11 @@ class TreeMixture(Params):
                 resp = np.zeros_like(resp)
                 resp[np.arange(n), best] = 1.0
             bounds.append(float(row_ll.mean()))
+            if note is not None:
+                note(
+                    f"EM {label}iteration {len(bounds)}: mean log-likelihood "
+                    f"{bounds[-1]:.6f} nats per row"
+                )
             if len(bounds) > 1 and not reseeded and abs(bounds[-1] - bounds[-2]) < tol:
                 converged = True
                 break
