@@ -129,9 +129,9 @@ def test_em_never_lowers_the_log_likelihood(init: str) -> None:
     # alpha=0: the M-step is the exact maximum-likelihood tree and tables of the weighted counts,
     # so every iteration must not lower the likelihood (Dempster, Laird & Rubin 1977, Thm 1;
     # Meila & Jordan 2000, section 3). tol=0 runs every iteration.
-    model = treewise.TreeMixture(3, alpha=0.0, max_iter=25, tol=0.0, init=init, random_state=4).fit(
-        train
-    )
+    model = treewise.TreeMixture(
+        3, alpha=0.0, pooling=0.0, max_iter=25, tol=0.0, init=init, random_state=4
+    ).fit(train)
     assert model.n_reseeds_ == 0
     bounds = np.array(model.lower_bounds_)
     assert len(bounds) >= 2
@@ -147,7 +147,7 @@ def test_hard_em_never_lowers_the_classification_likelihood() -> None:
     # fixed parameters, and the M-step maximises it for fixed assignments (Celeux & Govaert
     # 1992, "A classification EM algorithm for clustering", Theorem 1).
     model = treewise.TreeMixture(
-        2, alpha=0.0, algorithm="hard", max_iter=25, tol=0.0, random_state=4
+        2, alpha=0.0, pooling=0.0, algorithm="hard", max_iter=25, tol=0.0, random_state=4
     ).fit(train)
     assert model.n_reseeds_ == 0
     bounds = np.array(model.lower_bounds_)
@@ -305,6 +305,16 @@ def test_damaged_or_hostile_mixture_files_are_refused(tmp_path: Path) -> None:
     parents = np.frombuffer(data[start : start + 8 * d], "<i8").copy()
     parents[root] = child
     cases["cycle"] = _resigned(data[:start] + parents.tobytes() + data[start + 8 * d :])
+    # The pooling field (f32 after rows, iterations and converged): NaN and negative refused.
+    at = 28 + tree_len + 16 + 13
+    for name, value in [("pooling nan", math.nan), ("pooling negative", -1.0)]:
+        cases[name] = _resigned(data[:at] + struct.pack("<f", value) + data[at + 4 :])
+    # A file from before the field (0 there) loads, as fitted without pooling.
+    old = tmp_path / "old.twmix"
+    old.write_bytes(_resigned(data[:at] + b"\0" * 4 + data[at + 4 :]))
+    assert treewise.TreeMixture.load(old).pooling == 0.0
+    model.save(tmp_path / "new.twmix")
+    assert treewise.TreeMixture.load(tmp_path / "new.twmix").pooling == model.pooling == 5.0
     for name, bad in cases.items():
         path = tmp_path / f"{name}.twmix"
         path.write_bytes(bad)
@@ -345,19 +355,21 @@ def test_weighted_counts_equal_the_reference() -> None:
             np.testing.assert_allclose(np.frombuffer(t, "<f8"), t_ref[p].ravel(), rtol=1e-12)
 
 
-def test_em_iterations_equal_the_reference() -> None:
+@pytest.mark.parametrize("pooling", [0.0, 5.0])
+def test_em_iterations_equal_the_reference(pooling: float) -> None:
     codes, cards = _small_table(11)
     k = 3
     resp = np.random.default_rng(12).dirichlet(np.ones(k), size=len(codes[0]))
     core_codes = _core_codes(codes, cards)
     ref_resp = resp.copy()
     for _ in range(4):
-        comps = core_codes.fit_components(np.ascontiguousarray(resp).tobytes(), k, 0.5)
+        resp_bytes = np.ascontiguousarray(resp).tobytes()
+        comps = core_codes.fit_components(resp_bytes, k, 0.5, pooling)
         weights = resp.sum(axis=0) / len(resp)
         ll = np.frombuffer(core_codes.log_likelihoods(comps), "<f8").reshape(len(resp), k)
         row_ll, resp = _log_mix(ll, weights)
         ref_comps, ref_w, ref_row_ll, ref_resp = reference.mixture_em_step(
-            codes, cards, ref_resp, 0.5
+            codes, cards, ref_resp, 0.5, pooling
         )
         # Source: treewise.reference.mixture_em_step (the specification).
         np.testing.assert_allclose(weights, ref_w, rtol=1e-12)

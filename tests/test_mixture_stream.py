@@ -23,7 +23,7 @@ from treewise.progress import PassProgress
 from treewise.sources import SkippedFileWarning, open_source
 
 K = 3
-EM = EmParts(_log_mix, MIN_COMPONENT_ROWS, MAX_RESEEDS)
+EM = EmParts(_log_mix, MIN_COMPONENT_ROWS, MAX_RESEEDS, treewise.TreeMixture().pooling)
 
 
 def biopsy() -> pa.Table:
@@ -87,7 +87,7 @@ def test_streaming_em_follows_the_in_memory_em(table: pa.Table, algorithm: str) 
     assert reference.reseeds == 0 and len(reference.bounds) == iters
     # Its start, redone: k-means++ responsibilities, then its first M-step.
     resp = mixture._init_resp(codes, K, np.random.default_rng(5))
-    first = codes.fit_components(resp.tobytes(), K, alpha)
+    first = codes.fit_components(resp.tobytes(), K, alpha, mixture.pooling)
     weights = resp.sum(axis=0) / codes.n_rows
     names = [str(n) for n in tree.feature_names_in_]
     with PassProgress(False, None, 1) as bar:
@@ -143,9 +143,9 @@ def test_sums_added_batch_by_batch_are_the_in_memory_stats_bit_for_bit(table: pa
             np.testing.assert_array_equal(block[:, t], np.frombuffer(whole[t][2][p], "<f8"))
         at += size * K
     assert at == len(flat) == _core.mixture_sums_len(cards, K)
-    comps, totals = _core.mixture_fit_sums(cards, sums, K, 0.5)
+    comps, totals = _core.mixture_fit_sums(cards, sums, K, 0.5, 5.0)
     assert totals == [w[0] for w in whole]
-    reference = codes.fit_components(resp.tobytes(), K, 0.5)
+    reference = codes.fit_components(resp.tobytes(), K, 0.5, 5.0)
     for a, b in zip(comps, reference, strict=True):
         assert a.parent == b.parent
         assert [a.log_table(c) for c in range(d)] == [b.log_table(c) for c in range(d)]
@@ -165,9 +165,9 @@ def test_a_streaming_fit_of_data_that_fits_in_the_sample_continues_the_in_memory
 def _monotone(parquet: Path) -> None:
     # EM never lowers the likelihood (Dempster, Laird & Rubin 1977, Theorem 1); the M-step is
     # the exact maximum-likelihood tree (Chow & Liu 1968) at alpha=0.
-    model = treewise.TreeMixture(4, alpha=0.0, max_iter=25, tol=0.0, random_state=2).fit(
-        parquet, batch_rows=128
-    )
+    model = treewise.TreeMixture(
+        4, alpha=0.0, pooling=0.0, max_iter=25, tol=0.0, random_state=2
+    ).fit(parquet, batch_rows=128)
     bounds = np.array(model.lower_bounds_)
     assert len(bounds) == 25 and model.n_reseeds_ == 0
     # A start fitted to a sample may give rows of the rest probability 0 at alpha=0 (-inf).

@@ -39,7 +39,13 @@ def mixture_to_bytes(model: TreeMixture) -> bytes:
         struct.pack("<Q", len(tree_bytes)),
         tree_bytes,
         struct.pack("<IId", len(comps), d, float(model._fitted_alpha)),
-        struct.pack("<QIBI", int(model.n_rows_), int(model.n_iter_), int(model.converged_), 0),
+        struct.pack(
+            "<QIBf",
+            int(model.n_rows_),
+            int(model.n_iter_),
+            int(model.converged_),
+            float(model._fitted_pooling),
+        ),
         struct.pack("<I", int(model.n_reseeds_)),
         struct.pack("<I", len(bounds)),
         np.asarray(bounds, dtype="<f8").tobytes(),
@@ -95,7 +101,11 @@ def mixture_from_bytes(data: bytes, cls: type[TreeMixture]) -> TreeMixture:
         raise CorruptModelError(f"the mixture file holds {k} components over {d} columns")
     if not (math.isfinite(alpha) and alpha >= 0):
         raise CorruptModelError("the mixture file's smoothing is not a number >= 0")
-    n_rows, n_iter, converged, _ = r.unpack("<QIBI")
+    n_rows, n_iter, converged, pooling = r.unpack("<QIBf")
+    # The pooling the tables were fitted with (0 in files written before it had a field): a
+    # record of the parameter, since the stored counts already hold its pseudo-counts.
+    if not (math.isfinite(pooling) and pooling >= 0):
+        raise CorruptModelError("the mixture file's pooling is not a number >= 0")
     (n_reseeds,) = r.unpack("<I")
     (n_bounds,) = r.unpack("<I")
     if not 1 <= int(n_bounds) <= MAX_ITERATIONS or int(n_iter) != int(n_bounds):
@@ -123,7 +133,8 @@ def mixture_from_bytes(data: bytes, cls: type[TreeMixture]) -> TreeMixture:
     if r.offset != len(body):
         raise CorruptModelError("the mixture file has bytes after its last component")
     names = [str(n) for n in tree.feature_names_in_]
-    model = cls(n_components=k, alpha=alpha, columns=names)  # alpha: the one fitted with
+    # alpha and pooling: the ones fitted with.
+    model = cls(n_components=k, alpha=alpha, pooling=float(pooling), columns=names)
     model._restore(tree, comps, weights, [float(b) for b in bounds], bool(converged))
     model.n_rows_ = int(n_rows)
     model.n_reseeds_ = int(n_reseeds)

@@ -71,6 +71,8 @@ class EmParts:
     min_rows: float
     #: The most reseeds of a run.
     max_reseeds: int
+    #: Pseudo-rows pulling each component's tables toward the pooled ones (``pooling``).
+    pooling: float = 0.0
 
 
 def _is_dask(data: Any) -> bool:
@@ -271,7 +273,7 @@ def stream_em(
             break
         if it == max_iter - 1:
             break
-        new, totals = _core.mixture_fit_sums(cards, sums, k, alpha)
+        new, totals = _core.mixture_fit_sums(cards, sums, k, alpha, em.pooling)
         new_weights = np.array(totals) / n
         reseeded = 0
         small = [j for j in range(k) if totals[j] < em.min_rows]

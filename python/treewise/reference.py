@@ -17,6 +17,7 @@ import math
 from collections import Counter
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -642,16 +643,26 @@ def weighted_pair_stats(
 
 
 def mixture_m_step(
-    codes: list[IntArray], cards: list[int], resp: FloatArray, alpha: float
+    codes: list[IntArray], cards: list[int], resp: FloatArray, alpha: float, pooling: float = 0.0
 ) -> list[ReferenceComponent]:
     """Each component's Chow-Liu tree on weighted mutual information, and its tables.
 
     The tree is oriented from its centre (as :func:`fit` picks the root), and the tables are
-    smoothed by ``alpha`` from the weighted counts.
+    smoothed by ``alpha`` from the weighted counts. With ``pooling`` > 0 and more than one
+    component, each row of a table is the m-estimate (n_k(a, x) + pooling * P(x | a) + alpha)
+    / (n_k(a) + pooling + alpha * r), P(x | a) being the ``alpha``-smoothed conditional of all
+    the rows' counts (the components' counts added up).
     """
     d = len(codes)
     comps = []
-    for _, marginals, tables in weighted_pair_stats(codes, cards, resp):
+    stats = weighted_pair_stats(codes, cards, resp)
+
+    def counts_of(
+        marginals: list[FloatArray], tables: dict[Any, FloatArray], c: int, p: int
+    ) -> Any:
+        return marginals[c][None, :] if p < 0 else (tables[p, c] if p < c else tables[c, p].T)
+
+    for _, marginals, tables in stats:
         mi = np.zeros((d, d))
         for (i, j), table in tables.items():
             mi[i, j] = mi[j, i] = mutual_information(table)[0] if table.sum() > 0 else 0.0
@@ -663,7 +674,10 @@ def mixture_m_step(
         logp = []
         for c in range(d):
             p = int(parent[c])
-            counts = marginals[c][None, :] if p < 0 else (tables[p, c] if p < c else tables[c, p].T)
+            counts = counts_of(marginals, tables, c, p)
+            if pooling > 0 and len(stats) > 1:
+                pooled = sum(counts_of(m, t, c, p) for _, m, t in stats)
+                counts = counts + pooling * np.exp(_smoothed(pooled, alpha)[0])
             logp.append(_smoothed(counts, alpha)[0])
         comps.append(ReferenceComponent(root, parent, mi, logp))
     return comps
@@ -684,16 +698,17 @@ def mixture_log_likelihoods(codes: list[IntArray], comps: list[ReferenceComponen
 
 
 def mixture_em_step(
-    codes: list[IntArray], cards: list[int], resp: FloatArray, alpha: float
+    codes: list[IntArray], cards: list[int], resp: FloatArray, alpha: float, pooling: float = 0.0
 ) -> tuple[list[ReferenceComponent], FloatArray, FloatArray, FloatArray]:
     """One EM iteration from responsibilities ``resp`` (rows x K).
 
-    M-step: weights ``w_k = sum_t resp[t, k] / N`` and :func:`mixture_m_step`. E-step: per row
+    M-step: weights ``w_k = sum_t resp[t, k] / N`` and :func:`mixture_m_step` (with ``pooling``
+    pseudo-rows toward the pooled tables). E-step: per row
     ``ln sum_k w_k P_k(row)`` (log-sum-exp) and the new responsibilities ``w_k P_k(row) / P(row)``.
     Returns the components, the weights, each row's log-likelihood and the responsibilities.
     """
     weights = resp.sum(axis=0) / resp.shape[0]
-    comps = mixture_m_step(codes, cards, resp, alpha)
+    comps = mixture_m_step(codes, cards, resp, alpha, pooling)
     with np.errstate(divide="ignore"):
         joint = mixture_log_likelihoods(codes, comps) + np.log(weights)[None, :]
     top = joint.max(axis=1)

@@ -449,15 +449,7 @@ pub fn fit_component(cards: &[usize], stats: &WeightedStats, alpha: f64) -> Resu
     let counts: Vec<Vec<f64>> = parent
         .iter()
         .enumerate()
-        .map(|(c, p)| match *p {
-            None => stats.marginals[c].clone(),
-            Some(p) if p < c => stats.tables[crate::stats::pair_index(d, p, c)].clone(),
-            Some(p) => {
-                let t = &stats.tables[crate::stats::pair_index(d, c, p)];
-                let (rc, rp) = (cards[c], cards[p]);
-                (0..rp * rc).map(|k| t[(k % rc) * rp + k / rc]).collect()
-            }
-        })
+        .map(|(c, p)| edge_counts(cards, stats, c, *p))
         .collect();
     let tables = counts
         .iter()
@@ -472,6 +464,76 @@ pub fn fit_component(cards: &[usize], stats: &WeightedStats, alpha: f64) -> Resu
         counts,
         tables,
     })
+}
+
+/// Column `c`'s weighted counts with `parent` (parent code x code, row-major), or its marginal
+/// for a root.
+fn edge_counts(
+    cards: &[usize],
+    stats: &WeightedStats,
+    c: usize,
+    parent: Option<usize>,
+) -> Vec<f64> {
+    let d = cards.len();
+    match parent {
+        None => stats.marginals[c].clone(),
+        Some(p) if p < c => stats.tables[crate::stats::pair_index(d, p, c)].clone(),
+        Some(p) => {
+            let t = &stats.tables[crate::stats::pair_index(d, c, p)];
+            let (rc, rp) = (cards[c], cards[p]);
+            (0..rp * rc).map(|k| t[(k % rc) * rp + k / rc]).collect()
+        }
+    }
+}
+
+/// Every component of an M-step from its statistics (one per component): its Chow–Liu tree
+/// from its own weighted counts, and its tables smoothed by `alpha` and pulled toward the
+/// pooled tables by `pooling` pseudo-rows.
+///
+/// The pooled tables are the components' counts added up (all the rows, whatever their
+/// responsibilities), smoothed by `alpha`. Each row of a component's table becomes
+/// (n_k(a, x) + pooling * P(x | a) + alpha) / (n_k(a) + pooling + alpha * r): the m-estimate
+/// (Cestnik 1990, from memory) with the pooled conditional as its prior. A component that
+/// explains few rows then falls back on what all the rows say rather than on a flat row. With
+/// one component (nothing to pool) or `pooling = 0` the tables are the plain smoothed ones.
+/// `Component::counts` holds the pseudo-counts the tables come from, so a stored component
+/// rebuilds the same tables.
+pub fn fit_components(
+    cards: &[usize],
+    stats: &[WeightedStats],
+    alpha: f64,
+    pooling: f64,
+) -> Result<Vec<Component>> {
+    if !(pooling.is_finite() && pooling >= 0.0) {
+        return Err(Error::Invalid(format!(
+            "pooling must be a finite number >= 0, got {pooling}"
+        )));
+    }
+    let mut comps = stats
+        .iter()
+        .map(|s| fit_component(cards, s, alpha))
+        .collect::<Result<Vec<_>>>()?;
+    if pooling == 0.0 || stats.len() < 2 {
+        return Ok(comps);
+    }
+    for comp in &mut comps {
+        for (c, &card) in cards.iter().enumerate() {
+            let mut pooled = vec![0.0; comp.counts[c].len()];
+            for s in stats {
+                let part = edge_counts(cards, s, c, comp.parent[c]);
+                pooled.iter_mut().zip(part).for_each(|(t, x)| *t += x);
+            }
+            let counts = &mut comp.counts[c];
+            for (row, prior) in counts.chunks_exact_mut(card).zip(pooled.chunks_exact(card)) {
+                let (logp, _) = smoothed_weighted_row(prior, alpha);
+                row.iter_mut()
+                    .zip(logp)
+                    .for_each(|(n, l)| *n += pooling * l.exp());
+            }
+            comp.tables[c] = LogTable::new(counts, card, alpha);
+        }
+    }
+    Ok(comps)
 }
 
 /// A component from stored parts (a mixture file, which may be hostile): every length, link
@@ -878,6 +940,49 @@ mod tests {
         assert_eq!(empty[3].n, 0.0);
         assert!(assigned_stats(&codes, &cards, &assign, 2).is_err());
         assert!(assigned_stats(&codes, &cards, &assign[..3], 3).is_err());
+        Ok(())
+    }
+
+    #[test]
+    fn pooling_pulls_each_table_toward_the_pooled_one() -> Result<()> {
+        let codes = vec![
+            vec![0u16, 1, 1, 0, 1, 0, 1, 1],
+            vec![1u16, 0, 1, 1, 0, 0, 1, 0],
+        ];
+        let cards = [2, 2];
+        let resp = [
+            0.9, 0.1, 0.8, 0.2, 0.1, 0.9, 0.7, 0.3, 0.2, 0.8, 1.0, 0.0, 0.5, 0.5, 0.0, 1.0,
+        ];
+        let stats = weighted_stats(&codes, &cards, &resp, 2)?;
+        let plain = fit_components(&cards, &stats, 0.5, 0.0)?;
+        let pooled = fit_components(&cards, &stats, 0.5, 4.0)?;
+        let all = weighted_stats(&codes, &cards, &[1.0; 8], 1)?;
+        for (k, (p, q)) in plain.iter().zip(&pooled).enumerate() {
+            assert_eq!(p.parent, q.parent);
+            assert_eq!(p, &fit_component(&cards, &stats[k], 0.5)?);
+            for c in 0..2 {
+                // The m-estimate by hand: (n + 4 * P_pooled + 0.5) / (n_row + 4 + 0.5 * 2).
+                let prior = edge_counts(&cards, &all[0], c, p.parent[c]);
+                let n = &p.counts[c];
+                for (a, (row, prow)) in n.chunks(2).zip(prior.chunks(2)).enumerate() {
+                    let total: f64 = prow.iter().sum::<f64>() + 1.0;
+                    for x in 0..2 {
+                        let want = (row[x] + 4.0 * (prow[x] + 0.5) / total + 0.5)
+                            / (row.iter().sum::<f64>() + 4.0 + 1.0);
+                        let got = q.tables[c].logp[a * 2 + x].exp();
+                        assert!((got - want).abs() < 1e-12, "{k} {c} {a} {x}: {got} {want}");
+                    }
+                }
+            }
+        }
+        // One component has nothing to pool: the plain tables.
+        let one = weighted_stats(&codes, &cards, &[1.0; 8], 1)?;
+        assert_eq!(
+            fit_components(&cards, &one, 0.5, 4.0)?,
+            fit_components(&cards, &one, 0.5, 0.0)?
+        );
+        assert!(fit_components(&cards, &stats, 0.5, f64::NAN).is_err());
+        assert!(fit_components(&cards, &stats, 0.5, -1.0).is_err());
         Ok(())
     }
 

@@ -29,6 +29,14 @@ fn from_le<const W: usize, T>(data: &[u8], what: &str, f: fn([u8; W]) -> T) -> P
         .collect())
 }
 
+/// Fitted core components as Python objects.
+pub(crate) fn wrap(comps: Vec<Component>) -> Vec<PyMixtureComponent> {
+    comps
+        .into_iter()
+        .map(|inner| PyMixtureComponent { inner })
+        .collect()
+}
+
 /// The rows of a table as code columns (u16), kept in Rust across EM iterations.
 #[pyclass(name = "MixtureCodes", module = "treewise._core")]
 pub struct PyMixtureCodes {
@@ -198,47 +206,40 @@ impl PyMixtureCodes {
 
     /// The M-step: per component, the weighted counts, its Chow–Liu tree and tables smoothed by
     /// `alpha`.
+    #[pyo3(signature = (resp, k, alpha, pooling = 0.0))]
     fn fit_components(
         &self,
         py: Python<'_>,
         resp: &[u8],
         k: usize,
         alpha: f64,
+        pooling: f64,
     ) -> PyResult<Vec<PyMixtureComponent>> {
         let resp = from_le::<8, f64>(resp, "responsibilities", f64::from_le_bytes)?;
         let comps = detached(py, || {
             let stats = mixture::weighted_stats(&self.codes, &self.cards, &resp, k)?;
-            stats
-                .iter()
-                .map(|s| mixture::fit_component(&self.cards, s, alpha))
-                .collect::<Result<Vec<_>, Error>>()
+            mixture::fit_components(&self.cards, &stats, alpha, pooling)
         })?;
-        Ok(comps
-            .into_iter()
-            .map(|inner| PyMixtureComponent { inner })
-            .collect())
+        Ok(wrap(comps))
     }
 
     /// Hard EM's M-step: components fitted to the exact counts of the rows assigned to each
     /// (`assign`: u32 bytes, one component index per row, each below `k`).
+    #[pyo3(signature = (assign, k, alpha, pooling = 0.0))]
     fn fit_assigned(
         &self,
         py: Python<'_>,
         assign: &[u8],
         k: usize,
         alpha: f64,
+        pooling: f64,
     ) -> PyResult<Vec<PyMixtureComponent>> {
         let assign = from_le::<4, u32>(assign, "assignments", u32::from_le_bytes)?;
         let comps = detached(py, || {
-            mixture::assigned_stats(&self.codes, &self.cards, &assign, k)?
-                .iter()
-                .map(|s| mixture::fit_component(&self.cards, s, alpha))
-                .collect::<Result<Vec<_>, Error>>()
+            let stats = mixture::assigned_stats(&self.codes, &self.cards, &assign, k)?;
+            mixture::fit_components(&self.cards, &stats, alpha, pooling)
         })?;
-        Ok(comps
-            .into_iter()
-            .map(|inner| PyMixtureComponent { inner })
-            .collect())
+        Ok(wrap(comps))
     }
 
     /// ln P(row | component) for every row and component (f64 bytes, rows x k, row-major).

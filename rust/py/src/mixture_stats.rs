@@ -8,7 +8,7 @@ use treewise_core::Error;
 
 use crate::buffers::le_bytes;
 use crate::errors::{detached, to_py};
-use crate::mixture::PyMixtureComponent;
+use crate::mixture::{wrap, PyMixtureComponent};
 
 /// Little-endian bytes as f64 or u16; a length that is not a whole number of values is an error.
 fn f64s(data: &[u8], what: &str) -> PyResult<Vec<f64>> {
@@ -77,7 +77,8 @@ pub fn mixture_add_sums<'py>(
 }
 
 /// The M-step from summed statistics: per component, its Chow–Liu tree and tables smoothed by
-/// `alpha`, and its total weight (the sum of its responsibilities).
+/// `alpha` and pulled toward the pooled tables by `pooling` pseudo-rows (`mixture::fit_components`),
+/// and its total weight (the sum of its responsibilities).
 #[pyfunction]
 pub fn mixture_fit_sums(
     py: Python<'_>,
@@ -85,6 +86,7 @@ pub fn mixture_fit_sums(
     sums: &[u8],
     k: usize,
     alpha: f64,
+    pooling: f64,
 ) -> PyResult<(Vec<PyMixtureComponent>, Vec<f64>)> {
     let sums = f64s(sums, "weighted sums")?;
     if sums.iter().any(|s| !(s.is_finite() && *s >= 0.0)) {
@@ -94,17 +96,8 @@ pub fn mixture_fit_sums(
     }
     let (comps, totals) = detached(py, || {
         let stats = mixture::split_weighted_sums(&sums, &cards, k)?;
-        let comps = stats
-            .iter()
-            .map(|s| mixture::fit_component(&cards, s, alpha))
-            .collect::<Result<Vec<_>, Error>>()?;
+        let comps = mixture::fit_components(&cards, &stats, alpha, pooling)?;
         Ok((comps, stats.iter().map(|s| s.n).collect::<Vec<f64>>()))
     })?;
-    Ok((
-        comps
-            .into_iter()
-            .map(|inner| PyMixtureComponent { inner })
-            .collect(),
-        totals,
-    ))
+    Ok((wrap(comps), totals))
 }
