@@ -64,6 +64,7 @@ bench: build ## Benchmark against the numpy reference; privacy against utility; 
 	$(PY) bench/privacy_utility.py --write bench/RESULTS.md
 	$(PY) bench/mixture_bench.py --write bench/RESULTS.md
 	$(PY) bench/mixture_bench.py --stream-rows 10000000 --write bench/RESULTS.md
+	$(PY) bench/mixture_real.py --write bench/RESULTS.md
 
 # Seconds per fuzz target: `make fuzz FUZZ_SECONDS=3600`; fuzz/run.sh also takes target names.
 FUZZ_SECONDS ?= 600
