@@ -159,7 +159,7 @@ class TreeMixture(Params):
         0 turns it off, and with one component there is nothing to pool. The trees themselves
         come from each component's own counts. Measured (bench/mixture_bench.py, held out),
         5 pseudo-rows raised a 4-tree mixture's held-out likelihood on all three of its tables:
-        digits +3.98 to +4.07 nats per row, diamonds +0.59 to +0.64, and AER's CPS1985 (534
+        digits +3.93 to +4.07 nats per row, diamonds +0.62 to +0.64, and AER's CPS1985 (534
         rows) -0.53 to -0.18 against one tree.
     max_iter : int, default 100
         The most EM iterations per start.
