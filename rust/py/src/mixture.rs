@@ -67,6 +67,7 @@ impl PyMixtureCodes {
         let mut tails: Vec<Option<Vec<f64>>> = vec![None; d];
         for slice in slices(&batch) {
             let (part, terms) = detached(py, || {
+                let slice = treewise_core::times::conform_times(&slice, model.dtypes())?;
                 let part = model.codebook().encode(&slice, false)?;
                 let terms = model.tail_terms(&slice, &part)?;
                 Ok((part, terms))

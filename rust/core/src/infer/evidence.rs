@@ -41,6 +41,7 @@ impl Inference {
     /// unobserved too, and counted in [`Evidence::unseen`].
     pub fn evidence(&self, batch: &RecordBatch) -> Result<Evidence> {
         self.model.codebook().check_batch(batch)?;
+        let batch = &crate::times::conform_times(batch, self.model.dtypes())?;
         let n = batch.num_rows();
         let columns: Vec<(Vec<u16>, Vec<bool>, u64)> = self
             .encoders
