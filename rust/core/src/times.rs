@@ -218,8 +218,8 @@ mod tests {
     use super::*;
     use arrow_array::cast::AsArray;
 
-    fn one(array: ArrayRef) -> RecordBatch {
-        RecordBatch::try_from_iter([("t", array)]).expect("a one-column batch")
+    fn one(array: ArrayRef) -> Result<RecordBatch> {
+        RecordBatch::try_from_iter([("t", array)]).map_err(|e| Error::Invalid(e.to_string()))
     }
 
     #[test]
@@ -257,12 +257,12 @@ mod tests {
             None,
             Some(-1_500_000_000),
         ]));
-        let got = conform_times(&one(ns), &["timestamp[s]".into()])?;
+        let got = conform_times(&one(ns)?, &["timestamp[s]".into()])?;
         let s = got.column(0).as_primitive::<TimestampSecondType>();
         assert_eq!(s.iter().collect::<Vec<_>>(), vec![Some(1), None, Some(-2)]);
         // Days into milliseconds, exactly; and a date64 into the fitted date32.
         let days: ArrayRef = Arc::new(PrimitiveArray::<Date32Type>::from(vec![Some(1), Some(-1)]));
-        let got = conform_times(&one(days), &["timestamp[ms, tz=UTC]".into()])?;
+        let got = conform_times(&one(days)?, &["timestamp[ms, tz=UTC]".into()])?;
         assert_eq!(
             got.column(0).data_type(),
             &DataType::Timestamp(TimeUnit::Millisecond, Some("UTC".into()))
@@ -272,11 +272,11 @@ mod tests {
         let d64: ArrayRef = Arc::new(PrimitiveArray::<Date64Type>::from(vec![Some(
             86_400_000 * 3 + 5,
         )]));
-        let got = conform_times(&one(d64), &["date32[day]".into()])?;
+        let got = conform_times(&one(d64)?, &["date32[day]".into()])?;
         assert_eq!(got.column(0).as_primitive::<Date32Type>().value(0), 3);
         // The same unit, another kind (time of day against a timestamp), another type: kept.
         let tod: ArrayRef = Arc::new(PrimitiveArray::<Time64MicrosecondType>::from(vec![Some(5)]));
-        let kept = one(tod);
+        let kept = one(tod)?;
         assert_eq!(
             conform_times(&kept, &["timestamp[s]".into()])?
                 .column(0)
@@ -293,7 +293,7 @@ mod tests {
         let far: ArrayRef = Arc::new(PrimitiveArray::<TimestampSecondType>::from(vec![Some(
             i64::MAX / 2,
         )]));
-        let err = conform_times(&one(far), &["timestamp[ns]".into()])
+        let err = conform_times(&one(far)?, &["timestamp[ns]".into()])
             .map(|_| ())
             .err();
         assert!(matches!(err, Some(Error::Invalid(m)) if m.contains("\"t\"")));
