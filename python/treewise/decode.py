@@ -11,7 +11,7 @@ import numpy as np
 import numpy.typing as npt
 import pyarrow as pa
 
-from treewise.errors import CorruptModelError
+from treewise.errors import CorruptModelError, DataError
 
 __all__ = ["ColumnValues", "decode_column", "type_from_name", "type_name"]
 
@@ -345,3 +345,61 @@ def fitting_type(name: str, values: list[Any], n_codes: int) -> str:
         if index not in _RANGES or n_codes - 1 > _RANGES[index][1]:
             return FAMILY_TYPES[family(name)]
     return name
+
+
+#: Nanoseconds per unit, and pyarrow's name of the unit for ``floor_temporal``.
+_UNITS = {
+    "s": (1_000_000_000, "second"),
+    "ms": (1_000_000, "millisecond"),
+    "us": (1_000, "microsecond"),
+    "ns": (1, "nanosecond"),
+}
+_DAY = (86_400_000_000_000, "day")
+
+
+def _time_unit(dtype: pa.DataType) -> tuple[str, int, str] | None:
+    """A time type's origin (epoch, midnight or span), its unit in ns and the unit's name."""
+    if pa.types.is_timestamp(dtype):
+        return ("epoch", *_UNITS[dtype.unit])
+    if pa.types.is_date32(dtype):
+        return ("epoch", *_DAY)
+    if pa.types.is_date64(dtype):
+        return ("epoch", *_UNITS["ms"])
+    if pa.types.is_time(dtype):
+        return ("midnight", *_UNITS[dtype.unit])
+    if pa.types.is_duration(dtype):
+        return ("span", *_UNITS[dtype.unit])
+    return None
+
+
+def conform_time_column(column: pa.Array[Any], fitted: str, name: str) -> pa.Array[Any]:
+    """``column`` in the unit of the stored time type name ``fitted``, as the core converts.
+
+    Exact into a finer unit, rounded down (toward the past) into a coarser one; timestamps and
+    dates convert into each other, times of day and durations only within their kind. Any other
+    column, or one already in its fitted unit, comes back as it is.
+    """
+    target = _time_type(fitted)
+    given = _time_unit(column.type)
+    wanted = None if target is None else _time_unit(target)
+    if target is None or given is None or wanted is None or given[0] != wanted[0]:
+        return column
+    if given[1] == wanted[1] and (column.type.id == target.id):
+        return column
+    import pyarrow.compute as pc
+
+    try:
+        if given[1] < wanted[1]:
+            if pa.types.is_duration(column.type):
+                ints = column.cast(pa.int64()).to_numpy(zero_copy_only=False)
+                valid = column.is_valid().to_numpy(zero_copy_only=False)
+                floored = np.floor_divide(np.where(valid, ints, 0), wanted[1] // given[1])
+                return pa.array(floored, type=target, mask=~valid)
+            floor: Any = pc.floor_temporal
+            column = floor(column, multiple=1, unit=wanted[2])
+        return column.cast(target)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as e:
+        raise DataError(
+            f"column {name!r}: cannot convert {column.type} into the fitted {target}: {e}; "
+            f"give the column as {target}"
+        ) from e

@@ -17,7 +17,14 @@ from typing import Any
 import pyarrow as pa
 
 from treewise import _core
-from treewise.decode import FAMILY_TYPES, fitting_type, type_name, widen
+from treewise.decode import (
+    FAMILY_TYPES,
+    conform_time_column,
+    family,
+    fitting_type,
+    type_name,
+    widen,
+)
 from treewise.errors import CategoryCapWarning, ColumnKindWarning, warn
 from treewise.progress import PassProgress
 from treewise.sources import BatchLoop, Source, open_source
@@ -52,16 +59,29 @@ class TypeRecorder:
         self.names = names
         self.types: dict[str, str] = {}
 
-    def see(self, batch: pa.RecordBatch) -> None:
-        """Record the types of a batch's columns."""
-        for field in batch.schema:
+    def see(self, batch: pa.RecordBatch) -> pa.RecordBatch:
+        """Record the types of a batch's columns; returns the batch to count.
+
+        A time column keeps the unit it was first seen in (the model stores that type): a later
+        batch in another unit (a Parquet file of milliseconds after one of seconds) is converted
+        to it, as a fitted model converts the data it scores.
+        """
+        columns = list(batch.columns)
+        converted = False
+        for i, field in enumerate(batch.schema):
             if pa.types.is_null(field.type):
                 continue
-            column: Any = batch.column(field.name)
+            column: Any = batch.column(i)
             levels = column.dictionary if pa.types.is_dictionary(field.type) else None
             name = type_name(field.type, levels)
             seen = self.types.get(field.name)
+            if seen is not None and seen != name and family(seen) == "time":
+                columns[i] = conform_time_column(column, seen, field.name)
+                converted = converted or columns[i] is not column
             self.types[field.name] = name if seen is None else widen(seen, name)
+        if not converted:
+            return batch
+        return pa.RecordBatch.from_arrays(columns, names=batch.schema.names)
 
     def select(self, names: list[str]) -> TypeRecorder:
         """The recorded types of the columns ``names`` only."""
@@ -159,7 +179,7 @@ def _read_once(
     """The first pass over ``source``: each batch's types recorded, observed and spooled."""
     with BatchLoop(source, names, batch_rows, bar, title) as batches:
         for batch in batches:
-            types.see(batch)
+            batch = types.see(batch)
             observe(batch)
             if spool is not None:
                 spool.write(batch)
@@ -230,8 +250,7 @@ def count_pairs(
     """The counting pass: encode each batch with ``codebook`` and add its pair counts."""
     with BatchLoop(source, names, batch_rows, bar, title) as batches:
         for batch in batches:
-            types.see(batch)
-            stats.update(codebook, batch)
+            stats.update(codebook, types.see(batch))
 
 
 def _cell_limit(memory_limit: int | None) -> int:
