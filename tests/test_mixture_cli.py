@@ -161,6 +161,28 @@ def test_score_writes_the_mixtures_own_answers(
         )
 
 
+def test_score_reads_batch_by_batch(
+    mixture_file: Path, files: dict[str, Path], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # Three files, so three batches: the scores, the row numbers of the top rows and the
+    # unseen-value warning are those of the whole data.
+    held = pq.read_table(files["held"])
+    parts = []
+    for i, start in enumerate(range(0, held.num_rows, held.num_rows // 3 + 1)):
+        path = tmp_path / f"part{i}.parquet"
+        pq.write_table(held.slice(start, held.num_rows // 3 + 1), path)
+        parts.append(path)
+    out_path = tmp_path / "scored.parquet"
+    out = ok(capsys, "score", mixture_file, *parts, "-o", out_path, "--top", "4")
+    scored = pq.read_table(out_path)
+    model = TreeMixture.load(mixture_file)
+    expected = model.score_samples(held)
+    np.testing.assert_allclose(scored["score"].to_numpy(), expected, rtol=1e-12)
+    lowest = np.argsort(expected, kind="stable")[:4]
+    rows = [int(r.replace(",", "")) for r in re.findall(r"│ +([\d,]+) │ +-\d", out)]
+    assert rows == lowest.tolist()
+
+
 def test_sample_draws_what_the_library_draws(
     mixture_file: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

@@ -10,6 +10,7 @@ from __future__ import annotations
 import io
 import json
 import time
+import warnings
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -17,15 +18,16 @@ from typing import Any
 import click
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 import pyarrow.parquet as pq
 from rich.console import Console
 from rich.table import Table
 
 import treewise
-from treewise.files import write_atomically
+from treewise.files import atomic_path, write_atomically
 from treewise.mixture import TreeMixture, choose_n_components
 from treewise.mixture_file import MAGIC
-from treewise.sources import read_table, sample_rows
+from treewise.sources import BatchLoop, check_columns, open_source, sample_rows
 from treewise.views.terminal import (
     SAMPLE_CAUTION,
     SCORE_CAUTION,
@@ -189,55 +191,82 @@ def score_mixture(
     """``treewise score`` of a mixture: ln p(row), its component and responsibilities.
 
     With ``surprisal``, also ``surprisal_<column>``: -ln P_k(value | parent value) under the
-    row's most responsible component k (``TreeMixture.surprisal``).
+    row's most responsible component k (``TreeMixture.surprisal``). The data is read batch by
+    batch and the file written as it goes (to a temporary name, renamed at the end), so memory
+    holds one batch and the ``top`` rows, whatever the size of the data.
     """
-    from treewise.views.components import assign, assignment_table
-
     start = time.perf_counter()
     names = [str(n) for n in model.feature_names_in_]
-    wanted = list(dict.fromkeys([*keys, *names]))
-    table = read_table(data, wanted)
-    assignment = assign(model, table.select(names), 0)
-    scored = assignment_table(assignment, table.select(list(keys)) if keys else None)
-    scored = scored.drop_columns(["tree_score"])
-    explained = model.surprisal(table.select(names)) if surprisal else None
-    if explained is not None:
-        for name in names:
-            scored = scored.append_column(f"surprisal_{name}", explained[name])
-    sink = io.BytesIO()
-    pq.write_table(scored, sink)
-    write_atomically(output, sink.getvalue())
-    console.print(f"Scored {scored.num_rows:,} rows and wrote {output} in {_seconds(start)}.")
-    if top:
-        order = np.argsort(assignment.scores, kind="stable")[:top]
-        worst = Table(title=f"The {len(order)} most surprising rows")
-        worst.add_column("row", justify="right")
-        for key in keys:
-            worst.add_column(key)
-        worst.add_column("ln p", justify="right")
-        worst.add_column("component", justify="right")
-        worst.add_column("P(component | row)", justify="right")
-        if explained is not None:
-            worst.add_column("most surprising columns")
-        key_values = {key: table[key].to_pylist() for key in keys}
-        for r in order:
-            k = int(assignment.best[r])
-            worst.add_row(
-                f"{int(r):,}",
-                *(str(key_values[key][r]) for key in keys),
-                f"{assignment.scores[r]:.2f}",
-                str(k),
-                f"{assignment.responsibilities[r, k]:.3f}",
-                *([_worst_columns(explained, names, int(r))] if explained is not None else []),
-            )
-        console.print(worst)
+    source = open_source(data)
+    wanted = check_columns(source.names, list(dict.fromkeys([*keys, *names])), source.description)
+    k = len(model.components_)
+    worst: pa.Table | None = None
+    unseen: list[str] = []
+    n_rows = 0
+    with atomic_path(output) as tmp, BatchLoop(source, wanted) as batches:
+        writer: pq.ParquetWriter | None = None
+        try:
+            for batch in batches:
+                table = pa.Table.from_batches([batch])
+                with warnings.catch_warnings(record=True) as caught:
+                    warnings.simplefilter("always", treewise.UnseenCategoryWarning)
+                    explained = model.surprisal(table.select(names))
+                unseen += [str(w.message) for w in caught]
+                part: dict[str, Any] = {key: table[key] for key in keys}
+                part["score"] = pc.negate(explained["total"])
+                part["component"] = explained["component"].cast(pa.int32())
+                for j in range(k):
+                    part[f"responsibility_{j}"] = explained[f"responsibility_{j}"]
+                columns: dict[str, Any] = {f"surprisal_{n}": explained[n] for n in names}
+                scored = pa.table({**part, **columns} if surprisal else part)
+                if writer is None:
+                    writer = pq.ParquetWriter(str(tmp), scored.schema)
+                writer.write_table(scored)
+                if top:
+                    rows: dict[str, Any] = {
+                        "row": pa.array(np.arange(n_rows, n_rows + table.num_rows))
+                    }
+                    candidates = pa.table({**rows, **part, **columns})
+                    both = candidates if worst is None else pa.concat_tables([worst, candidates])
+                    worst = both.take(np.argsort(both["score"].to_numpy(), kind="stable")[:top])
+                n_rows += table.num_rows
+            if writer is None:
+                raise treewise.DataError("the data has 0 rows; there is nothing to score")
+        finally:
+            if writer is not None:
+                writer.close()
+    if unseen:
+        more = f" (and in {len(unseen) - 1} more batches)" if len(unseen) > 1 else ""
+        warnings.warn(unseen[0] + more, treewise.UnseenCategoryWarning, stacklevel=2)
+    console.print(f"Scored {n_rows:,} rows and wrote {output} in {_seconds(start)}.")
+    if worst is not None:
+        console.print(_worst_table(worst, keys, names))
     console.print(SCORE_CAUTION)
 
 
-def _worst_columns(explained: pa.Table, names: list[str], row: int) -> str:
-    """The three columns with the highest surprisal in ``row``, with their nats."""
-    values = [(float(explained[name][row].as_py()), name) for name in names]
-    return ", ".join(f"{name} {v:.1f}" for v, name in sorted(values, reverse=True)[:3])
+def _worst_table(worst: pa.Table, keys: Sequence[str], names: list[str]) -> Table:
+    """The most surprising rows: position, keys, ln p, component and the columns to blame."""
+    out = Table(title=f"The {worst.num_rows} most surprising rows")
+    out.add_column("row", justify="right")
+    for key in keys:
+        out.add_column(key)
+    out.add_column("ln p", justify="right")
+    out.add_column("component", justify="right")
+    out.add_column("P(component | row)", justify="right")
+    out.add_column("most surprising columns")
+    for r in range(worst.num_rows):
+        k = int(worst["component"][r].as_py())
+        values = [(float(worst[f"surprisal_{n}"][r].as_py()), n) for n in names]
+        blame = ", ".join(f"{n} {v:.1f}" for v, n in sorted(values, reverse=True)[:3])
+        out.add_row(
+            f"{int(worst['row'][r].as_py()):,}",
+            *(str(worst[key][r].as_py()) for key in keys),
+            f"{float(worst['score'][r].as_py()):.2f}",
+            str(k),
+            f"{float(worst[f'responsibility_{k}'][r].as_py()):.3f}",
+            blame,
+        )
+    return out
 
 
 def sample_mixture(
