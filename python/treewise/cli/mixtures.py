@@ -7,7 +7,6 @@ file turns out to be a mixture (its first bytes are ``mixture_file.MAGIC``).
 
 from __future__ import annotations
 
-import io
 import json
 import time
 import warnings
@@ -24,10 +23,11 @@ from rich.console import Console
 from rich.table import Table
 
 import treewise
-from treewise.files import atomic_path, write_atomically
+from treewise.files import atomic_path
 from treewise.mixture import TreeMixture, choose_n_components
 from treewise.mixture_file import MAGIC
 from treewise.sources import BatchLoop, check_columns, open_source, sample_rows
+from treewise.stream import atomic_parquet
 from treewise.views.terminal import (
     SAMPLE_CAUTION,
     SCORE_CAUTION,
@@ -272,14 +272,17 @@ def _worst_table(worst: pa.Table, keys: Sequence[str], names: list[str]) -> Tabl
 def sample_mixture(
     console: Console, model: TreeMixture, n_rows: int, output: str, seed: int
 ) -> None:
-    """``treewise sample`` of a mixture: rows drawn in memory, then written at once."""
+    """``treewise sample`` of a mixture: rows drawn and written block by block.
+
+    The file is written to a temporary name and renamed at the end, in bounded memory.
+    """
     start = time.perf_counter()
-    table = model.sample(n_rows, random_state=seed)
-    sink = io.BytesIO()
-    pq.write_table(table, sink)
-    write_atomically(output, sink.getvalue())
+    schema = model.single_tree_._output_schema()
+    with atomic_parquet(output, schema) as writer:
+        for batch in model.iter_sample(n_rows, random_state=seed):
+            writer.write_batch(batch)
     console.print(
-        f"Wrote {table.num_rows:,} synthetic rows to {output} in {_seconds(start)} (seed {seed})."
+        f"Wrote {n_rows:,} synthetic rows to {output} in {_seconds(start)} (seed {seed})."
     )
     console.print(SAMPLE_CAUTION)
 
