@@ -330,3 +330,25 @@ def test_the_notebook_view_lists_the_components(fitted: treewise.TreeMixture) ->
         assert f">{comp.weight:.3f}<" in text
         assert f">{k}</td>" in text
     assert treewise.TreeMixture(3)._repr_html_() == "<pre>TreeMixture(n_components=3)</pre>"
+
+
+def test_answers_do_not_depend_on_the_batches(
+    cps: tuple[Any, pa.Table, treewise.TreeMixture],
+) -> None:
+    # Scores, responsibilities and surprisal are computed batch by batch: a one-shot stream of
+    # small batches gives the same answers as the table, and one warning for unseen values.
+    _, table, model = cps
+    odd = table.set_column(
+        table.column_names.index("region"),
+        "region",
+        pa.array(["mars" if i % 50 == 0 else v for i, v in enumerate(table["region"].to_pylist())]),
+    )
+    with pytest.warns(treewise.UnseenCategoryWarning) as caught:
+        whole = model.surprisal(odd)
+    with pytest.warns(treewise.UnseenCategoryWarning) as again:
+        pieces = model.surprisal(b for b in odd.to_batches(max_chunksize=37))
+    assert len(caught) == len(again) == 1 and "'region': 11" in str(again[0].message)
+    assert pieces.equals(whole)
+    with pytest.warns(treewise.UnseenCategoryWarning):
+        scores = model.score_samples(b for b in odd.to_batches(max_chunksize=37))
+    np.testing.assert_array_equal(scores, -whole["total"].to_numpy())

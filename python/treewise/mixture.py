@@ -6,7 +6,7 @@ import math
 import os
 from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any, Literal, overload
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -128,7 +128,8 @@ class TreeMixture(Params):
     One codebook is learned with the ordinary fit (a single ``DependencyTree``, kept as
     ``single_tree_``). In memory (``streaming=False``), every row is encoded once and kept as
     codes across the iterations, and ``data`` is read twice (a table, a DataFrame or files;
-    not a one-shot stream).
+    not a one-shot stream). Scoring, ``surprisal`` and the other questions read their data
+    batch by batch, so memory holds the answers, not the data.
 
     Streaming (``streaming=True``, docs/scaling.md): the in-memory EM (seeding, ``n_init``
     starts) runs on a uniform sample of at most ``SAMPLE_ROWS`` (50,000) rows, then every
@@ -376,37 +377,43 @@ class TreeMixture(Params):
         self.converged_ = run.converged
         self.n_reseeds_ = run.reseeds
 
-    @overload
-    def _encode(
-        self, data: Any, per_column: Literal[False] = False
-    ) -> tuple[_core.MixtureCodes, FloatArray, npt.NDArray[np.int64]]: ...
+    def _encoded(
+        self, data: Any
+    ) -> Iterator[tuple[_core.MixtureCodes, list[bytes | None], npt.NDArray[np.int64]]]:
+        """``data`` batch by batch as codes, with tail terms and values without a code.
 
-    @overload
-    def _encode(
-        self, data: Any, per_column: Literal[True]
-    ) -> tuple[_core.MixtureCodes, list[bytes | None], npt.NDArray[np.int64]]: ...
-
-    def _encode(self, data: Any, per_column: bool = False) -> Any:
-        """Every row of ``data`` as codes (in memory), its tail term and unseen counts.
-
-        With ``per_column``, the tail terms per column (None for a column without a tail).
+        Per batch: the codes, each column's tail terms (None for a column without a tail
+        table) and the values per column without a code.
         """
         tree = self.single_tree_
+        model = tree._fitted()
         names = [str(n) for n in tree.feature_names_in_]
         source = open_source(data)
         check_columns(source.names, names, source.description)
-        batches = []
         with BatchLoop(source, names, BATCH_ROWS, None, "encoding") as loop:
             for batch in loop:
-                batches.append(batch.select(names))
-        table = pa.Table.from_batches(batches).combine_chunks()
-        merged = table.to_batches()
-        batch = merged[0] if merged else pa.RecordBatch.from_pylist([], schema=table.schema)
-        if per_column:
-            codes, columns, unseen = _core.MixtureCodes.encode_columns(tree._fitted(), batch)
-            return codes, columns, np.array(unseen, dtype=np.int64)
-        codes, tails, unseen = _core.MixtureCodes.encode(tree._fitted(), batch)
-        return codes, np.frombuffer(tails, "<f8"), np.array(unseen, dtype=np.int64)
+                codes, columns, unseen = _core.MixtureCodes.encode_columns(
+                    model, batch.select(names)
+                )
+                yield codes, columns, np.array(unseen, dtype=np.int64)
+
+    def _encode(self, data: Any) -> tuple[_core.MixtureCodes, FloatArray, npt.NDArray[np.int64]]:
+        """Every row of ``data`` as codes in memory (for EM), its tail term and unseen counts.
+
+        Each batch is encoded as it is read: memory holds the codes, not the values.
+        """
+        cards = [int(c) for c in self.codebook_.cardinalities]
+        d = len(cards)
+        columns: list[list[bytes]] = [[] for _ in range(d)]
+        tails: list[FloatArray] = []
+        unseen = np.zeros(d, dtype=np.int64)
+        for codes, terms, missing in self._encoded(data):
+            for c in range(d):
+                columns[c].append(codes.column(c))
+            tails.append(_tail_sum(terms, codes.n_rows))
+            unseen += missing
+        joined = _core.MixtureCodes([b"".join(parts) for parts in columns], cards)
+        return joined, np.concatenate(tails) if tails else np.zeros(0), unseen
 
     def _init_resp(self, codes: _core.MixtureCodes, k: int, rng: np.random.Generator) -> FloatArray:
         n = codes.n_rows
@@ -497,12 +504,18 @@ class TreeMixture(Params):
         return comps
 
     def _mixed(self, data: Any) -> tuple[FloatArray, FloatArray]:
+        """Ln p(row) and the responsibilities of every row, read batch by batch."""
         comps = self._fitted()
-        codes, tails, unseen = self._encode(data)
-        ll = np.frombuffer(codes.log_likelihoods(comps), "<f8").reshape(codes.n_rows, len(comps))
-        total, resp = _log_mix(ll, self.weights_)
+        totals, resps = [np.zeros(0)], [np.zeros((0, len(comps)))]
+        unseen = np.zeros(self.n_features_in_, dtype=np.int64)
+        for codes, terms, missing in self._encoded(data):
+            ll = np.frombuffer(codes.log_likelihoods(comps), "<f8")
+            total, resp = _log_mix(ll.reshape(codes.n_rows, len(comps)), self.weights_)
+            totals.append(total + _tail_sum(terms, codes.n_rows))
+            resps.append(resp)
+            unseen += missing
         self._warn_unseen(unseen)
-        return total + tails, resp
+        return np.concatenate(totals), np.concatenate(resps)
 
     def _warn_unseen(self, unseen: npt.NDArray[np.int64]) -> None:
         if unseen.any():
@@ -585,28 +598,33 @@ class TreeMixture(Params):
         """
         comps = self._fitted()
         names = [str(n) for n in self.feature_names_in_]
-        codes, tails, unseen = self._encode(data, per_column=True)
-        n = codes.n_rows
-        ll = np.frombuffer(codes.log_likelihoods(comps), "<f8").reshape(n, len(comps))
-        total, resp = _log_mix(ll, self.weights_)
+        k = len(comps)
+        parts: list[dict[str, FloatArray]] = []
+        unseen = np.zeros(len(names), dtype=np.int64)
+        for codes, tails, missing in self._encoded(data):
+            n = codes.n_rows
+            ll = np.frombuffer(codes.log_likelihoods(comps), "<f8").reshape(n, k)
+            total, resp = _log_mix(ll, self.weights_)
+            unseen += missing
+            which = np.argmax(resp, axis=1).astype(np.uint32)
+            terms = codes.column_terms(comps, which.tobytes())
+            part: dict[str, FloatArray] = {}
+            for name, term, tail in zip(names, terms, tails, strict=True):
+                value = -np.frombuffer(term, "<f8")
+                part[name] = value if tail is None else value - np.frombuffer(tail, "<f8")
+            part["component"] = which.astype(np.int64)
+            part["component_total"] = np.sum([part[name] for name in names], axis=0)
+            part["total"] = -(total + _tail_sum(tails, n))
+            for j in range(k):
+                part[f"responsibility_{j}"] = resp[:, j]
+            parts.append(part)
         self._warn_unseen(unseen)
-        which = np.argmax(resp, axis=1).astype(np.uint32)
-        terms = codes.column_terms(comps, which.tobytes())
-        arrays: dict[str, Any] = {}
-        own = np.zeros(n)
-        for name, term, tail in zip(names, terms, tails, strict=True):
-            value = -np.frombuffer(term, "<f8")
-            if tail is not None:
-                value = value - np.frombuffer(tail, "<f8")
-            own += value
-            arrays[name] = pa.array(value)
-        tail_sum = sum((np.frombuffer(t, "<f8") for t in tails if t is not None), np.zeros(n))
-        arrays["component"] = pa.array(which.astype(np.int64))
-        arrays["component_total"] = pa.array(own)
-        arrays["total"] = pa.array(-(total + tail_sum))
-        for j in range(len(comps)):
-            arrays[f"responsibility_{j}"] = pa.array(resp[:, j])
-        return pa.table(arrays)
+        keys = [*names, "component", "component_total", "total"]
+        keys += [f"responsibility_{j}" for j in range(k)]
+        empty = {key: np.zeros(0, np.int64 if key == "component" else np.float64) for key in keys}
+        return pa.table(
+            {key: pa.array(np.concatenate([empty[key], *(p[key] for p in parts)])) for key in keys}
+        )
 
     def sample(
         self,
@@ -702,6 +720,15 @@ class TreeMixture(Params):
         """-2 ln L + p ln N on ``data`` (lower is better); the structures are not counted."""
         scores = self.score_samples(data)
         return float(-2.0 * scores.sum() + self.n_parameters_ * math.log(len(scores)))
+
+
+def _tail_sum(terms: list[bytes | None], n: int) -> FloatArray:
+    """Per row, the tail terms ln P(value | "other") summed over the columns that have one."""
+    total = np.zeros(n)
+    for term in terms:
+        if term is not None:
+            total += np.frombuffer(term, "<f8")
+    return total
 
 
 def _reseed(
