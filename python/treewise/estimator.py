@@ -339,6 +339,11 @@ class DependencyTree(ExactCounts, Params):
             else:
                 chosen = given.select(names)
                 stats = _core.PairStats(chosen, limit)
+                if isinstance(codebook, DependencyTree):
+                    # Time columns are counted in the units the codebook's model was fitted in.
+                    model = codebook._fitted()
+                    fitted = dict(zip(codebook.feature_names_in_, model.dtypes, strict=True))
+                    types.types = {n: fitted[n] for n in names if n in fitted}
                 count_pairs(source, names, chosen, stats, rows, bar, types)
         if stats.n_rows == 0:
             raise DataError(
