@@ -486,6 +486,8 @@ def test_choosing_k_keeps_one_tree_where_a_mixture_does_not_pay() -> None:
     assert list(figures) == [1, 2, 3] and figures[best] == max(figures.values())
     with pytest.raises(ValueError, match="rule"):
         treewise.choose_n_components(train, [1], validation=valid, rule="min")
+    with pytest.raises(treewise.DataError, match="validation= has 0 rows"):
+        treewise.choose_n_components(train, [1, 2], validation=valid.slice(0, 0))
 
 
 def test_hard_em_counts_exactly_what_the_weighted_kernel_counts() -> None:

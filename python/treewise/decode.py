@@ -347,59 +347,62 @@ def fitting_type(name: str, values: list[Any], n_codes: int) -> str:
     return name
 
 
-#: Nanoseconds per unit, and pyarrow's name of the unit for ``floor_temporal``.
-_UNITS = {
-    "s": (1_000_000_000, "second"),
-    "ms": (1_000_000, "millisecond"),
-    "us": (1_000, "microsecond"),
-    "ns": (1, "nanosecond"),
-}
-_DAY = (86_400_000_000_000, "day")
+#: Nanoseconds per unit of each pyarrow time unit.
+_UNITS = {"s": 1_000_000_000, "ms": 1_000_000, "us": 1_000, "ns": 1}
+_DAY = 86_400_000_000_000
 
 
-def _time_unit(dtype: pa.DataType) -> tuple[str, int, str] | None:
-    """A time type's origin (epoch, midnight or span), its unit in ns and the unit's name."""
+def _time_unit(dtype: pa.DataType) -> tuple[str, int] | None:
+    """A time type's origin (epoch, midnight or span) and its unit in nanoseconds."""
     if pa.types.is_timestamp(dtype):
-        return ("epoch", *_UNITS[dtype.unit])
+        return "epoch", _UNITS[dtype.unit]
     if pa.types.is_date32(dtype):
-        return ("epoch", *_DAY)
+        return "epoch", _DAY
     if pa.types.is_date64(dtype):
-        return ("epoch", *_UNITS["ms"])
+        return "epoch", _UNITS["ms"]
     if pa.types.is_time(dtype):
-        return ("midnight", *_UNITS[dtype.unit])
+        return "midnight", _UNITS[dtype.unit]
     if pa.types.is_duration(dtype):
-        return ("span", *_UNITS[dtype.unit])
+        return "span", _UNITS[dtype.unit]
     return None
 
 
 def conform_time_column(column: pa.Array[Any], fitted: str, name: str) -> pa.Array[Any]:
     """``column`` in the unit of the stored time type name ``fitted``, as the core converts.
 
-    Exact into a finer unit, rounded down (toward the past) into a coarser one; timestamps and
-    dates convert into each other, times of day and durations only within their kind. Any other
-    column, or one already in its fitted unit, comes back as it is.
+    The same integer arithmetic as ``rust/core/src/times.rs``: counts of the given unit become
+    counts of the fitted one, exactly into a finer unit and rounded down (toward the past, in
+    UTC) into a coarser one. Timestamps and dates convert into each other, times of day and
+    durations only within their kind. Any other column, or one already in its fitted unit,
+    comes back as it is; a value the fitted type cannot hold is a ``DataError``.
     """
     target = _time_type(fitted)
     given = _time_unit(column.type)
     wanted = None if target is None else _time_unit(target)
     if target is None or given is None or wanted is None or given[0] != wanted[0]:
         return column
-    if given[1] == wanted[1] and (column.type.id == target.id):
+    if given[1] == wanted[1] and column.type.id == target.id:
         return column
-    import pyarrow.compute as pc
-
-    try:
-        if given[1] < wanted[1]:
-            if pa.types.is_duration(column.type):
-                ints = column.cast(pa.int64()).to_numpy(zero_copy_only=False)
-                valid = column.is_valid().to_numpy(zero_copy_only=False)
-                floored = np.floor_divide(np.where(valid, ints, 0), wanted[1] // given[1])
-                return pa.array(floored, type=target, mask=~valid)
-            floor: Any = pc.floor_temporal
-            column = floor(column, multiple=1, unit=wanted[2])
-        return column.cast(target)
-    except (pa.ArrowInvalid, pa.ArrowNotImplementedError) as e:
+    narrow = pa.types.is_date32(column.type) or pa.types.is_time32(column.type)
+    ints = column.cast(pa.int32()) if narrow else column.cast(pa.int64())
+    valid = np.asarray(column.is_valid())
+    values = ints.cast(pa.int64()).fill_null(0).to_numpy()
+    (_, given_ns), (_, wanted_ns) = given, wanted
+    if given_ns >= wanted_ns:
+        factor = given_ns // wanted_ns
+        limit = np.iinfo(np.int64).max // factor
+        if (np.abs(values[valid]) > limit).any():
+            raise DataError(
+                f"column {name!r}: a value of type {column.type} does not fit the fitted "
+                f"{target}; give the column as {target}"
+            )
+        converted = values * factor
+    else:
+        converted = np.floor_divide(values, wanted_ns // given_ns)
+    storage = np.int32 if pa.types.is_date32(target) or pa.types.is_time32(target) else np.int64
+    if storage is np.int32 and valid.any() and np.abs(converted[valid]).max() > 2**31 - 1:
         raise DataError(
-            f"column {name!r}: cannot convert {column.type} into the fitted {target}: {e}; "
+            f"column {name!r}: a value of type {column.type} does not fit the fitted {target}; "
             f"give the column as {target}"
-        ) from e
+        )
+    return pa.array(converted.astype(storage), type=target, mask=~valid)

@@ -22,7 +22,7 @@ from treewise.checks import (
     check_nonnegative,
     seed_of,
 )
-from treewise.errors import NotFittedError, UnseenCategoryWarning, warn
+from treewise.errors import DataError, NotFittedError, UnseenCategoryWarning, warn
 from treewise.estimator import DependencyTree
 from treewise.files import read_model_file, write_atomically
 from treewise.mixture_file import mixture_from_bytes, mixture_to_bytes
@@ -93,18 +93,8 @@ class _Run:
     reseeds: int
 
 
-def _log_mix(ll: FloatArray, weights: FloatArray) -> tuple[FloatArray, FloatArray]:
-    """Per row, ln sum_k w_k P_k(row) (log-sum-exp) and the responsibilities P(k | row)."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        joint = ll + np.log(weights)[None, :]
-        top = joint.max(axis=1)
-        finite = np.isfinite(top)
-        shifted = np.exp(joint - np.where(finite, top, 0.0)[:, None])
-        total = np.where(finite, top + np.log(shifted.sum(axis=1)), top)
-        resp = shifted / shifted.sum(axis=1, keepdims=True)
-    # A row no component can produce (possible with alpha=0 on new data) gets the weights.
-    resp[~finite] = weights
-    return total, resp
+#: Per row, ln sum_k w_k P_k(row) and the responsibilities (``mixture_inference.log_mix``).
+_log_mix = mixture_inference.log_mix
 
 
 class TreeMixture(Params):
@@ -799,6 +789,8 @@ def choose_n_components(
             figures[k] = model.bic(data)
         else:
             rows[k] = model.score_samples(validation)
+            if len(rows[k]) == 0:
+                raise DataError("validation= has 0 rows; hold out some rows to judge K on")
             figures[k] = float(rows[k].mean())
     if criterion == "bic":
         return min(ks, key=lambda k: (figures[k], k)), figures

@@ -45,6 +45,7 @@ if TYPE_CHECKING:
 
 __all__ = [
     "impute",
+    "log_mix",
     "marginals",
     "posterior_weights",
     "predict",
@@ -76,6 +77,31 @@ def _names(mixture: TreeMixture) -> list[str]:
     return [str(n) for n in mixture.feature_names_in_]
 
 
+def log_mix(ll: FloatArray, weights: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Per row, ln sum_k w_k P_k(row) (log-sum-exp) and the responsibilities P(k | row).
+
+    ``ll`` is ln P_k(row), rows x K. A row no component can produce (possible with alpha=0 on
+    new data) has total -inf and gets the weights as its responsibilities.
+    """
+    with np.errstate(divide="ignore", invalid="ignore"):
+        joint = ll + np.log(weights)[None, :]
+        top = joint.max(axis=1)
+        finite = np.isfinite(top)
+        shifted = np.exp(joint - np.where(finite, top, 0.0)[:, None])
+        total = np.where(finite, top + np.log(shifted.sum(axis=1)), top)
+        resp = shifted / shifted.sum(axis=1, keepdims=True)
+    resp[~finite] = weights
+    return total, resp
+
+
+def _weights_of(mixture: TreeMixture, log_evidence: list[bytes]) -> FloatArray:
+    """P(k | evidence) from each component's ln P_k(evidence); NaN rows where none can."""
+    ll = np.stack([np.frombuffer(part, "<f8") for part in log_evidence], axis=1)
+    total, weights = log_mix(ll, mixture.weights_)
+    weights[~np.isfinite(total)] = np.nan
+    return weights
+
+
 def posterior_weights(
     mixture: TreeMixture, evidence: Any, fill: list[int] | None = None
 ) -> tuple[FloatArray, list[int]]:
@@ -87,15 +113,7 @@ def posterior_weights(
     imputation conditions.
     """
     parts = [engine.log_evidence(evidence, fill) for engine in engines(mixture)]
-    unseen = list(parts[0][1])
-    with np.errstate(divide="ignore", invalid="ignore"):
-        joint = np.stack([np.frombuffer(p[0], "<f8") for p in parts], axis=1)
-        joint = joint + np.log(mixture.weights_)[None, :]
-        top = joint.max(axis=1, keepdims=True)
-        shifted = np.exp(joint - np.where(np.isfinite(top), top, 0.0))
-        weights = shifted / shifted.sum(axis=1, keepdims=True)
-    weights[~np.isfinite(top[:, 0])] = np.nan
-    return weights, unseen
+    return _weights_of(mixture, [p[0] for p in parts]), list(parts[0][1])
 
 
 def _mixed_posterior(
@@ -105,12 +123,14 @@ def _mixed_posterior(
 
     Also returns the unseen values per column and the rows no component can produce (NaN rows).
     """
-    weights, unseen = posterior_weights(mixture, evidence, fill)
+    # One message pass per component gives both its posterior and its evidence likelihood.
+    parts = [engine.posterior_and_evidence(evidence, targets, fill) for engine in engines(mixture)]
+    weights = _weights_of(mixture, [p[1] for p in parts])
+    unseen = list(parts[0][2])
     n = len(weights)
     categories = mixture.single_tree_.categories_
     mixed = [np.zeros((n, len(categories[t]))) for t in targets]
-    for k, engine in enumerate(engines(mixture)):
-        tables, _, _ = engine.posterior(evidence, targets, fill)
+    for k, (tables, _, _, _) in enumerate(parts):
         w = weights[:, k, None]
         for out, table in zip(mixed, tables, strict=True):
             # A component that cannot produce the row has weight 0 and NaN tables.
@@ -302,13 +322,8 @@ def _best_completion(
         kept = {name: cells for name, cells in filled.items() if name not in absent}
         completed = replace_filled(evidence, kept)
         parts = [engine.log_evidence(completed)[0] for engine in engines(mixture)]
-        with np.errstate(divide="ignore"):
-            joint = np.stack([np.frombuffer(p, "<f8") for p in parts], axis=1)
-            joint = joint + np.log(mixture.weights_)[None, :]
-        top = joint.max(axis=1)
-        safe = np.where(np.isfinite(top), top, 0.0)
-        total = safe + np.log(np.exp(joint - safe[:, None]).sum(axis=1))
-        scores.append(np.where(np.isfinite(top), total, -np.inf))
+        ll = np.stack([np.frombuffer(p, "<f8") for p in parts], axis=1)
+        scores.append(log_mix(ll, mixture.weights_)[0])
     return np.asarray(np.argmax(np.stack(scores, axis=1), axis=1), dtype=np.intp)
 
 

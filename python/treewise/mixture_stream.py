@@ -277,7 +277,8 @@ def stream_em(
         new_weights = np.array(totals) / n
         reseeded = 0
         small = [j for j in range(k) if totals[j] < em.min_rows]
-        if small and reseeds < em.max_reseeds:
+        small = small[: max(em.max_reseeds - reseeds, 0)]
+        if small:
             new, new_weights, reseeded = _reseed(sample, new, new_weights, small, alpha, hard, em)
         reseeds += reseeded
         comps, weights = new, new_weights
@@ -305,13 +306,17 @@ def _reseed(
     take = max(math.ceil(em.min_rows), m // (2 * k))
     if take * len(small) >= m:
         return comps, weights, 0  # too few sampled rows to give each its own
-    row_ll, _ = _e_step(sample, comps, weights, hard, em)
+    row_ll, resp = _e_step(sample, comps, weights, hard, em)
     worst = np.argsort(row_ll, kind="stable")
     comps, weights = list(comps), weights.copy()
-    resp = np.zeros((m, k))
+    # As the in-memory EM reseeds: the rows taken go wholly to their component, the others keep
+    # their responsibilities, so the pooled tables the refit leans on are the sample's own.
+    resp = resp.copy()
     for i, j in enumerate(small):
-        resp[worst[i * take : (i + 1) * take], j] = 1.0
-    refitted = sample.fit_components(resp.tobytes(), k, alpha)
+        rows = worst[i * take : (i + 1) * take]
+        resp[rows] = 0.0
+        resp[rows, j] = 1.0
+    refitted = sample.fit_components(resp.tobytes(), k, alpha, em.pooling)
     for j in small:
         comps[j] = refitted[j]
         weights[j] = take / m

@@ -4,7 +4,7 @@
 use pyo3::prelude::*;
 use pyo3::types::PyBytes;
 use treewise_core::fit;
-use treewise_core::infer::{Filled, Inference, Strategy};
+use treewise_core::infer::{Filled, Inference, Posterior, Strategy};
 use treewise_core::{io, Error};
 
 use crate::arrow_import::import_batch;
@@ -34,6 +34,30 @@ pub struct PyTreeInference {
 fn filled<'py>(py: Python<'py>, f: &Filled, unseen: Vec<u64>) -> PyResult<FilledTuple<'py>> {
     let (codes, floats) = codes_and_floats(py, &f.codes, &f.floats)?;
     Ok((codes, floats, unseen, f.impossible))
+}
+
+impl PyTreeInference {
+    /// The posterior of `targets` in each row of `batch` and the values without a code.
+    fn posterior_of(
+        &self,
+        py: Python<'_>,
+        batch: &Bound<'_, PyAny>,
+        targets: Vec<usize>,
+        fill: Option<Vec<usize>>,
+    ) -> PyResult<(Posterior, Vec<u64>)> {
+        let batch = import_batch(batch)?;
+        let inf = &self.inner;
+        detached(py, || {
+            let ev = inf.evidence(&batch)?;
+            let flags = fill
+                .map(|fill| fill_flags(&fill, ev.unseen.len()))
+                .transpose()?;
+            Ok((
+                inf.posterior_filling(&ev, &targets, flags.as_deref())?,
+                ev.unseen,
+            ))
+        })
+    }
 }
 
 /// Column indices as one flag per column; an index past the columns is an error.
@@ -189,24 +213,34 @@ impl PyTreeInference {
         targets: Vec<usize>,
         fill: Option<Vec<usize>>,
     ) -> PyResult<(Vec<Bound<'py, PyBytes>>, Vec<u64>, u64)> {
-        let batch = import_batch(batch)?;
-        let inf = &self.inner;
-        let (post, unseen) = detached(py, || {
-            let ev = inf.evidence(&batch)?;
-            let flags = fill
-                .map(|fill| fill_flags(&fill, ev.unseen.len()))
-                .transpose()?;
-            Ok((
-                inf.posterior_filling(&ev, &targets, flags.as_deref())?,
-                ev.unseen,
-            ))
-        })?;
+        let (post, unseen) = self.posterior_of(py, batch, targets, fill)?;
         let tables = post
             .tables
             .iter()
             .map(|t| le_bytes(py, &[t]))
             .collect::<PyResult<_>>()?;
         Ok((tables, unseen, post.impossible))
+    }
+
+    /// As `posterior`, with ln P(observed cells) per row from the same pass (f64 bytes, -inf
+    /// where impossible): (tables, log evidence, values without a code, impossible rows).
+    #[allow(clippy::type_complexity)]
+    #[pyo3(signature = (batch, targets, fill = None))]
+    fn posterior_and_evidence<'py>(
+        &self,
+        py: Python<'py>,
+        batch: &Bound<'py, PyAny>,
+        targets: Vec<usize>,
+        fill: Option<Vec<usize>>,
+    ) -> PyResult<(Vec<Bound<'py, PyBytes>>, Bound<'py, PyBytes>, Vec<u64>, u64)> {
+        let (post, unseen) = self.posterior_of(py, batch, targets, fill)?;
+        let tables = post
+            .tables
+            .iter()
+            .map(|t| le_bytes(py, &[t]))
+            .collect::<PyResult<_>>()?;
+        let logz = le_bytes(py, &[&post.log_evidence])?;
+        Ok((tables, logz, unseen, post.impossible))
     }
 
     /// ln P(observed cells) per row (f64 bytes, -inf where impossible) and the values without a

@@ -72,6 +72,8 @@ pub struct Filled {
 pub struct Posterior {
     /// Row-major n x r tables, one per requested column.
     pub tables: Vec<Vec<f64>>,
+    /// ln P(observed cells) per row, from the same upward pass (-inf where impossible).
+    pub log_evidence: Vec<f64>,
     /// Rows whose evidence has probability zero under the model.
     pub impossible: u64,
 }
@@ -380,31 +382,34 @@ impl Inference {
                 c = self.parent[v];
             }
         }
-        let rows: Vec<Option<Vec<Vec<f64>>>> = self.per_row(ev.n_rows, Self::scratch, |s, i| {
-            self.load(ev, i, fill, s);
-            if self.upward(s) == f64::NEG_INFINITY {
-                return None;
-            }
-            self.downward(s, &needed);
-            Some(
-                targets
+        let rows: Vec<(f64, Option<Vec<Vec<f64>>>)> =
+            self.per_row(ev.n_rows, Self::scratch, |s, i| {
+                self.load(ev, i, fill, s);
+                let logz = self.upward(s);
+                if logz == f64::NEG_INFINITY {
+                    return (logz, None);
+                }
+                self.downward(s, &needed);
+                let beliefs = targets
                     .iter()
                     .map(|&t| {
                         let mut b = vec![0.0; self.cards[t]];
                         self.belief(s, t, &mut b);
                         b
                     })
-                    .collect(),
-            )
-        })?;
+                    .collect();
+                (logz, Some(beliefs))
+            })?;
         let mut out = Posterior {
             tables: targets
                 .iter()
                 .map(|&t| Vec::with_capacity(ev.n_rows * self.cards[t]))
                 .collect(),
+            log_evidence: Vec::with_capacity(ev.n_rows),
             impossible: 0,
         };
-        for row in rows {
+        for (logz, row) in rows {
+            out.log_evidence.push(logz);
             match row {
                 Some(beliefs) => {
                     for (table, b) in out.tables.iter_mut().zip(beliefs) {

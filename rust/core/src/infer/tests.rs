@@ -238,6 +238,11 @@ fn a_forest_given_by_its_tables_answers_as_the_model() -> Result<()> {
     let same = Inference::from_tables(model.clone(), parent.clone(), order.clone(), logp.clone())?;
     let ev = evidence(&[vec![Some(1), None, Some(0)], vec![None, Some(2), None]]);
     assert_eq!(same.log_evidence(&ev)?, inf.log_evidence(&ev)?);
+    // The posterior's own upward pass gives the same evidence likelihood.
+    assert_eq!(
+        inf.posterior(&ev, &[1])?.log_evidence,
+        inf.log_evidence(&ev)?
+    );
     assert_eq!(
         same.posterior(&ev, &[0, 1, 2])?.tables,
         inf.posterior(&ev, &[0, 1, 2])?.tables
