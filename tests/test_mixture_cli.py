@@ -178,6 +178,13 @@ def test_score_reads_batch_by_batch(
     model = TreeMixture.load(mixture_file)
     expected = model.score_samples(held)
     np.testing.assert_allclose(scored["score"].to_numpy(), expected, rtol=1e-12)
+    # A key named like an output column would be overwritten: refused, nothing written.
+    clashing = tmp_path / "clash.parquet"
+    pq.write_table(held.append_column("component", pa.array(np.zeros(held.num_rows))), clashing)
+    err = refused(capsys, 1, "score", mixture_file, clashing, "-o", tmp_path / "no.parquet",
+                  "--key", "component")  # fmt: skip
+    assert "key columns may not be named ['component']" in err
+    assert not (tmp_path / "no.parquet").exists()
     lowest = np.argsort(expected, kind="stable")[:4]
     rows = [int(r.replace(",", "")) for r in re.findall(r"│ +([\d,]+) │ +-\d", out)]
     assert rows == lowest.tolist()
@@ -251,7 +258,7 @@ def test_auto_chooses_on_a_sample_and_fits_all_rows(
     path = tmp_path / "sampled.treewise"
     out = ok(capsys, "fit", files["train"], "-o", path, "--exclude", EXCLUDE,
              "--components", "auto", "--seed", "2")  # fmt: skip
-    assert f"Held out 200 of 1,000 rows (a random sample of {N:,} rows) (seed 2)" in out
+    assert f"Held out 200 of 1,000 rows (a random sample of the {N:,} rows) (seed 2)" in out
     assert f"refitting it to all {N:,} rows" in out
     chosen = int(re.findall(r"Chose K=(\d+);", out)[0])
     if chosen > 1:

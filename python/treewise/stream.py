@@ -6,7 +6,7 @@ import itertools
 import os
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -25,11 +25,16 @@ __all__ = ["Scored", "TopRows", "atomic_parquet", "score_batches", "write_scores
 
 @dataclass
 class Scored:
-    """One scored batch: the batch read, ln p per row, and per-column surprisal if asked."""
+    """One scored batch: the batch read, ln p per row, and per-column surprisal if asked.
+
+    ``extra`` holds more per-row columns to write after ``score`` (a mixture's component and
+    responsibilities).
+    """
 
     batch: pa.RecordBatch
     total: npt.NDArray[np.float64]
     surprisal: list[npt.NDArray[np.float64]] | None
+    extra: dict[str, npt.NDArray[Any]] = field(default_factory=dict)
 
 
 def score_batches(
@@ -112,26 +117,30 @@ def write_scores(
 ) -> pa.Table:
     """Write scores batch by batch to Parquet; return the ``top`` most surprising rows.
 
-    The file holds the key columns, ``score`` (ln p(row) in nats) and, with ``surprisal``, one
-    ``surprisal_<column>`` per modelled column. The returned table holds ``row`` (the row's
-    position in the source), the keys, ``score`` and ``surprisal_<column>`` for each column.
+    The file holds the key columns, ``score`` (ln p(row) in nats), each item's ``extra``
+    columns and, with ``surprisal``, one ``surprisal_<column>`` per modelled column. The
+    returned table holds ``row`` (the row's position in the source), the keys, ``score``, the
+    extra columns and ``surprisal_<column>`` for each column. A key named like an output column
+    is a ``SchemaError``.
     """
-    clash = [k for k in keys if k == "score" or k.startswith("surprisal_") or k == "row"]
+    iterator = iter(scored)
+    first = next(iterator, None)
+    if first is None:
+        raise DataError("the data to score has 0 rows; there is nothing to write")
+    taken = {"score", "row", *first.extra}
+    clash = [k for k in keys if k in taken or k.startswith("surprisal_")]
     if clash:
         raise SchemaError(f"key columns may not be named {clash}; rename them in the data")
 
     def output(item: Scored) -> pa.Table:
         columns: dict[str, Any] = {k: item.batch.column(k) for k in keys}
         columns["score"] = pa.array(item.total)
+        columns.update({name: pa.array(values) for name, values in item.extra.items()})
         if surprisal:
             for name, values in zip(names, item.surprisal or [], strict=True):
                 columns[f"surprisal_{name}"] = pa.array(values)
         return pa.table(columns)
 
-    iterator = iter(scored)
-    first = next(iterator, None)
-    if first is None:
-        raise DataError("the data to score has 0 rows; there is nothing to write")
     best = TopRows(top)
     offset = 0
     schema = output(first).schema
@@ -153,6 +162,7 @@ def write_scores(
                 rows: dict[str, Any] = {"row": pa.array(np.arange(offset, offset + n))}
                 rows.update({k: item.batch.column(k) for k in keys})
                 rows["score"] = pa.array(item.total)
+                rows.update({name: pa.array(values) for name, values in item.extra.items()})
                 for name, values in zip(names, item.surprisal or [], strict=True):
                     rows[f"surprisal_{name}"] = pa.array(values)
                 best.offer(pa.table(rows), item.total)

@@ -608,7 +608,7 @@ def sample(
     if seed is None:
         seed = secrets.randbits(63)
     if mixtures.is_mixture(model_path):
-        _refuse_for_mixture("sample (its rows are drawn in memory)", "batch_rows", "memory_limit")
+        _refuse_for_mixture("sample", "batch_rows", "memory_limit")
         mix = mixtures.load_mixture(model_path)
         _check_output(output)
         mixtures.sample_mixture(_console(), mix, n_rows, output, seed)

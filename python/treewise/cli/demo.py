@@ -186,8 +186,8 @@ def visitor_figures(rows: int, seed: int) -> VisitorFigures:
         n_train // 2, seed=seed + 11, crawler_share=CRAWLER_SHARE, anomaly_rate=HYBRID_RATE
     )
     columns = model_columns(train)
-    tree = treewise.DependencyTree(columns=columns).fit(train)
     mixture = TreeMixture(n_components=2, columns=columns, random_state=seed).fit(train)
+    tree = mixture.single_tree_  # the tree fitted to the same rows, on the same codebook
     crawler = np.asarray(held["visitor_kind"].to_pylist()) == "crawler"
     planted = np.asarray(held["planted_anomaly"].to_pylist(), dtype=np.bool_)
     best = mixture.predict(held)

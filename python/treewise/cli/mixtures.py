@@ -10,24 +10,21 @@ from __future__ import annotations
 import json
 import time
 import warnings
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
 import click
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
-import pyarrow.parquet as pq
 from rich.console import Console
 from rich.table import Table
 
 import treewise
-from treewise.files import atomic_path
 from treewise.mixture import TreeMixture, choose_n_components
 from treewise.mixture_file import MAGIC
 from treewise.sources import BatchLoop, check_columns, open_source, sample_rows
-from treewise.stream import atomic_parquet
+from treewise.stream import Scored, atomic_parquet, write_scores
 from treewise.views.terminal import (
     SAMPLE_CAUTION,
     SCORE_CAUTION,
@@ -128,7 +125,7 @@ def fit_mixture(
         k, figures = choose_n_components(
             train, AUTO_CANDIDATES, criterion="heldout", validation=held, **mixture_params
         )
-        sampled = "" if total == table.num_rows else f" (a random sample of {total:,} rows)"
+        sampled = "" if total == table.num_rows else f" (a random sample of the {total:,} rows)"
         console.print(
             f"Held out {held.num_rows:,} of {table.num_rows:,} rows{sampled} (seed {seed}) and "
             f"fitted K = {', '.join(map(str, AUTO_CANDIDATES))} to the other "
@@ -191,55 +188,38 @@ def score_mixture(
     """``treewise score`` of a mixture: ln p(row), its component and responsibilities.
 
     With ``surprisal``, also ``surprisal_<column>``: -ln P_k(value | parent value) under the
-    row's most responsible component k (``TreeMixture.surprisal``). The data is read batch by
-    batch and the file written as it goes (to a temporary name, renamed at the end), so memory
-    holds one batch and the ``top`` rows, whatever the size of the data.
+    row's most responsible component k (``TreeMixture.surprisal``). Written batch by batch as
+    a tree's scores are (``stream.write_scores``), so memory holds one batch and the ``top``
+    rows, whatever the size of the data.
     """
     start = time.perf_counter()
     names = [str(n) for n in model.feature_names_in_]
     source = open_source(data)
     wanted = check_columns(source.names, list(dict.fromkeys([*keys, *names])), source.description)
-    k = len(model.components_)
-    worst: pa.Table | None = None
     unseen: list[str] = []
     n_rows = 0
-    with atomic_path(output) as tmp, BatchLoop(source, wanted) as batches:
-        writer: pq.ParquetWriter | None = None
-        try:
+
+    def scored() -> Iterator[Scored]:
+        nonlocal n_rows
+        with BatchLoop(source, wanted) as batches:
             for batch in batches:
-                table = pa.Table.from_batches([batch])
                 with warnings.catch_warnings(record=True) as caught:
                     warnings.simplefilter("always", treewise.UnseenCategoryWarning)
-                    explained = model.surprisal(table.select(names))
-                unseen += [str(w.message) for w in caught]
-                part: dict[str, Any] = {key: table[key] for key in keys}
-                part["score"] = pc.negate(explained["total"])
-                part["component"] = explained["component"].cast(pa.int32())
-                for j in range(k):
-                    part[f"responsibility_{j}"] = explained[f"responsibility_{j}"]
-                columns: dict[str, Any] = {f"surprisal_{n}": explained[n] for n in names}
-                scored = pa.table({**part, **columns} if surprisal else part)
-                if writer is None:
-                    writer = pq.ParquetWriter(str(tmp), scored.schema)
-                writer.write_table(scored)
-                if top:
-                    rows: dict[str, Any] = {
-                        "row": pa.array(np.arange(n_rows, n_rows + table.num_rows))
-                    }
-                    candidates = pa.table({**rows, **part, **columns})
-                    both = candidates if worst is None else pa.concat_tables([worst, candidates])
-                    worst = both.take(np.argsort(both["score"].to_numpy(), kind="stable")[:top])
-                n_rows += table.num_rows
-            if writer is None:
-                raise treewise.DataError("the data has 0 rows; there is nothing to score")
-        finally:
-            if writer is not None:
-                writer.close()
+                    explained = model.surprisal(batch.select(names))
+                unseen.extend(str(w.message) for w in caught)
+                extra = {"component": explained["component"].to_numpy().astype(np.int32)}
+                for j in range(len(model.components_)):
+                    extra[f"responsibility_{j}"] = explained[f"responsibility_{j}"].to_numpy()
+                columns = [explained[name].to_numpy() for name in names]
+                n_rows += batch.num_rows
+                yield Scored(batch, -explained["total"].to_numpy(), columns, extra)
+
+    worst = write_scores(scored(), output, names, keys, surprisal, top)
     if unseen:
         more = f" (and in {len(unseen) - 1} more batches)" if len(unseen) > 1 else ""
         warnings.warn(unseen[0] + more, treewise.UnseenCategoryWarning, stacklevel=2)
     console.print(f"Scored {n_rows:,} rows and wrote {output} in {_seconds(start)}.")
-    if worst is not None:
+    if top and worst.num_rows:
         console.print(_worst_table(worst, keys, names))
     console.print(SCORE_CAUTION)
 

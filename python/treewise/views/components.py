@@ -9,7 +9,6 @@ from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 import numpy.typing as npt
-import pyarrow as pa
 
 from treewise.errors import DataError, UnseenCategoryWarning
 
@@ -22,7 +21,6 @@ __all__ = [
     "Assignment",
     "ComponentTree",
     "assign",
-    "assignment_table",
     "component_edges",
     "component_tree",
     "shared_edges",
@@ -145,14 +143,16 @@ class Assignment:
 
 
 def assign(mixture: TreeMixture, data: Any, typical: int) -> Assignment:
-    """Score ``data`` under the mixture and its single tree, and assign every row."""
-    scores = mixture.score_samples(data)
+    """Score ``data`` under the mixture and its single tree, and assign every row.
+
+    ``data`` is read twice: make a one-shot stream replayable first.
+    """
+    scores, resp = mixture._mixed(data)  # one pass gives both
     if len(scores) == 0:
         raise DataError("the data has 0 rows; there is nothing to assign to the components")
     with warnings.catch_warnings():
-        # score_samples has already warned about values never seen in fitting.
+        # The mixture has already warned about values never seen in fitting.
         warnings.simplefilter("ignore", UnseenCategoryWarning)
-        resp = mixture.predict_proba(data)
         tree_scores = mixture.single_tree_.score_samples(data)
     k = len(mixture.components_)
     best = np.asarray(np.argmax(resp, axis=1), dtype=np.intp)
@@ -163,16 +163,3 @@ def assign(mixture: TreeMixture, data: Any, typical: int) -> Assignment:
         order = np.lexsort((rows, -scores[rows], -resp[rows, j]))
         picks.append(rows[order[:typical]].astype(np.int64))
     return Assignment(scores, tree_scores, resp, best, counts, picks)
-
-
-def assignment_table(assignment: Assignment, keys: pa.Table | None = None) -> pa.Table:
-    """Per row: keys (if given), ``score``, ``tree_score``, ``component``, ``responsibility_k``."""
-    columns: dict[str, Any] = {}
-    if keys is not None:
-        columns.update({name: keys[name] for name in keys.column_names})
-    columns["score"] = pa.array(assignment.scores)
-    columns["tree_score"] = pa.array(assignment.tree_scores)
-    columns["component"] = pa.array(assignment.best.astype(np.int32))
-    for j in range(assignment.responsibilities.shape[1]):
-        columns[f"responsibility_{j}"] = pa.array(assignment.responsibilities[:, j])
-    return pa.table(columns)

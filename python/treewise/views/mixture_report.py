@@ -221,6 +221,7 @@ ln p(row) under the mixture. They are real rows of the data.</p>
 
 def _means(model: TreeMixture, data: Any) -> tuple[float, float]:
     """Mean ln p per row of ``data`` under the mixture and under its single tree."""
+    data = replayable(data)  # read twice: a one-shot stream is kept for the second read
     mixture = float(model.score_samples(data).mean())
     with warnings.catch_warnings():
         # score_samples has already warned about values never seen in fitting.
@@ -288,7 +289,7 @@ def render_mixture_report(
     training: Any = None,
     choice: Mapping[int, float] | None = None,
     choice_rule: str = "Held-out mean ln p per row for each number of components K; the "
-    "highest is chosen.",
+    "smallest K within one standard error of the highest is chosen (choose_n_components).",
     title: str | None = None,
 ) -> str:
     """The mixture report as one HTML string; see :func:`write_mixture_report`."""
